@@ -1,0 +1,1 @@
+"""Diabatic model Hamiltonians (batched, atomic units)."""
