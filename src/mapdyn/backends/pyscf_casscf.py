@@ -1,0 +1,558 @@
+"""State-averaged CASSCF backend on PySCF: energies, gradients, NAC vectors, overlaps.
+
+All quantities in Hartree atomic units: positions in Bohr, energies in Eh, gradients in Eh/Bohr,
+coupling vectors in 1/Bohr, dipoles in e·Bohr.  The backend follows the contract of
+:mod:`mapdyn.electronic` (DESIGN.md §4): ``compute`` is a pure function of its arguments and
+everything carried from one step to the next travels in a picklable :class:`CASSCFGuess`.
+
+Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
+
+* SA-CASSCF with equal weights over ``nstates`` roots (PySCF ``state_average_``).  Spin purity is
+  enforced with a spin-penalty shift (H + shift·(S² − S(S+1)), PySCF ``fix_spin_``) or with the
+  spin-adapted ``direct_spin0`` solver; ⟨S²⟩ of every root is checked at every step.
+* Gradients dE_k/dR: PySCF ``mc.nuc_grad_method().kernel(state=k)`` (SA-CASSCF Lagrangian
+  gradients, equal weights).
+* NAC vectors d_ab = ⟨ψ_a|∇ψ_b⟩: PySCF ``mc.nac_method().kernel(state=(a, b))`` which returns
+  ⟨ψ_a|∇ψ_b⟩ (sign asserted against finite-difference overlaps in the tests).  ``nac_form="full"``
+  keeps the CSF (basis-motion) term and matches finite differences of state overlaps;
+  ``nac_form="etf"`` uses electron-translation factors (Fatehi & Subotnik), which is
+  translation-invariant and conserves total momentum but differs from overlap derivatives.
+* State overlaps between geometries S_kl = ⟨ψ_k(R')|ψ_l(R)⟩ from the determinant expansion of the CI
+  vectors, ⟨D_I|D_J⟩ = det S^α_IJ · det S^β_IJ with the MO cross-overlap C'ᵀ S_AO(R', R) C over the
+  occupied (core + string-occupied active) orbitals (Löwdin's rule for non-orthogonal determinants).
+* Warm start from the previous orbitals, Löwdin-orthonormalised at the new geometry
+  C (CᵀSC)^(−1/2); the result is guarded by max|CᵀSC − 1| < 1e-10 (raw orbitals from another
+  geometry give a converged but wrong CASSCF, DESIGN.md §7.10b).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+import warnings
+from typing import Any, Sequence
+
+import numpy as np
+
+from mapdyn.electronic import BackendError, ElectronicResult, apply_state_signs, match_states
+
+__all__ = [
+    "CASSCFBackend",
+    "CASSCFGuess",
+    "lowdin_orthonormalize",
+    "orthonormality_error",
+    "ci_overlap_matrix",
+    "active_overlap_min_singular",
+    "ORTHONORMALITY_TOL",
+]
+
+#: guard on starting orbitals, max |CᵀSC − 1| (DESIGN.md §7.10b).
+ORTHONORMALITY_TOL = 1e-10
+
+_NAC_FORMS = ("full", "etf")
+_SPIN_PURITY = ("shift", "spin0", "none")
+
+
+def _pyscf():
+    """Import PySCF lazily and pin it to one thread (DESIGN.md §7.10b, threads)."""
+    from pyscf import lib
+
+    lib.num_threads(1)
+    return lib
+
+
+@dataclasses.dataclass(frozen=True)
+class CASSCFGuess:
+    """What one CASSCF step hands to the next (picklable, numpy arrays only).
+
+    positions_bohr : (N, 3) geometry of the step that produced this guess, Bohr.
+    mo_coeff : (nao, nmo) converged orbitals at that geometry (orthonormal there).
+    ci : (F, na_strings, nb_strings) CI vectors, already sign-aligned (the phases of the states
+        whose couplings/dipoles were returned).
+    energies : (F,) energies of that step, Eh.
+    signature : tuple identifying the electronic problem (symbols, basis, charge, spin, active
+        space); a guess from another problem is rejected.
+    """
+
+    positions_bohr: np.ndarray
+    mo_coeff: np.ndarray
+    ci: np.ndarray
+    energies: np.ndarray
+    signature: tuple
+
+
+def orthonormality_error(mo_coeff: np.ndarray, ao_overlap: np.ndarray) -> float:
+    """max |CᵀSC − 1| (dimensionless) for orbitals C in an AO basis with overlap S."""
+    m = mo_coeff.T @ ao_overlap @ mo_coeff
+    return float(np.max(np.abs(m - np.eye(m.shape[0]))))
+
+
+def lowdin_orthonormalize(mo_coeff: np.ndarray, ao_overlap: np.ndarray) -> np.ndarray:
+    """Symmetric (Löwdin) orthonormalisation C → C (CᵀSC)^(−1/2).
+
+    Löwdin, J. Chem. Phys. 18, 365 (1950): among all orthonormal sets it is the closest to C in the
+    S-metric, so orbital character and order are kept (from memory; standard practice).
+    """
+    m = mo_coeff.T @ ao_overlap @ mo_coeff
+    w, v = np.linalg.eigh(0.5 * (m + m.T))
+    if w.min() <= 1e-12 * max(1.0, w.max()):
+        raise BackendError(f"starting orbitals are linearly dependent (min eigenvalue of CᵀSC {w.min():.3e})")
+    return mo_coeff @ (v * w ** -0.5) @ v.T
+
+
+def _string_occupations(ncas: int, nelec: int) -> np.ndarray:
+    """(nstrings, nelec) occupied active orbitals of each PySCF CI string, ascending."""
+    from pyscf.fci import cistring
+
+    strings = cistring.make_strings(range(ncas), nelec)
+    occ = np.array([[i for i in range(ncas) if (int(s) >> i) & 1] for s in strings], dtype=int)
+    return occ.reshape(len(strings), nelec)
+
+
+def _string_overlap_dets(mo_overlap: np.ndarray, ncore: int, ncas: int, nelec: int) -> np.ndarray:
+    """D[I, J] = det of the MO overlap over occupied orbitals (core + string I | core + string J)."""
+    occ = _string_occupations(ncas, nelec) + ncore
+    core = np.arange(ncore)
+    full = np.array([np.concatenate([core, o]) for o in occ], dtype=int)
+    n_str, n_occ = full.shape
+    if n_occ == 0:
+        return np.ones((n_str, n_str))
+    blocks = mo_overlap[full[:, None, :, None], full[None, :, None, :]]  # (I, J, n_occ, n_occ)
+    return np.linalg.det(blocks)
+
+
+def ci_overlap_matrix(mo_prev: np.ndarray, ci_prev: Sequence[np.ndarray], mo_new: np.ndarray,
+                      ci_new: Sequence[np.ndarray], ao_cross_overlap: np.ndarray, ncore: int,
+                      ncas: int, nelecas: tuple[int, int]) -> np.ndarray:
+    """S_kl = ⟨ψ_k(prev)|ψ_l(new)⟩ (dimensionless) for CAS wavefunctions at two geometries.
+
+    ⟨D_I|D_J⟩ = det(S^α_IJ) det(S^β_IJ) with S = C_prevᵀ S_AO(prev, new) C_new over the occupied
+    orbitals of each determinant (Löwdin, Phys. Rev. 97, 1474 (1955), from memory); core orbitals
+    are included in every determinant.  With c[Iα, Iβ] the CI coefficients,
+    S_kl = Σ c^prev_k[Iα,Iβ] Dα[Iα,Jα] Dβ[Iβ,Jβ] c^new_l[Jα,Jβ].
+    """
+    s_mo = mo_prev.T @ ao_cross_overlap @ mo_new
+    na, nb = nelecas
+    d_a = _string_overlap_dets(s_mo, ncore, ncas, na)
+    d_b = d_a if nb == na else _string_overlap_dets(s_mo, ncore, ncas, nb)
+    nk, nl = len(ci_prev), len(ci_new)
+    out = np.empty((nk, nl))
+    for l in range(nl):
+        t = d_a @ np.asarray(ci_new[l]).reshape(d_a.shape[1], d_b.shape[1]) @ d_b.T
+        for k in range(nk):
+            out[k, l] = float(np.sum(np.asarray(ci_prev[k]).reshape(t.shape) * t))
+    return out
+
+
+def active_overlap_min_singular(mo_prev: np.ndarray, mo_new: np.ndarray, ao_cross_overlap: np.ndarray,
+                                ncore: int, ncas: int) -> float:
+    """Smallest singular value of the active-orbital overlap C_act,prevᵀ S_AO C_act,new.
+
+    Close to 1 when the active space is carried smoothly; a drop means an orbital left the active
+    space (the states' meaning changed).  Dimensionless.
+    """
+    a_prev = mo_prev[:, ncore:ncore + ncas]
+    a_new = mo_new[:, ncore:ncore + ncas]
+    return float(np.linalg.svd(a_prev.T @ ao_cross_overlap @ a_new, compute_uv=False).min())
+
+
+class CASSCFBackend:
+    """SA-CASSCF electronic backend (PySCF), equal state weights.
+
+    Parameters
+    ----------
+    symbols : element symbols, one per atom (order of ``positions_bohr``).
+    basis : PySCF basis name (e.g. ``"sto-3g"``, ``"6-31g"``).
+    ncas : number of active orbitals.
+    nelecas : active electrons, int or (n_alpha, n_beta).
+    nstates : number of states averaged (equal weights) and returned, ≥ 2.
+    charge, spin : total charge and 2S (PySCF convention).
+    cas_orbitals : optional 0-based indices of the SCF orbitals that form the active space on a cold
+        start (warm starts carry the previous active orbitals).
+    density_fitting : density-fitted integrals for SCF, CASSCF and gradients.  PySCF's NAC class
+        is not density-fitting aware: NAC vectors are then built with exact integrals on the DF
+        orbitals/CI, inconsistent with the DF energies at the level of the fitting error.
+    nac_form : ``"full"`` (⟨ψ_a|∇ψ_b⟩ with the CSF term; matches overlap derivatives) or ``"etf"``
+        (electron-translation factors; translation-invariant, momentum-conserving).
+    spin_purity : ``"shift"`` (spin-penalty shift), ``"spin0"`` (spin-adapted singlet solver,
+        only for spin 0 with n_alpha = n_beta) or ``"none"``.
+    spin_shift : penalty in Eh for ``"shift"``.
+    spin_tolerance : allowed |⟨S²⟩ − S(S+1)| per state.
+    conv_tol, conv_tol_grad : CASSCF energy (Eh) and orbital-gradient thresholds (§7.10b).
+    max_cycle_macro : CASSCF macro-iteration limit for every attempt of the fallback ladder.
+    active_space_warning : warn when the smallest singular value of the active-orbital overlap
+        with the previous step falls below this.
+    gradient_method : ``"plain"`` (one PySCF call per gradient/NAC).
+    """
+
+    def __init__(self, symbols: Sequence[str], basis: str = "sto-3g", ncas: int = 2,
+                 nelecas: int | tuple[int, int] = 2, nstates: int = 2, charge: int = 0, spin: int = 0,
+                 cas_orbitals: Sequence[int] | None = None, density_fitting: bool = False,
+                 nac_form: str = "full", spin_purity: str = "shift", spin_shift: float = 1.0,
+                 spin_tolerance: float = 1e-3, conv_tol: float = 1e-10, conv_tol_grad: float = 1e-6,
+                 max_cycle_macro: int = 50, active_space_warning: float = 0.9,
+                 gradient_method: str = "plain"):
+        self.symbols = [str(s) for s in symbols]
+        if not self.symbols:
+            raise ValueError("symbols: need at least one atom")
+        self.basis = basis
+        self.charge = int(charge)
+        self.spin = int(spin)
+        if int(ncas) < 1:
+            raise ValueError(f"ncas must be a positive integer, got {ncas}")
+        self.ncas = int(ncas)
+        if isinstance(nelecas, (int, np.integer)):
+            ne = int(nelecas)
+            if ne < 0 or (ne - self.spin) % 2:
+                raise ValueError(f"nelecas={ne} is incompatible with spin={self.spin} (2S)")
+            self.nelecas = ((ne + self.spin) // 2, (ne - self.spin) // 2)
+        else:
+            na, nb = (int(x) for x in nelecas)
+            self.nelecas = (na, nb)
+        if min(self.nelecas) < 0 or max(self.nelecas) > self.ncas:
+            raise ValueError(f"nelecas={self.nelecas} does not fit in ncas={self.ncas} orbitals")
+        if int(nstates) < 1:
+            raise ValueError(f"nstates must be >= 1, got {nstates}")
+        self.nstates = int(nstates)
+        self.cas_orbitals = None if cas_orbitals is None else [int(i) for i in cas_orbitals]
+        if self.cas_orbitals is not None and len(self.cas_orbitals) != self.ncas:
+            raise ValueError(f"cas_orbitals must list exactly ncas={self.ncas} orbitals, got {len(self.cas_orbitals)}")
+        self.density_fitting = bool(density_fitting)
+        if nac_form not in _NAC_FORMS:
+            raise ValueError(f"nac_form must be one of {_NAC_FORMS}, got {nac_form!r}")
+        self.nac_form = nac_form
+        if spin_purity not in _SPIN_PURITY:
+            raise ValueError(f"spin_purity must be one of {_SPIN_PURITY}, got {spin_purity!r}")
+        if spin_purity == "spin0" and (self.spin != 0 or self.nelecas[0] != self.nelecas[1]):
+            raise ValueError("spin_purity='spin0' needs spin=0 and equal alpha/beta active electrons")
+        self.spin_purity = spin_purity
+        self.spin_shift = float(spin_shift)
+        self.spin_tolerance = float(spin_tolerance)
+        self.conv_tol = float(conv_tol)
+        self.conv_tol_grad = float(conv_tol_grad)
+        if int(max_cycle_macro) < 1:
+            raise ValueError(f"max_cycle_macro must be >= 1, got {max_cycle_macro}")
+        self.max_cycle_macro = int(max_cycle_macro)
+        self.active_space_warning = float(active_space_warning)
+        if gradient_method not in ("plain", "one_pass"):
+            raise ValueError(f"gradient_method must be 'plain' or 'one_pass', got {gradient_method!r}")
+        self.gradient_method = gradient_method
+        s = self.spin / 2.0
+        self.target_spin_squared = s * (s + 1.0)
+        # Fail early on an impossible electron count.
+        mol = self._build_mol(np.zeros((len(self.symbols), 3)) + np.arange(len(self.symbols))[:, None] * 3.0)
+        self.ncore = (mol.nelectron - sum(self.nelecas)) // 2
+        if self.ncore < 0 or (mol.nelectron - sum(self.nelecas)) % 2:
+            raise ValueError(f"nelecas={self.nelecas} incompatible with {mol.nelectron} electrons")
+        if self.ncore + self.ncas > mol.nao_nr():
+            raise ValueError(f"ncas={self.ncas} plus {self.ncore} core orbitals exceed {mol.nao_nr()} basis functions")
+
+    # ------------------------------------------------------------------ helpers
+    @property
+    def signature(self) -> tuple:
+        return (tuple(self.symbols), str(self.basis), self.charge, self.spin, self.ncas,
+                self.nelecas, self.nstates)
+
+    def _build_mol(self, positions_bohr: np.ndarray):
+        _pyscf()
+        from pyscf import gto
+
+        atom = [(sym, tuple(float(x) for x in r)) for sym, r in zip(self.symbols, positions_bohr)]
+        return gto.M(atom=atom, basis=self.basis, unit="Bohr", charge=self.charge, spin=self.spin,
+                     verbose=0, max_memory=2000)
+
+    def _run_scf(self, mol, damped: bool = False):
+        from pyscf import scf
+
+        mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
+        if self.density_fitting:
+            mf = mf.density_fit()
+        mf.conv_tol = 1e-12
+        mf.max_cycle = 200
+        if damped:
+            mf.level_shift = 0.3
+            mf.damp = 0.5
+            mf.diis_start_cycle = 4
+        mf.kernel()
+        return mf
+
+    def _make_mc(self, mf):
+        from pyscf import mcscf
+
+        mc = mcscf.CASSCF(mf, self.ncas, self.nelecas)
+        if self.spin_purity == "spin0":
+            from pyscf.fci import direct_spin0
+
+            mc.fcisolver = direct_spin0.FCI(mf.mol)
+        elif self.spin_purity == "shift":
+            mc.fix_spin_(shift=self.spin_shift, ss=self.target_spin_squared)
+        mc = mc.state_average_([1.0 / self.nstates] * self.nstates)
+        mc.conv_tol = self.conv_tol
+        mc.conv_tol_grad = self.conv_tol_grad
+        mc.max_cycle_macro = self.max_cycle_macro
+        mc.verbose = 0
+        return mc
+
+    def _solve_casscf(self, mc, mo_start: np.ndarray, ci_start=None, damped: bool = False) -> dict:
+        """Run CASSCF from ``mo_start``; refuse non-orthonormal starting orbitals."""
+        err = orthonormality_error(mo_start, mc.mol.intor_symmetric("int1e_ovlp"))
+        if err > ORTHONORMALITY_TOL:
+            raise BackendError(f"starting orbitals not orthonormal at this geometry: max|CᵀSC-1| = {err:.2e} "
+                               f"> {ORTHONORMALITY_TOL:.0e}")
+        if damped:
+            mc.max_stepsize = 0.01
+            mc.ah_level_shift = 1e-4
+            mc.max_cycle_micro = 6
+        count = {"macro": 0}
+
+        def _count(envs):
+            count["macro"] = max(count["macro"], int(envs.get("imacro", 0)))  # 1-based in PySCF
+
+        mc.callback = _count
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            mc.kernel(mo_start, ci0=ci_start)
+        return {"macro_iterations": count["macro"]}
+
+    def _check_guess(self, guess: Any, mol) -> CASSCFGuess:
+        if not isinstance(guess, CASSCFGuess):
+            raise ValueError(f"guess must be a CASSCFGuess from this backend or None, got {type(guess).__name__}")
+        if guess.signature != self.signature:
+            raise ValueError("guess: produced for a different molecule/basis/active space")
+        if guess.mo_coeff.shape[0] != mol.nao_nr():
+            raise ValueError("guess: orbital coefficients do not match the basis size")
+        return guess
+
+    def _spin_squares(self, ci) -> np.ndarray:
+        from pyscf.fci.spin_op import spin_square0
+
+        return np.array([spin_square0(np.asarray(c), self.ncas, self.nelecas)[0] for c in ci])
+
+    # ------------------------------------------------------------------ main entry
+    def compute(self, positions_bohr: np.ndarray, guess: CASSCFGuess | None = None,
+                need_gradients: bool = True) -> ElectronicResult:
+        """SA-CASSCF energies (Eh), gradients (Eh/Bohr), NACs (1/Bohr), overlaps, dipoles (e·Bohr).
+
+        ``positions_bohr`` (N, 3) in Bohr.  ``guess`` is the previous step's ``result.guess`` (or
+        None for a cold start).  With ``need_gradients=False`` gradients and couplings are None.
+        Raises :class:`BackendError` when the fallback ladder is exhausted.
+        """
+        t_start = time.perf_counter()
+        pos = np.asarray(positions_bohr, dtype=float)
+        if pos.shape != (len(self.symbols), 3) or not np.all(np.isfinite(pos)):
+            raise ValueError(f"positions_bohr must be a finite ({len(self.symbols)}, 3) array, got shape {pos.shape}")
+        timings: dict[str, float] = {}
+        mol = self._build_mol(pos)
+        prev = None if guess is None else self._check_guess(guess, mol)
+        s_ao = mol.intor_symmetric("int1e_ovlp")
+
+        attempts: list[dict] = []
+        mc = None
+        mf_cache: dict[str, Any] = {}
+
+        def cold_orbitals(damped_scf: bool):
+            t0 = time.perf_counter()
+            mf = self._run_scf(mol, damped=damped_scf)
+            timings["scf"] = timings.get("scf", 0.0) + time.perf_counter() - t0
+            if not mf.converged:
+                raise BackendError("SCF did not converge")
+            mf_cache["mf"] = mf
+            mo = mf.mo_coeff
+            if self.cas_orbitals is not None:
+                from pyscf import mcscf
+
+                mo = mcscf.sort_mo(self._make_mc(mf), mo, self.cas_orbitals, base=0)
+            return mf, mo, None
+
+        def warm_orbitals():
+            mo = lowdin_orthonormalize(prev.mo_coeff, s_ao)
+            err = orthonormality_error(mo, s_ao)
+            if err > ORTHONORMALITY_TOL:
+                raise BackendError(f"Löwdin-orthonormalised guess fails the guard: max|CᵀSC-1| = {err:.2e}")
+            mf = mf_cache.get("mf")
+            if mf is None:
+                from pyscf import scf
+
+                mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
+                if self.density_fitting:
+                    mf = mf.density_fit()
+            return mf, mo, [np.asarray(c) for c in prev.ci]
+
+        ladder = []
+        if prev is not None:
+            ladder.append(("warm start: previous orbitals (Löwdin) and CI", warm_orbitals, False))
+            ladder.append(("warm start, damped (max_stepsize 0.01, ah_level_shift 1e-4)", warm_orbitals, True))
+            ladder.append(("cold start from fresh SCF", lambda: cold_orbitals(False), False))
+        else:
+            ladder.append(("cold start from SCF", lambda: cold_orbitals(False), False))
+            ladder.append(("cold start, damped (max_stepsize 0.01, ah_level_shift 1e-4)",
+                           lambda: (mf_cache["mf"], mf_cache["mo"], None) if "mo" in mf_cache
+                           else cold_orbitals(False), True))
+        ladder.append(("cold start from level-shifted damped SCF, damped CASSCF", lambda: cold_orbitals(True), True))
+
+        t0 = time.perf_counter()
+        for what, start, damped in ladder:
+            ta = time.perf_counter()
+            record: dict[str, Any] = {"what": what}
+            try:
+                mf, mo0, ci0 = start()
+                if "mo" not in mf_cache and ci0 is None:
+                    mf_cache["mo"] = mo0
+                trial = self._make_mc(mf)
+                info = self._solve_casscf(trial, mo0, ci0, damped=damped)
+                record.update(info)
+                if not trial.converged:
+                    raise BackendError(f"CASSCF not converged in {self.max_cycle_macro} macro-iterations")
+                ss = self._spin_squares(trial.ci)
+                bad = np.abs(ss - self.target_spin_squared) > self.spin_tolerance
+                if np.any(bad):
+                    raise BackendError(f"spin contamination: <S^2> = {np.round(ss, 4).tolist()} "
+                                       f"(target {self.target_spin_squared})")
+                record["outcome"] = "converged"
+                record["seconds"] = time.perf_counter() - ta
+                attempts.append(record)
+                mc = trial
+                break
+            except BackendError as exc:
+                record["outcome"] = f"failed: {exc.reason}"
+                record["seconds"] = time.perf_counter() - ta
+                attempts.append(record)
+            except (np.linalg.LinAlgError, RuntimeError, ArithmeticError) as exc:
+                record["outcome"] = f"failed: {type(exc).__name__}: {exc}"
+                record["seconds"] = time.perf_counter() - ta
+                attempts.append(record)
+        timings["casscf"] = time.perf_counter() - t0 - timings.get("scf", 0.0)
+        if mc is None:
+            raise BackendError("SA-CASSCF failed after the whole fallback ladder", attempts)
+
+        energies = np.asarray(mc.e_states, dtype=float).copy()
+        ci_raw = [np.asarray(c).copy() for c in mc.ci]
+        if np.any(np.diff(energies) < -1e-12):  # roots come back sorted; keep the contract anyway
+            order = np.argsort(energies, kind="stable")
+            energies = energies[order]
+            ci_raw = [ci_raw[i] for i in order]
+            mc.ci = [mc.ci[i] for i in order]
+        spin_sq = self._spin_squares(ci_raw)
+        mo = np.asarray(mc.mo_coeff)
+
+        diagnostics: dict[str, Any] = {"attempts": attempts, "macro_iterations": attempts[-1].get("macro_iterations"),
+                                       "warm_start": prev is not None and attempts[-1]["what"].startswith("warm")}
+
+        # --- overlaps with the previous step, sign alignment
+        t0 = time.perf_counter()
+        signs = np.ones(self.nstates)
+        overlap = None
+        if prev is not None:
+            prev_mol = self._build_mol(prev.positions_bohr)
+            from pyscf import gto
+
+            s_cross = gto.intor_cross("int1e_ovlp", prev_mol, mol)
+            raw = ci_overlap_matrix(prev.mo_coeff, prev.ci, mo, ci_raw, s_cross, self.ncore, self.ncas,
+                                    self.nelecas)
+            match = match_states(raw)
+            signs = match.signs
+            overlap = match.overlap
+            diagnostics.update(match.as_diagnostics())
+            diagnostics["overlap_raw"] = raw
+            smin = active_overlap_min_singular(prev.mo_coeff, mo, s_cross, self.ncore, self.ncas)
+            diagnostics["active_overlap_min_singular"] = smin
+            diagnostics["active_space_change"] = smin < self.active_space_warning
+            if smin < self.active_space_warning:
+                warnings.warn(f"active space changed between steps: smallest active-orbital overlap singular "
+                              f"value {smin:.3f} < {self.active_space_warning}", RuntimeWarning, stacklevel=2)
+        timings["overlap"] = time.perf_counter() - t0
+
+        # --- transition dipoles
+        t0 = time.perf_counter()
+        dipoles = self._dipoles(mol, mo, ci_raw)
+        timings["dipoles"] = time.perf_counter() - t0
+
+        gradients = couplings = None
+        converged = True
+        if need_gradients:
+            gradients, couplings, grad_info = self._gradients_and_couplings(mc, timings)
+            diagnostics.update(grad_info)
+            converged = bool(grad_info["gradients_converged"] and grad_info["couplings_converged"])
+        couplings, dipoles = apply_state_signs(signs, couplings, dipoles)
+        ci_aligned = np.array([s * c for s, c in zip(signs, ci_raw)])
+        timings["total"] = time.perf_counter() - t_start
+        diagnostics["timings"] = timings
+        new_guess = CASSCFGuess(positions_bohr=pos.copy(), mo_coeff=mo.copy(), ci=ci_aligned,
+                                energies=energies.copy(), signature=self.signature)
+        result = ElectronicResult(energies=energies, gradients=gradients, couplings=couplings,
+                                  overlap_prev=overlap, transition_dipoles=dipoles, spin_squared=spin_sq,
+                                  guess=new_guess, converged=converged, diagnostics=diagnostics)
+        return result.validate(natoms=len(self.symbols))
+
+    # ------------------------------------------------------------------ properties
+    def _dipoles(self, mol, mo: np.ndarray, ci) -> np.ndarray:
+        """μ_kl = −tr(r D^kl) (+ nuclear term on the diagonal), e·Bohr; origin at the nuclear charge centre.
+
+        Off-diagonal elements use the active transition density C_act γ^kl C_actᵀ (core cancels by
+        orthogonality); the origin only affects the diagonal of charged systems.
+        """
+        from pyscf.fci import direct_spin1
+
+        charges = mol.atom_charges()
+        coords = mol.atom_coords()
+        origin = charges @ coords / charges.sum()
+        with mol.with_common_orig(origin):
+            r_ao = mol.intor_symmetric("int1e_r", comp=3)
+        c_core = mo[:, :self.ncore]
+        c_act = mo[:, self.ncore:self.ncore + self.ncas]
+        dm_core = 2.0 * c_core @ c_core.T
+        nuc = charges @ (coords - origin)
+        f = len(ci)
+        mu = np.zeros((f, f, 3))
+        for k in range(f):
+            for l in range(k, f):
+                t = direct_spin1.trans_rdm1(ci[k], ci[l], self.ncas, self.nelecas)
+                dm = c_act @ t @ c_act.T
+                if k == l:
+                    mu[k, k] = nuc - np.einsum("xij,ij->x", r_ao, dm + dm_core)
+                else:
+                    v = -np.einsum("xij,ij->x", r_ao, 0.5 * (dm + dm.T))
+                    mu[k, l] = mu[l, k] = v
+        return mu
+
+    def _gradients_and_couplings(self, mc, timings: dict) -> tuple[np.ndarray, np.ndarray, dict]:
+        """All state gradients (Eh/Bohr) and NAC vectors d_ab = ⟨a|∇b⟩ (1/Bohr), raw CI phases."""
+        f = self.nstates
+        natm = len(self.symbols)
+        info: dict[str, Any] = {}
+        if self.gradient_method == "one_pass":
+            from mapdyn.backends.casscf_response import one_pass_gradients_and_couplings
+
+            t0 = time.perf_counter()
+            grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf")
+            timings.update(info.pop("timings", {}))
+            timings["gradients_and_couplings"] = time.perf_counter() - t0
+            return grads, nacs, info
+        t0 = time.perf_counter()
+        grads = np.zeros((f, natm, 3))
+        gconv = True
+        mc_grad = mc.nuc_grad_method()
+        mc_grad.verbose = 0
+        for k in range(f):
+            grads[k] = mc_grad.kernel(state=k)
+            gconv = gconv and bool(mc_grad.converged)
+        timings["gradients"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        nacs = np.zeros((f, f, natm, 3))
+        nconv = True
+        if f > 1:
+            nac = mc.nac_method()
+            nac.verbose = 0
+            for a in range(f):
+                for b in range(a + 1, f):
+                    d = nac.kernel(state=(a, b), use_etfs=self.nac_form == "etf")
+                    nconv = nconv and bool(nac.converged)
+                    nacs[a, b] = d
+                    nacs[b, a] = -d
+        timings["couplings"] = time.perf_counter() - t0
+        info["gradients_converged"] = gconv
+        info["couplings_converged"] = nconv
+        if not (gconv and nconv):
+            warnings.warn("SA-CASSCF response (Lagrange multiplier) equations did not converge",
+                          RuntimeWarning, stacklevel=3)
+        return grads, nacs, info
