@@ -1,0 +1,563 @@
+"""PySCF linear-response backend: RHF/RKS reference + TDA (CIS-like) or full TDDFT singlet states.
+
+Hartree atomic units throughout: positions in Bohr, energies in Eh, gradients in Eh/Bohr,
+dipoles in e·Bohr, time in ħ/Eh.
+
+What this backend returns (``ElectronicResult``, see ``mapdyn.electronic``):
+
+* state 0 is the closed-shell reference determinant (RHF or RKS) with its analytic SCF gradient;
+  states 1..F-1 are the lowest singlet linear-response roots with analytic gradients
+  (``pyscf.grad.tdrhf`` / ``pyscf.grad.tdrks``).
+* ``couplings`` is always ``None``: PySCF 2.14 has no TDA/TDDFT nonadiabatic coupling vectors.
+  Couplings come from ``overlap_prev`` instead, as time-derivative couplings
+  σ = (S − Sᵀ)/(2Δt) (:func:`time_derivative_couplings`, Hammes-Schiffer & Tully 1994).
+* ``overlap_prev[k, l] = <Ψ_k(previous)|Ψ_l(this)>`` from the MO cross-overlap, analytic, O(N³)
+  (:func:`determinant_state_overlaps`), sign-aligned with ``match_states``.
+* ``transition_dipoles[k, l] = <Ψ_k|μ|Ψ_l>`` with μ = −Σ_e r_e + Σ_A Z_A R_A (origin at the
+  coordinate origin of ``positions_bohr``).  Row/column 0 is the linear-response transition dipole
+  (X+Y for full TDDFT, X for TDA); the excited–excited block and the diagonal are the CIS-like
+  (unrelaxed) values from the normalised X amplitudes.
+* ``diagnostics["oscillator_strengths"]``: (F−1,) f_0k = (2/3)(E_k − E_0)|μ_0k|², dimensionless.
+* ``spin_squared``: zeros — the reference is a closed-shell determinant and the roots are
+  spin-adapted singlets, so <S²> = 0 by construction.
+
+State convention (used for overlaps and dipoles): a singlet root is
+|Ψ_K> = Σ_ia X̃_ia (a†_aα a_iα + a†_aβ a_iβ)|Φ_0>, normalised by 2 Σ_ia X̃_ia² = 1, i.e. PySCF's TDA
+X (Σ X² = 1/2) as is.  For full TDDFT the overlaps use the **X-only** convention: X̃ = X rescaled to
+2 Σ X̃² = 1 (Y is dropped; its weight is small away from instabilities).  Caveat for users: linear
+response from a single reference describes S1/S0 crossings (conical intersections with the ground
+state) qualitatively wrongly; near them excitation energies can go to zero or negative, which this
+backend reports as a ``BackendError``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import time
+from typing import Any, Sequence
+
+import numpy as np
+
+from mapdyn.electronic import BackendError, ElectronicResult, apply_state_signs, match_states
+
+__all__ = [
+    "TDDFTBackend",
+    "TDDFTGuess",
+    "determinant_state_overlaps",
+    "time_derivative_couplings",
+    "normalise_cis_amplitudes",
+]
+
+#: Smallest singular value of the occupied–occupied MO overlap block below which state overlaps
+#: are refused (the occupied space changed too much within one step for the expansion to be
+#: trusted numerically).
+DEFAULT_SINGULAR_TOL = 1e-3
+
+#: Tolerance on |C'ᵀ S C' − 1| for a warm-start orbital set after Löwdin orthonormalisation
+#: (DESIGN.md §7.10b: unorthonormalised warm starts converge to wrong energies).
+WARM_START_ORTHO_TOL = 1e-10
+
+
+# ---------------------------------------------------------------------------------------------
+# Pure linear algebra: state overlaps and time-derivative couplings
+# ---------------------------------------------------------------------------------------------
+
+def normalise_cis_amplitudes(x: np.ndarray) -> np.ndarray:
+    """Rescale singlet amplitudes X (..., nocc, nvir) so that 2 Σ_ia X_ia² = 1 (dimensionless).
+
+    With |Ψ> = Σ_ia X_ia (a†_aα a_iα + a†_aβ a_iβ)|Φ_0> the norm is <Ψ|Ψ> = 2 Σ X² (the two spin
+    blocks are orthogonal determinants); PySCF's TDA amplitudes already satisfy Σ X² = 1/2.
+    """
+    x = np.asarray(x, dtype=float)
+    norm = np.sqrt(2.0 * np.sum(x * x, axis=(-2, -1), keepdims=True))
+    if np.any(norm == 0.0):
+        raise ValueError("x: amplitude vector with zero norm cannot be normalised")
+    return x / norm
+
+
+def determinant_state_overlaps(mo_overlap: np.ndarray, nocc: int, x_prev: np.ndarray,
+                               x_new: np.ndarray, singular_tol: float = DEFAULT_SINGULAR_TOL
+                               ) -> tuple[np.ndarray, float]:
+    """Overlaps <Ψ_K(prev)|Ψ_L(new)> of the reference determinant and CIS-like singlets, O(N³).
+
+    Parameters
+    ----------
+    mo_overlap : (nmo, nmo) S_pq = <φ_p(prev)|φ_q(new)> (spatial MOs, dimensionless).
+    nocc : number of doubly occupied orbitals (the first ``nocc`` MOs on both sides).
+    x_prev, x_new : (n_prev, nocc, nvir), (n_new, nocc, nvir) singlet amplitudes normalised to
+        2 Σ X² = 1 (see :func:`normalise_cis_amplitudes`).
+    singular_tol : refuse when the smallest singular value of S_oo is below this.
+
+    Returns
+    -------
+    overlap : (1 + n_prev, 1 + n_new) with index 0 the reference determinant.
+    sigma_min : smallest singular value of the occupied–occupied block S_oo.
+
+    Equations (derived here; checked against explicit spin-orbital determinants in
+    ``tests/test_backend_tddft.py``).  With A = S_oo, d = det A, P = (S_vo A⁻¹)ᵀ, Q = A⁻¹ S_ov and
+    the Schur-complemented virtual block C = S_vv − S_vo A⁻¹ S_ov, the same-spin single
+    replacement determinant is d[C_ab (A⁻¹)_ji + P_ia Q_jb] (cofactor of the bordered matrix),
+    the one-sided ones are d P_ia and d Q_jb, and with both spin blocks (Löwdin's rule: the overlap
+    of two determinants is the determinant of the spin-orbital overlaps):
+
+        <Φ_0|Φ'_0> = d²,   <Φ_0|Ψ'_L> = 2 d² <X'_L, Q>,   <Ψ_K|Φ'_0> = 2 d² <X_K, P>,
+        <Ψ_K|Ψ'_L> = 2 d² [ tr(X_K C X'_Lᵀ A⁻¹) + 2 <X_K, P> <X'_L, Q> ].
+    """
+    s = np.asarray(mo_overlap, dtype=float)
+    xp = np.asarray(x_prev, dtype=float)
+    xn = np.asarray(x_new, dtype=float)
+    if s.ndim != 2 or s.shape[0] != s.shape[1]:
+        raise ValueError(f"mo_overlap must be square, got shape {s.shape}")
+    nmo = s.shape[0]
+    if not 0 < nocc < nmo:
+        raise ValueError(f"nocc must be in 1..{nmo - 1}, got {nocc}")
+    nvir = nmo - nocc
+    for name, x in (("x_prev", xp), ("x_new", xn)):
+        if x.ndim != 3 or x.shape[1:] != (nocc, nvir):
+            raise ValueError(f"{name} must have shape (n, {nocc}, {nvir}), got {x.shape}")
+    a = s[:nocc, :nocc]
+    sigma = np.linalg.svd(a, compute_uv=False)
+    sigma_min = float(sigma[-1])
+    if sigma_min < singular_tol:
+        raise BackendError(
+            f"occupied-occupied MO overlap between consecutive geometries is nearly singular "
+            f"(smallest singular value {sigma_min:.2e} < {singular_tol:.1e}): the step is too "
+            f"long or the occupied space changed character",
+            [{"what": "state overlap from MO cross-overlap", "outcome": f"sigma_min={sigma_min:.3e}"}],
+        )
+    d2 = float(np.prod(sigma)) ** 2          # (det A)² > 0 for a closed shell
+    a_inv = np.linalg.inv(a)
+    s_ov = s[:nocc, nocc:]
+    s_vo = s[nocc:, :nocc]
+    s_vv = s[nocc:, nocc:]
+    p = (s_vo @ a_inv).T                      # (nocc, nvir)
+    q = a_inv @ s_ov                          # (nocc, nvir)
+    c = s_vv - s_vo @ q                       # (nvir, nvir)
+    xp_p = np.einsum("kia,ia->k", xp, p)
+    xn_q = np.einsum("lia,ia->l", xn, q)
+    # tr(X_K C X'_L^T A^-1) = sum_ij (X_K C X'_L^T)_ij (A^-1)_ji
+    xc = np.einsum("kia,ab->kib", xp, c)
+    xn_ainv = np.einsum("lja,ji->lia", xn, a_inv)        # (A^-1)^T X'_L  -> index (l, i, b)
+    excited = np.einsum("kib,lib->kl", xc, xn_ainv) + 2.0 * np.outer(xp_p, xn_q)
+    out = np.empty((1 + xp.shape[0], 1 + xn.shape[0]))
+    out[0, 0] = d2
+    out[0, 1:] = 2.0 * d2 * xn_q
+    out[1:, 0] = 2.0 * d2 * xp_p
+    out[1:, 1:] = 2.0 * d2 * excited
+    return out, sigma_min
+
+
+def time_derivative_couplings(overlap_aligned: np.ndarray, dt: float) -> np.ndarray:
+    """Mid-step time-derivative couplings σ_kl(t + Δt/2) ≈ (S_kl − S_lk)/(2Δt), in 1/(ħ/Eh).
+
+    ``overlap_aligned[k, l] = <ψ_k(t)|ψ_l(t+Δt)>`` after sign alignment (``match_states``);
+    σ_kl = <ψ_k|∂ψ_l/∂t> = V·d_kl, antisymmetric, error O(Δt²) at the midpoint.
+    Source: Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994); see DESIGN.md §7.6.
+    ``dt`` is the time between the two geometries in atomic time units (ħ/Eh).
+    """
+    s = np.asarray(overlap_aligned, dtype=float)
+    if s.ndim != 2 or s.shape[0] != s.shape[1]:
+        raise ValueError(f"overlap_aligned must be square, got shape {s.shape}")
+    if not np.isfinite(dt) or dt <= 0.0:
+        raise ValueError(f"dt must be a positive finite time in atomic units, got {dt}")
+    return (s - s.T) / (2.0 * dt)
+
+
+# ---------------------------------------------------------------------------------------------
+# Backend
+# ---------------------------------------------------------------------------------------------
+
+@dataclasses.dataclass
+class TDDFTGuess:
+    """What the next ``compute`` call needs (picklable; arrays in atomic units).
+
+    positions_bohr : (N, 3) geometry of this step, Bohr.
+    mo_coeff : (nao, nmo) MO coefficients at that geometry.
+    nocc : number of doubly occupied MOs.
+    x_amplitudes : (F−1, nocc, nvir) excited-state amplitudes, normalised 2ΣX² = 1, with the signs
+        aligned to the previous step (the phase convention the next overlap refers to).
+    fingerprint : (symbols, basis, charge) the guess belongs to.
+    """
+
+    positions_bohr: np.ndarray
+    mo_coeff: np.ndarray
+    nocc: int
+    x_amplitudes: np.ndarray
+    fingerprint: tuple
+
+
+class _CheckedCPHF:
+    """Stand-in for ``pyscf.scf.cphf`` inside the TD gradient modules that records the residual.
+
+    PySCF's Z-vector (CPHF) solver never reports non-convergence; we recompute the residual of
+    (ε_a − ε_i) z + fvind(z) = −w (the equation ``cphf.solve_nos1`` solves) after the solve.
+    """
+
+    def __init__(self, real_module):
+        self._real = real_module
+        self.residuals: list[float] = []
+
+    def solve(self, fvind, mo_energy, mo_occ, h1, s1=None, **kwargs):
+        out = self._real.solve(fvind, mo_energy, mo_occ, h1, s1, **kwargs)
+        if s1 is None:
+            z = np.asarray(out[0])
+            e_a = mo_energy[mo_occ == 0]
+            e_i = mo_energy[mo_occ > 0]
+            lhs = z.reshape(len(e_a), len(e_i)) * (e_a[:, None] - e_i[None, :])
+            lhs = lhs + np.asarray(fvind(z)).reshape(lhs.shape)
+            rhs = -np.asarray(h1).reshape(lhs.shape)
+            self.residuals.append(float(np.linalg.norm(lhs - rhs) / max(np.linalg.norm(rhs), 1e-300)))
+        return out
+
+    def __getattr__(self, name):
+        return getattr(self._real, name)
+
+
+@contextlib.contextmanager
+def _checked_cphf():
+    from pyscf.grad import tdrhf, tdrks
+    from pyscf.scf import cphf
+
+    checker = _CheckedCPHF(cphf)
+    saved = (tdrhf.cphf, tdrks.cphf)
+    tdrhf.cphf = tdrks.cphf = checker
+    try:
+        yield checker
+    finally:
+        tdrhf.cphf, tdrks.cphf = saved
+
+
+class TDDFTBackend:
+    """Closed-shell singlet excited states from PySCF linear response (TDA or full TDDFT).
+
+    Parameters
+    ----------
+    symbols : element symbols, one per atom (order of ``positions_bohr`` rows).
+    charge : total molecular charge (e).
+    spin : 2S; only 0 (closed-shell singlet reference) is supported.
+    basis : any basis name PySCF knows (e.g. "6-31g").
+    xc : None or "hf" → RHF reference and CIS (TDA) / TDHF (RPA); any functional PySCF/libxc parses
+        → RKS reference and TDA / TDDFT.
+    method : "tda" (default) or "tddft" (full linear response, X and Y).
+    nstates : number of states F **including** the ground state (F ≥ 1).
+    scf_conv_tol : SCF energy tolerance (Eh); scf_conv_tol_grad : orbital-gradient tolerance.
+    td_conv_tol : Davidson residual tolerance (Eh); cphf_conv_tol : Z-vector tolerance.
+    cphf_residual_tol : relative Z-vector residual above which a gradient counts as unconverged.
+    grids_level : PySCF DFT grid level (0–9), ignored for HF.
+    extra_roots : additional Davidson roots solved for robustness (not returned).
+    singular_tol : smallest allowed singular value of the occupied–occupied MO overlap.
+    threads : OpenMP threads handed to ``pyscf.lib.num_threads`` during ``compute``.
+    """
+
+    def __init__(self, symbols: Sequence[str], charge: int = 0, spin: int = 0,
+                 basis: str = "6-31g", xc: str | None = None, method: str = "tda",
+                 nstates: int = 3, scf_conv_tol: float = 1e-11, scf_conv_tol_grad: float = 1e-7,
+                 td_conv_tol: float = 1e-7, cphf_conv_tol: float = 1e-9,
+                 cphf_residual_tol: float = 1e-4, grids_level: int = 3, extra_roots: int = 2,
+                 scf_max_cycle: int = 100, td_max_cycle: int = 200,
+                 singular_tol: float = DEFAULT_SINGULAR_TOL, threads: int = 1):
+        from pyscf import gto
+
+        self.symbols = [str(s) for s in symbols]
+        if not self.symbols:
+            raise ValueError("symbols: need at least one atom")
+        if int(spin) != 0:
+            raise ValueError(f"spin: only closed-shell singlets (spin=0) are supported, got {spin}")
+        self.charge = int(charge)
+        self.spin = 0
+        self.basis = basis
+        self.method = str(method).lower()
+        if self.method not in ("tda", "tddft"):
+            raise ValueError(f"method must be 'tda' or 'tddft', got {method!r}")
+        if xc is None or str(xc).lower() in ("hf", "rhf"):
+            self.xc = None
+        else:
+            from pyscf.dft import libxc
+            try:
+                libxc.parse_xc(xc)
+            except (KeyError, ValueError) as err:
+                raise ValueError(f"xc: PySCF does not know the functional {xc!r} ({err})") from None
+            self.xc = str(xc)
+        if int(nstates) < 1:
+            raise ValueError(f"nstates (including the ground state) must be >= 1, got {nstates}")
+        self.nstates = int(nstates)
+        for name, value in (("scf_conv_tol", scf_conv_tol), ("scf_conv_tol_grad", scf_conv_tol_grad),
+                            ("td_conv_tol", td_conv_tol), ("cphf_conv_tol", cphf_conv_tol),
+                            ("cphf_residual_tol", cphf_residual_tol), ("singular_tol", singular_tol)):
+            if not (np.isfinite(value) and value > 0):
+                raise ValueError(f"{name} must be a positive number, got {value}")
+        self.scf_conv_tol = float(scf_conv_tol)
+        self.scf_conv_tol_grad = float(scf_conv_tol_grad)
+        self.td_conv_tol = float(td_conv_tol)
+        self.cphf_conv_tol = float(cphf_conv_tol)
+        self.cphf_residual_tol = float(cphf_residual_tol)
+        self.singular_tol = float(singular_tol)
+        if not 0 <= int(grids_level) <= 9:
+            raise ValueError(f"grids_level must be 0..9, got {grids_level}")
+        self.grids_level = int(grids_level)
+        if int(extra_roots) < 0:
+            raise ValueError(f"extra_roots must be >= 0, got {extra_roots}")
+        self.extra_roots = int(extra_roots)
+        self.scf_max_cycle = int(scf_max_cycle)
+        self.td_max_cycle = int(td_max_cycle)
+        if int(threads) < 1:
+            raise ValueError(f"threads must be >= 1, got {threads}")
+        self.threads = int(threads)
+        # validate the basis and electron count once, at a dummy geometry
+        probe = self._molecule(np.arange(3 * len(self.symbols), dtype=float).reshape(-1, 3) * 2.0)
+        if probe.nelectron % 2:
+            raise ValueError(f"charge: {self.charge} leaves {probe.nelectron} electrons; a closed-shell "
+                             f"singlet needs an even number")
+        self._nocc = probe.nelectron // 2
+        self._nvir = probe.nao_nr() - self._nocc
+        if self.nstates - 1 > self._nocc * self._nvir:
+            raise ValueError(f"nstates: at most {1 + self._nocc * self._nvir} states exist in this basis, "
+                             f"got {self.nstates}")
+        del gto
+
+    # -- helpers ---------------------------------------------------------------------------
+
+    @property
+    def fingerprint(self) -> tuple:
+        return (tuple(self.symbols), str(self.basis), self.charge)
+
+    def _molecule(self, positions_bohr: np.ndarray):
+        from pyscf import gto
+
+        try:
+            return gto.M(atom=[(s, tuple(map(float, r))) for s, r in zip(self.symbols, positions_bohr)],
+                         unit="Bohr", basis=self.basis, charge=self.charge, spin=0, verbose=0,
+                         symmetry=False)
+        except (KeyError, RuntimeError, ValueError) as err:
+            raise ValueError(f"basis/symbols: PySCF cannot build the molecule ({err})") from None
+
+    def _scf_object(self, mol):
+        from pyscf import dft, scf
+
+        if self.xc is None:
+            mf = scf.RHF(mol)
+        else:
+            mf = dft.RKS(mol, xc=self.xc)
+            mf.grids.level = self.grids_level
+        mf.conv_tol = self.scf_conv_tol
+        mf.conv_tol_grad = self.scf_conv_tol_grad
+        mf.max_cycle = self.scf_max_cycle
+        mf.verbose = 0
+        return mf
+
+    def _run_scf(self, mol, guess: TDDFTGuess | None, attempts: list[dict]):
+        plans = []
+        if guess is not None:
+            plans.append("warm start from previous orbitals")
+        plans += ["cold start (minao)", "second-order SCF from cold start"]
+        for plan in plans:
+            mf = self._scf_object(mol)
+            dm0 = None
+            if plan.startswith("warm"):
+                c = np.asarray(guess.mo_coeff)
+                s_ao = mol.intor("int1e_ovlp")
+                m = c.T @ s_ao @ c
+                w, v = np.linalg.eigh(m)
+                if w[0] <= 1e-8:
+                    attempts.append({"what": plan, "outcome": "previous orbitals linearly dependent here"})
+                    continue
+                c_orth = c @ (v * w ** -0.5) @ v.T
+                err = float(np.max(np.abs(c_orth.T @ s_ao @ c_orth - np.eye(c.shape[1]))))
+                if err > WARM_START_ORTHO_TOL:
+                    attempts.append({"what": plan, "outcome": f"orthonormalisation error {err:.1e}"})
+                    continue
+                occ = np.zeros(c.shape[1])
+                occ[:guess.nocc] = 2.0
+                dm0 = mf.make_rdm1(c_orth, occ)
+            if plan.startswith("second"):
+                mf = mf.newton()
+            mf.kernel(dm0=dm0)
+            outcome = "converged" if mf.converged else "not converged"
+            attempts.append({"what": plan, "outcome": f"{outcome} (E={mf.e_tot:.10f}, cycles={getattr(mf, 'cycles', '?')})"})
+            if mf.converged:
+                return mf
+        raise BackendError("SCF did not converge", attempts)
+
+    def _run_td(self, mf, attempts: list[dict]):
+        nexc = self.nstates - 1
+        maxroots = self._nocc * self._nvir
+        plans = [(min(nexc + self.extra_roots, maxroots), self.td_max_cycle),
+                 (min(nexc + self.extra_roots + 3, maxroots), 3 * self.td_max_cycle)]
+        for nroots, max_cycle in plans:
+            if self.method == "tda":
+                td = mf.TDA()
+            else:
+                td = mf.TDDFT() if self.xc is not None else mf.TDHF()
+            td.nstates = nroots
+            td.conv_tol = self.td_conv_tol
+            td.max_cycle = max_cycle
+            td.verbose = 0
+            td.kernel()
+            conv = np.asarray(td.converged, dtype=bool)
+            ok = len(td.e) >= nexc and bool(np.all(conv[:nexc]))
+            attempts.append({"what": f"{self.method.upper()} Davidson, {nroots} roots, max_cycle={max_cycle}",
+                             "outcome": "converged" if ok else f"not converged (flags {conv.tolist()})"})
+            if ok:
+                return td
+        raise BackendError(f"{self.method.upper()} Davidson did not converge", attempts)
+
+    # -- the contract --------------------------------------------------------------------
+
+    def compute(self, positions_bohr: np.ndarray, guess: Any = None,
+                need_gradients: bool = True) -> ElectronicResult:
+        """Energies (Eh), gradients (Eh/Bohr), overlaps and dipoles at ``positions_bohr`` (N, 3) Bohr.
+
+        ``guess`` is ``None`` or the ``TDDFTGuess`` of the previous step (``result.guess``).
+        Raises ``BackendError`` (with ``attempts``) when SCF, Davidson or a gradient fails.
+        """
+        from pyscf import gto, lib
+
+        r = np.asarray(positions_bohr, dtype=float)
+        if r.shape != (len(self.symbols), 3) or not np.all(np.isfinite(r)):
+            raise ValueError(f"positions_bohr must be a finite ({len(self.symbols)}, 3) array, got shape {r.shape}")
+        if guess is not None:
+            if not isinstance(guess, TDDFTGuess):
+                raise ValueError(f"guess must be None or a TDDFTGuess, got {type(guess).__name__}")
+            if guess.fingerprint != self.fingerprint:
+                raise ValueError(f"guess belongs to {guess.fingerprint}, this backend is {self.fingerprint}")
+            if guess.x_amplitudes.shape[0] != self.nstates - 1:
+                raise ValueError(f"guess carries {guess.x_amplitudes.shape[0] + 1} states, backend has {self.nstates}")
+        old_threads = lib.num_threads()
+        lib.num_threads(self.threads)
+        try:
+            return self._compute(r, guess, bool(need_gradients), gto)
+        finally:
+            lib.num_threads(old_threads)
+
+    def _compute(self, r: np.ndarray, guess: TDDFTGuess | None, need_gradients: bool, gto) -> ElectronicResult:
+        timings: dict[str, float] = {}
+        attempts: list[dict] = []
+        nexc = self.nstates - 1
+        mol = self._molecule(r)
+
+        t0 = time.perf_counter()
+        mf = self._run_scf(mol, guess, attempts)
+        timings["scf"] = time.perf_counter() - t0
+        nocc = int(np.count_nonzero(mf.mo_occ > 0))
+        c_new = np.asarray(mf.mo_coeff)
+
+        energies = np.array([mf.e_tot])
+        x_norm = np.zeros((0, nocc, c_new.shape[1] - nocc))
+        xpy = x_norm
+        td = None
+        if nexc > 0:
+            t0 = time.perf_counter()
+            td = self._run_td(mf, attempts)
+            timings["td"] = time.perf_counter() - t0
+            exc = np.asarray(td.e[:nexc], dtype=float)
+            if np.any(exc <= 0.0):
+                raise BackendError(
+                    f"non-positive excitation energy {exc.min():.3e} Eh: the reference is unstable "
+                    f"(linear response is unreliable near S1/S0 crossings)", attempts)
+            energies = np.concatenate([energies, mf.e_tot + exc])
+            xs = np.array([np.asarray(td.xy[k][0]) for k in range(nexc)])
+            ys = [td.xy[k][1] for k in range(nexc)]
+            ys = np.array([np.zeros_like(xs[0]) if isinstance(y, (int, float)) else np.asarray(y) for y in ys])
+            x_norm = normalise_cis_amplitudes(xs)
+            # linear-response transition density X+Y (PySCF normalisation Σ(X²−Y²) = 1/2)
+            xpy = xs + ys
+
+        # dipole integrals (origin at 0) and MO blocks
+        with mol.with_common_orig((0.0, 0.0, 0.0)):
+            r_ao = mol.intor_symmetric("int1e_r", comp=3)
+        r_mo = np.einsum("xpq,pi,qj->xij", r_ao, c_new, c_new)
+        r_oo, r_ov, r_vv = r_mo[:, :nocc, :nocc], r_mo[:, :nocc, nocc:], r_mo[:, nocc:, nocc:]
+        mu_nuc = np.einsum("a,ax->x", mol.atom_charges().astype(float), mol.atom_coords())
+        mu0 = mu_nuc - 2.0 * np.einsum("xii->x", r_oo)
+        dip = np.zeros((self.nstates, self.nstates, 3))
+        dip[0, 0] = mu0
+        if nexc > 0:
+            # <Φ0|μ|Ψ_K> = −2 Σ_ia (X+Y)_ia r_ia  (electron charge −1)
+            mu_0k = -2.0 * np.einsum("kia,xia->kx", xpy, r_ov)
+            dip[0, 1:] = mu_0k
+            dip[1:, 0] = mu_0k
+            # CIS-like <Ψ_K|μ|Ψ_L> = δ_KL μ0 − 2[tr(X_K r_vv X_Lᵀ) − tr(X_Kᵀ r_oo X_L)]
+            ov = 2.0 * np.einsum("kia,lia->kl", x_norm, x_norm)
+            t_vv = np.einsum("kia,xab,lib->klx", x_norm, r_vv, x_norm)
+            t_oo = np.einsum("kia,xij,lja->klx", x_norm, r_oo, x_norm)
+            dip[1:, 1:] = ov[:, :, None] * mu0 - 2.0 * (t_vv - t_oo)
+        osc = (2.0 / 3.0) * (energies[1:] - energies[0]) * np.sum(dip[0, 1:] ** 2, axis=-1)
+
+        # state overlaps with the previous step, sign alignment
+        diagnostics: dict[str, Any] = {}
+        overlap_aligned = None
+        if guess is not None:
+            t0 = time.perf_counter()
+            mol_prev = self._molecule(np.asarray(guess.positions_bohr))
+            s_ao = gto.intor_cross("int1e_ovlp", mol_prev, mol)
+            s_mo = np.asarray(guess.mo_coeff).T @ s_ao @ c_new
+            if guess.nocc != nocc:
+                raise BackendError(f"occupied count changed between steps ({guess.nocc} -> {nocc})", attempts)
+            raw, sigma_min = determinant_state_overlaps(s_mo, nocc, guess.x_amplitudes, x_norm,
+                                                        self.singular_tol)
+            match = match_states(raw)
+            signs = match.signs
+            overlap_aligned = match.overlap
+            diagnostics.update(match.as_diagnostics())
+            diagnostics["occ_overlap_sigma_min"] = sigma_min
+            diagnostics["overlap_orthogonality_error"] = float(
+                np.max(np.abs(overlap_aligned.T @ overlap_aligned - np.eye(self.nstates))))
+            timings["overlap"] = time.perf_counter() - t0
+        else:
+            # deterministic first-call phase: largest |X| element positive
+            signs = np.ones(self.nstates)
+            for k in range(nexc):
+                flat = x_norm[k].ravel()
+                if flat[np.argmax(np.abs(flat))] < 0:
+                    signs[k + 1] = -1.0
+        x_norm = x_norm * signs[1:, None, None]
+        _, dip = apply_state_signs(signs, transition_dipoles=dip)
+
+        gradients = None
+        if need_gradients:
+            t0 = time.perf_counter()
+            gradients = np.zeros((self.nstates, len(self.symbols), 3))
+            g0 = mf.nuc_grad_method()
+            g0.verbose = 0
+            gradients[0] = g0.kernel()
+            if nexc > 0:
+                tdg = td.nuc_grad_method()
+                tdg.verbose = 0
+                tdg.cphf_conv_tol = self.cphf_conv_tol
+                residuals = []
+                for k in range(nexc):
+                    for cycles in (50, 200):
+                        tdg.cphf_max_cycle = cycles
+                        with _checked_cphf() as checker:
+                            g = np.asarray(tdg.kernel(state=k + 1))
+                        res = max(checker.residuals) if checker.residuals else float("nan")
+                        ok = np.all(np.isfinite(g)) and res <= self.cphf_residual_tol
+                        attempts.append({"what": f"state {k + 1} gradient, cphf_max_cycle={cycles}",
+                                         "outcome": f"{'converged' if ok else 'not converged'} (Z-vector residual {res:.1e})"})
+                        if ok:
+                            break
+                    else:
+                        raise BackendError(f"gradient of state {k + 1} did not converge", attempts)
+                    gradients[k + 1] = g
+                    residuals.append(res)
+                diagnostics["cphf_residuals"] = residuals
+            timings["gradients"] = time.perf_counter() - t0
+
+        diagnostics.update({
+            "timings": timings,
+            "attempts": attempts,
+            "scf_cycles": getattr(mf, "cycles", None),
+            "excitation_energies": (energies[1:] - energies[0]).tolist(),
+            "oscillator_strengths": osc,
+            "method": self.method,
+            "reference": "RHF" if self.xc is None else f"RKS/{self.xc}",
+            "overlap_convention": "X-only, 2ΣX²=1" if self.method == "tddft" else "CIS-like X, 2ΣX²=1",
+        })
+        new_guess = TDDFTGuess(positions_bohr=r.copy(), mo_coeff=c_new.copy(), nocc=nocc,
+                               x_amplitudes=x_norm.copy(), fingerprint=self.fingerprint)
+        result = ElectronicResult(
+            energies=energies, gradients=gradients, couplings=None, overlap_prev=overlap_aligned,
+            transition_dipoles=dip, spin_squared=np.zeros(self.nstates), guess=new_guess,
+            converged=True, diagnostics=diagnostics)
+        return result.validate(natoms=len(self.symbols))
