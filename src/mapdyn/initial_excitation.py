@@ -305,7 +305,8 @@ def plot_absorption_spectrum(spectrum: AbsorptionSpectrum, path: str | os.PathLi
     FigureCanvasAgg(fig)
     ax = fig.add_subplot(1, 1, 1)
     e = spectrum.energy_ev
-    for k, sk in enumerate(spectrum.per_state_cross_section_angstrom2):
+    per_state = spectrum.per_state_cross_section_angstrom2
+    for k, sk in enumerate(per_state if per_state.shape[0] > 1 else []):
         if np.max(sk) > 1e-3 * max(np.max(spectrum.cross_section_angstrom2), 1e-300):
             ax.plot(e, sk, lw=1.0, ls="--", label=f"S{k + 1}")
     ax.plot(e, spectrum.cross_section_angstrom2, color="k", lw=1.8, label="total")
