@@ -1,0 +1,278 @@
+"""SA-CASSCF backend (PySCF): gradients, NAC vectors, overlaps, warm start, fallback ladder.
+
+References: PySCF 2.14 is the reference electronic-structure library; analytic derivatives are
+checked against central finite differences of the backend's own energies and state overlaps
+(DESIGN.md §7.6, §7.10b).  Geometries are distorted, without symmetry, in Bohr.
+"""
+
+from __future__ import annotations
+
+import os
+import pickle
+
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np
+import pytest
+
+pytest.importorskip("pyscf")
+
+from mapdyn.backends.pyscf_casscf import (  # noqa: E402
+    ORTHONORMALITY_TOL,
+    CASSCFBackend,
+    CASSCFGuess,
+    ci_overlap_matrix,
+    lowdin_orthonormalize,
+    orthonormality_error,
+)
+from mapdyn.electronic import BackendError  # noqa: E402
+
+# Distorted geometries, Bohr.
+LIH_POS = np.array([[0.0, 0.0, 0.0], [1.9, 1.3, 1.1]])
+H2O_POS = np.array([[0.0, 0.0, 0.19], [0.19, 1.51, -0.94], [-0.09, -1.42, -0.85]])
+
+#: finite-difference step, Bohr (DESIGN.md §7.10b: h >= 2e-3, smaller h is limited by
+#: SA-CASSCF per-state energy noise ~1e-7 Eh).
+FD_STEP = 3e-3
+
+
+def lih_backend(**kw) -> CASSCFBackend:
+    return CASSCFBackend(["Li", "H"], basis="6-31g", ncas=2, nelecas=2, nstates=2, **kw)
+
+
+def h2o_backend(**kw) -> CASSCFBackend:
+    return CASSCFBackend(["O", "H", "H"], basis="sto-3g", ncas=2, nelecas=2, nstates=3, **kw)
+
+
+def _fd_coordinates(ref, n: int = 3) -> list[tuple[int, int]]:
+    """The n Cartesian coordinates with the largest NAC components over all pairs."""
+    d = np.abs(ref.couplings).max(axis=(0, 1))
+    flat = np.argsort(d.ravel())[::-1][:n]
+    return [tuple(int(x) for x in np.unravel_index(i, d.shape)) for i in flat]
+
+
+def _finite_differences(backend, pos, ref, coords, h=FD_STEP):
+    """Central differences of energies and aligned overlaps <k(R)|l(R±h)> along each coordinate."""
+    out = []
+    for atom, xyz in coords:
+        step = np.zeros_like(pos)
+        step[atom, xyz] = h
+        plus = backend.compute(pos + step, guess=ref.guess, need_gradients=False)
+        minus = backend.compute(pos - step, guess=ref.guess, need_gradients=False)
+        de = (plus.energies - minus.energies) / (2 * h)
+        ds = (plus.overlap_prev - minus.overlap_prev) / (2 * h)
+        out.append((atom, xyz, de, ds))
+    return out
+
+
+@pytest.fixture(scope="module", params=["LiH", "H2O"])
+def fd_case(request):
+    if request.param == "LiH":
+        backend, pos = lih_backend(), LIH_POS
+    else:
+        backend, pos = h2o_backend(), H2O_POS
+    ref = backend.compute(pos)
+    coords = _fd_coordinates(ref)
+    # one extra coordinate chosen for a large gradient component
+    g = np.abs(ref.gradients).max(axis=0)
+    extra = tuple(int(x) for x in np.unravel_index(np.argmax(g), g.shape))
+    if extra not in coords:
+        coords.append(extra)
+    return request.param, backend, pos, ref, _finite_differences(backend, pos, ref, coords)
+
+
+def test_gradients_match_finite_differences(fd_case):
+    # Source: central finite differences of the backend's own SA-CASSCF energies.
+    # Tolerance 1e-4 Eh/Bohr: FD truncation ~ E''' h^2/6 ~ 1e-6 plus per-state noise 1e-7/(2h) ~ 2e-5.
+    name, _, _, ref, fd = fd_case
+    worst = 0.0
+    for atom, xyz, de, _ in fd:
+        err = np.max(np.abs(ref.gradients[:, atom, xyz] - de))
+        worst = max(worst, err)
+    assert worst <= 1e-4, f"{name}: max |grad - FD| = {worst:.2e} Eh/Bohr"
+
+
+def test_nac_matches_overlap_finite_differences_both_orders(fd_case):
+    # Source: d_kl = <k|d l/dR> ~ [<k(R)|l(R+h)> - <k(R)|l(R-h)>]/2h after phase alignment
+    # (DESIGN.md §7.6).  This asserts PySCF's sign convention kernel(state=(a, b)) -> <a|grad b>.
+    # Tolerance 2 % on components larger than 10 % of the largest (FD truncation O(h^2)).
+    name, _, _, ref, fd = fd_case
+    f = ref.nstates
+    dmax = np.abs(ref.couplings).max()
+    checked = 0
+    for atom, xyz, _, ds in fd:
+        for k in range(f):
+            for l in range(f):
+                if k == l:
+                    continue
+                d = ref.couplings[k, l, atom, xyz]
+                if abs(d) < 0.1 * dmax:
+                    continue
+                assert np.sign(ds[k, l]) == np.sign(d), f"{name}: sign of d[{k},{l}] wrong"
+                assert abs(ds[k, l] - d) <= 0.02 * abs(d), f"{name}: d[{k},{l}] {d:.5f} vs FD {ds[k, l]:.5f}"
+                checked += 1
+    assert checked >= 4
+    # antisymmetry of the returned vectors (exact by construction) and of the FD matrix
+    assert np.allclose(ref.couplings, -np.swapaxes(ref.couplings, 0, 1))
+
+
+def test_etf_form_conserves_momentum_full_form_does_not():
+    # Electron-translation factors make d_kl translation invariant: sum over atoms of d_kl = 0
+    # (Fatehi & Subotnik, J. Phys. Chem. Lett. 3, 2039 (2012), from memory); the full form with the
+    # CSF term is not (it equals the derivative of the overlaps, which change under translation).
+    full = h2o_backend().compute(H2O_POS)
+    etf = h2o_backend(nac_form="etf").compute(H2O_POS)
+    assert np.allclose(full.energies, etf.energies, atol=1e-9)
+    total_etf = np.abs(etf.couplings.sum(axis=2)).max()
+    total_full = np.abs(full.couplings.sum(axis=2)).max()
+    assert total_etf < 1e-6 * max(1.0, np.abs(etf.couplings).max()) + 1e-7
+    assert total_full > 1e-3
+
+
+def test_warm_and_cold_start_reach_same_energies():
+    backend = h2o_backend()
+    ref = backend.compute(H2O_POS, need_gradients=False)
+    rng = np.random.default_rng(7)
+    new = H2O_POS + rng.normal(scale=0.05, size=H2O_POS.shape)
+    warm = backend.compute(new, guess=ref.guess, need_gradients=False)
+    cold = backend.compute(new, need_gradients=False)
+    assert warm.diagnostics["warm_start"] and not cold.diagnostics["warm_start"]
+    assert np.max(np.abs(warm.energies - cold.energies)) < 1e-6
+    # the warm start needs fewer macro-iterations than the cold one
+    assert warm.diagnostics["macro_iterations"] <= cold.diagnostics["macro_iterations"]
+    assert warm.diagnostics["active_overlap_min_singular"] > 0.99
+
+
+def test_raw_guess_orbitals_are_caught():
+    backend = h2o_backend()
+    ref = backend.compute(H2O_POS, need_gradients=False)
+    new = H2O_POS + np.array([[0.0, 0.0, 0.0], [0.0, 0.15, -0.1], [0.05, 0.0, 0.1]])
+    mol = backend._build_mol(new)
+    s = mol.intor_symmetric("int1e_ovlp")
+    raw = ref.guess.mo_coeff
+    assert orthonormality_error(raw, s) > 1e-4  # previous orbitals are not orthonormal here
+    assert orthonormality_error(lowdin_orthonormalize(raw, s), s) < ORTHONORMALITY_TOL
+    mf = backend._run_scf(mol)
+    with pytest.raises(BackendError, match="not orthonormal"):
+        backend._solve_casscf(backend._make_mc(mf), raw)
+    # a guess with linearly dependent orbitals cannot be orthonormalised: the warm attempt is
+    # refused and recorded, the ladder falls back to a cold start with the correct energies
+    bad_mo = ref.guess.mo_coeff.copy()
+    bad_mo[:, 1] = bad_mo[:, 0]
+    bad = CASSCFGuess(ref.guess.positions_bohr, bad_mo, ref.guess.ci, ref.guess.energies, ref.guess.signature)
+    res = backend.compute(new, guess=bad, need_gradients=False)
+    cold = backend.compute(new, need_gradients=False)
+    assert res.diagnostics["attempts"][0]["outcome"].startswith("failed")
+    assert "linearly dependent" in res.diagnostics["attempts"][0]["outcome"]
+    assert np.max(np.abs(res.energies - cold.energies)) < 1e-6
+
+
+def test_forced_nonconvergence_raises_with_attempts():
+    backend = h2o_backend(max_cycle_macro=1)
+    with pytest.raises(BackendError) as info:
+        backend.compute(H2O_POS, need_gradients=False)
+    attempts = info.value.attempts
+    assert len(attempts) >= 3
+    assert all(a["outcome"].startswith("failed") for a in attempts)
+    assert "cold start" in attempts[0]["what"] and "damped" in attempts[-1]["what"]
+    assert "not converged" in str(info.value)
+
+
+def test_three_states_are_singlets_and_purity_matters():
+    res = h2o_backend().compute(H2O_POS, need_gradients=False)
+    assert res.nstates == 3
+    assert np.all(np.abs(res.spin_squared) < 1e-6)
+    assert np.all(np.diff(res.energies) > 0)
+    # the spin-adapted singlet solver gives the same states
+    res0 = h2o_backend(spin_purity="spin0").compute(H2O_POS, need_gradients=False)
+    assert np.max(np.abs(res0.energies - res.energies)) < 1e-7
+    # without purity enforcement the Ms=0 triplet is among the three lowest CAS(2,2) roots; the
+    # per-step <S^2> check refuses it
+    with pytest.raises(BackendError, match="spin contamination"):
+        h2o_backend(spin_purity="none").compute(H2O_POS, need_gradients=False)
+
+
+def test_sign_alignment_is_applied_to_couplings_and_carried_in_guess():
+    backend = lih_backend()
+    ref = backend.compute(LIH_POS)
+    new = LIH_POS + np.array([[0.0, 0.0, 0.0], [0.01, -0.02, 0.015]])
+    step = backend.compute(new, guess=ref.guess)
+    assert np.all(np.diag(step.overlap_prev) > 0.9)
+    # couplings vary smoothly once phases are aligned
+    assert np.allclose(step.couplings, ref.couplings, rtol=0, atol=0.05 * np.abs(ref.couplings).max())
+    # flip the sign of state 1 in the carried guess: the new state 1 follows, couplings flip
+    flipped_ci = ref.guess.ci.copy()
+    flipped_ci[1] *= -1
+    g2 = CASSCFGuess(ref.guess.positions_bohr, ref.guess.mo_coeff, flipped_ci, ref.guess.energies,
+                     ref.guess.signature)
+    step2 = backend.compute(new, guess=g2)
+    assert np.all(np.diag(step2.overlap_prev) > 0.9)
+    assert np.allclose(step2.couplings[0, 1], -step.couplings[0, 1], atol=1e-7)
+    assert np.allclose(step2.transition_dipoles[0, 1], -step.transition_dipoles[0, 1], atol=1e-7)
+    assert np.allclose(step2.guess.ci[1], -step.guess.ci[1], atol=1e-8)
+
+
+def test_ci_overlap_is_identity_at_same_geometry_and_guess_pickles():
+    backend = lih_backend()
+    res = backend.compute(LIH_POS, need_gradients=False)
+    mol = backend._build_mol(LIH_POS)
+    s = mol.intor_symmetric("int1e_ovlp")
+    g = pickle.loads(pickle.dumps(res.guess))
+    ov = ci_overlap_matrix(g.mo_coeff, g.ci, g.mo_coeff, g.ci, s, backend.ncore, backend.ncas, backend.nelecas)
+    assert np.allclose(ov, np.eye(2), atol=1e-10)
+    again = backend.compute(LIH_POS, guess=g, need_gradients=False)
+    assert np.allclose(again.overlap_prev, np.eye(2), atol=1e-6)
+    assert again.diagnostics["permutation"] == [0, 1]
+
+
+def test_state_dipoles_match_pyscf_density_dipole():
+    # Source: PySCF scf.hf.dip_moment on the state's AO density (reference library), Debye -> e·Bohr.
+    from pyscf import mcscf, scf
+    from pyscf.data import nist
+
+    backend = h2o_backend()
+    res = backend.compute(H2O_POS, need_gradients=False)
+    mol = backend._build_mol(H2O_POS)
+    mf = scf.RHF(mol)
+    mc = mcscf.CASSCF(mf, 2, 2)
+    for k in range(3):
+        dm = mc.make_rdm1(mo_coeff=res.guess.mo_coeff, ci=res.guess.ci[k])
+        mu_debye = scf.hf.dip_moment(mol, dm, unit="Debye", verbose=0)
+        mu = mu_debye / nist.AU2DEBYE
+        assert np.allclose(res.transition_dipoles[k, k], mu, atol=1e-8)  # neutral: origin-free
+    mu = res.transition_dipoles
+    assert np.allclose(mu, np.swapaxes(mu, 0, 1))
+
+
+def test_bad_inputs_raise_value_error():
+    with pytest.raises(ValueError, match="nac_form"):
+        lih_backend(nac_form="other")
+    with pytest.raises(ValueError, match="spin_purity"):
+        lih_backend(spin_purity="maybe")
+    with pytest.raises(ValueError, match="nelecas"):
+        CASSCFBackend(["Li", "H"], basis="6-31g", ncas=2, nelecas=3, nstates=2)
+    backend = lih_backend()
+    with pytest.raises(ValueError, match="positions_bohr"):
+        backend.compute(np.zeros((3, 3)))
+    with pytest.raises(ValueError, match="guess"):
+        backend.compute(LIH_POS, guess={"mo": 1})
+    other = h2o_backend().compute(H2O_POS, need_gradients=False)
+    with pytest.raises(ValueError, match="guess"):
+        backend.compute(LIH_POS, guess=other.guess)
+
+
+CH2NH2_POS = np.array([[0.0, 0.0, 0.0], [0.05, 0.1, 1.30], [0.95, 0.1, -0.55], [-0.9, -0.2, -0.6],
+                       [0.85, 0.2, 1.85], [-0.8, 0.05, 1.9]]) / 0.52917721092  # Angstrom -> Bohr
+
+
+@pytest.mark.slow
+def test_cation_gradients_and_nacs_match_finite_differences():
+    # CH2NH2+ SA2-CAS(2,2)/6-31G, distorted; same sources and tolerances as the small cases above.
+    backend = CASSCFBackend(["C", "N", "H", "H", "H", "H"], basis="6-31g", ncas=2, nelecas=2, nstates=2,
+                            charge=1)
+    ref = backend.compute(CH2NH2_POS)
+    fd = _finite_differences(backend, CH2NH2_POS, ref, _fd_coordinates(ref, n=4))
+    for atom, xyz, de, ds in fd:
+        assert np.max(np.abs(ref.gradients[:, atom, xyz] - de)) <= 1e-4
+        d = ref.couplings[0, 1, atom, xyz]
+        assert abs(ds[0, 1] - d) <= 0.02 * abs(d) and abs(ds[1, 0] + d) <= 0.02 * abs(d)
