@@ -143,7 +143,7 @@ def test_wigner_mode_variances(water, temperature):
     # Phys. Rep. 106, 121 (1984) (from memory).  Tolerance: 3 standard errors, fixed seed.
     modes = water[-1]
     n = 4000
-    ens = sample_wigner(modes, n, seed=20261202, temperature_kelvin=temperature)
+    ens = sample_wigner(modes, n, seed=20261202 + int(temperature), temperature_kelvin=temperature)
     w = modes.frequencies_hartree
     kt = temperature * units.kB / units.Hartree
     coth = np.ones_like(w) if temperature == 0 else 1.0 / np.tanh(w / (2 * kt))
@@ -403,3 +403,29 @@ def test_callback_backend_optimisation_and_fd_hessian(optimizer):
     assert modes.nvib == 3 and modes.n_rigid == 6
     ref = normal_modes(be.exact_hessian_at_minimum(x), ["O", "H", "H"], x)
     np.testing.assert_allclose(modes.frequencies_cm, ref.frequencies_cm, rtol=1e-4)
+
+
+def test_wigner_mean_kinetic_energy(water):
+    # <T_nuc> = Σ_j var(P_j)/2 = Σ_j (ω_j/4) coth(ω_j/2kT) for V = M^{-1/2} L P (orthonormal L):
+    # checks the Cartesian velocity mapping and masses in m_e.  3 standard errors, fixed seed.
+    modes = water[-1]
+    n = 3000
+    ens = sample_wigner(modes, n, seed=77, temperature_kelvin=500.0, zero_linear_momentum=False,
+                        zero_angular_momentum=False)
+    ke = ens.kinetic_energy_hartree()
+    _, var_p = wigner_widths(modes.frequencies_hartree, 500.0)
+    expected = 0.5 * var_p.sum()
+    assert abs(ke.mean() - expected) < 3 * ke.std(ddof=1) / np.sqrt(n)
+    np.testing.assert_allclose(ke, 0.5 * np.sum(ens.mode_momenta ** 2, axis=1), rtol=1e-10)
+
+
+def test_fd_hessian_through_tda_backend_ground_state(water):
+    # Any backend: the linear-response backend's state 0 (RHF/6-31G, same reference) by finite
+    # differences reproduces the PySCF analytic RHF frequencies within 1 cm^-1 (issue requirement).
+    from mapdyn.backends.pyscf_tddft import TDDFTBackend
+    _, opt, _, _, modes = water
+    be = TDDFTBackend(SYMBOLS, basis="6-31g", xc=None, method="tda", nstates=1)
+    hr = compute_hessian(be, opt.positions_bohr, "RHF/6-31G")
+    assert hr.method == "finite_difference"
+    m = normal_modes(hr.hessian, SYMBOLS, opt.positions_bohr)
+    np.testing.assert_allclose(m.frequencies_cm, modes.frequencies_cm, atol=1.0, rtol=0)
