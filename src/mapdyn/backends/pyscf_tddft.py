@@ -304,11 +304,16 @@ class TDDFTBackend:
         if int(threads) < 1:
             raise ValueError(f"threads must be >= 1, got {threads}")
         self.threads = int(threads)
-        # validate the basis and electron count once, at a dummy geometry
+        from pyscf.data import elements
+        try:
+            nelectron = sum(elements.charge(s) for s in self.symbols) - self.charge
+        except (KeyError, ValueError) as err:
+            raise ValueError(f"symbols: unknown element in {self.symbols} ({err})") from None
+        if nelectron <= 0 or nelectron % 2:
+            raise ValueError(f"charge: {self.charge} leaves {nelectron} electrons; a closed-shell "
+                             f"singlet needs a positive even number")
+        # validate the basis once, at a dummy geometry
         probe = self._molecule(np.arange(3 * len(self.symbols), dtype=float).reshape(-1, 3) * 2.0)
-        if probe.nelectron % 2:
-            raise ValueError(f"charge: {self.charge} leaves {probe.nelectron} electrons; a closed-shell "
-                             f"singlet needs an even number")
         self._nocc = probe.nelectron // 2
         self._nvir = probe.nao_nr() - self._nocc
         if self.nstates - 1 > self._nocc * self._nvir:
