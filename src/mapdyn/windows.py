@@ -1,0 +1,129 @@
+"""SQC windows: sampling inside the initial window, window assignment, populations.
+
+All functions work on actions e_k = ½(x_k² + p_k²) (dimensionless), shape (n, F).
+
+Square windows (Cotton & Miller, J. Phys. Chem. A 117, 7190 (2013); formulas from memory):
+    W_i(e) = Π_k h(γ − |e_k − γ − δ_ki|),   γ = (√3 − 1)/2,
+i.e. e_k ∈ [δ_ki, δ_ki + 2γ].
+
+Triangle windows (Cotton & Miller, J. Chem. Phys. 145, 144108 (2016) for F = 2; the F-state form
+follows Cotton & Miller, J. Chem. Phys. 150, 104101 (2019) as recalled, from memory, unverified):
+    W_i(e) = h(e_i − 1) · Π_{j≠i} h(e_j) h(2 − e_i − e_j),   γ = 1/3.
+For F = 2 this is exactly the two-state triangle (corner e = (1, 0), hypotenuse e_1 + e_2 = 2).
+For F > 2 the region is the "unit pyramid" e_i ∈ [1, 2], e_j ∈ [0, 2 − e_i]; we sample it
+uniformly, which gives ⟨e_i⟩ = 1 + 1/(F+1), ⟨e_j⟩ = F/(2(F+1)) (= 4/3, 1/3 for F = 2).  This is our
+documented choice for F > 2.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .options import MethodOptions
+
+__all__ = [
+    "sample_actions",
+    "sample_mapping_variables",
+    "window_indicators",
+    "window_assignment",
+    "window_populations",
+    "ehrenfest_populations",
+]
+
+
+def _check_state(nstates: int, initial_state: int) -> None:
+    if isinstance(nstates, bool) or not isinstance(nstates, (int, np.integer)) or nstates < 2:
+        raise ValueError(f"nstates={nstates!r} is not allowed; mapping dynamics needs at least 2 states")
+    if isinstance(initial_state, bool) or not isinstance(initial_state, (int, np.integer)) \
+            or not 0 <= initial_state < nstates:
+        raise ValueError(f"initial_state={initial_state!r} is not allowed; it must be an integer in 0..{nstates - 1}")
+
+
+def sample_actions(rng: np.random.Generator, nstates: int, initial_state: int,
+                   options: MethodOptions) -> np.ndarray:
+    """Actions e (F,) for one trajectory, uniform in the initial state's window.
+
+    Draws exactly ``nstates`` uniforms from ``rng`` (so the stream position after the call does not
+    depend on the window shape).  Ehrenfest: e = δ_{k,i} (the uniforms are still drawn).
+    """
+    _check_state(nstates, initial_state)
+    xi = rng.random(nstates)
+    occ = np.zeros(nstates)
+    occ[initial_state] = 1.0
+    if options.method == "ehrenfest":
+        return occ
+    if options.window == "square":
+        return occ + 2.0 * options.window_gamma * xi
+    # unit pyramid: u = e_i − 1 has density ∝ (1 − u)^(F−1) → u = 1 − ξ^(1/F); e_j = (1 − u) ξ_j
+    one_minus_u = xi[initial_state] ** (1.0 / nstates)
+    e = one_minus_u * xi
+    e[initial_state] = 2.0 - one_minus_u
+    return e
+
+
+def sample_mapping_variables(rng: np.random.Generator, nstates: int, initial_state: int,
+                             options: MethodOptions) -> tuple[np.ndarray, np.ndarray]:
+    """(x, p), each (F,), for one trajectory: actions from the window, then F uniform angles q_k.
+
+    x_k = √(2e_k) cos q_k,  p_k = −√(2e_k) sin q_k (DESIGN.md §7.2).  Draw order: actions, angles.
+    """
+    e = sample_actions(rng, nstates, initial_state, options)
+    q = 2.0 * np.pi * rng.random(nstates)
+    r = np.sqrt(2.0 * e)
+    return r * np.cos(q), -r * np.sin(q)
+
+
+def window_indicators(e: np.ndarray, options: MethodOptions) -> np.ndarray:
+    """Boolean (n, F): trajectory inside the window of state f at these actions.
+
+    Windows do not overlap, so each row has at most one True.  For Ehrenfest every trajectory is
+    counted with weight e_k instead (see :func:`ehrenfest_populations`); this function then raises.
+    """
+    e = np.asarray(e, dtype=float)
+    if e.ndim != 2:
+        raise ValueError(f"actions must have shape (n, F), got {e.shape}")
+    if options.method == "ehrenfest":
+        raise ValueError("window_indicators is for method='sqc'; Ehrenfest populations are the actions themselves")
+    n, f = e.shape
+    if options.window == "square":
+        g = options.window_gamma
+        occupied = np.abs(e - g - 1.0) <= g
+        empty = np.abs(e - g) <= g
+        inside = np.empty((n, f), dtype=bool)
+        for i in range(f):
+            others = np.delete(empty, i, axis=1).all(axis=1)
+            inside[:, i] = occupied[:, i] & others
+        return inside
+    inside = np.empty((n, f), dtype=bool)
+    nonneg = e >= 0.0
+    for i in range(f):
+        pair_ok = nonneg & (e[:, i:i + 1] + e <= 2.0)
+        inside[:, i] = (e[:, i] >= 1.0) & np.delete(pair_ok, i, axis=1).all(axis=1)
+    return inside
+
+
+def window_assignment(e: np.ndarray, options: MethodOptions) -> np.ndarray:
+    """State index each trajectory's window belongs to, −1 where it is in no window; shape (n,)."""
+    ind = window_indicators(e, options)
+    out = np.full(ind.shape[0], -1, dtype=int)
+    rows, cols = np.nonzero(ind)
+    out[rows] = cols
+    return out
+
+
+def window_populations(e: np.ndarray, options: MethodOptions) -> tuple[np.ndarray, int]:
+    """Normalised SQC populations P_f = N_f / Σ_f' N_f' (shape (F,)) and the count in no window.
+
+    Returns NaN populations when no trajectory is in any window.
+    """
+    ind = window_indicators(e, options)
+    counts = ind.sum(axis=0).astype(float)
+    total = counts.sum()
+    pops = counts / total if total > 0 else np.full(counts.shape, np.nan)
+    return pops, int(ind.shape[0] - total)
+
+
+def ehrenfest_populations(e: np.ndarray) -> np.ndarray:
+    """Mean-field populations ⟨e_k⟩ / ⟨Σ e⟩ over the ensemble, shape (F,)."""
+    e = np.asarray(e, dtype=float)
+    return e.mean(axis=0) / e.sum(axis=1).mean()
