@@ -182,7 +182,9 @@ class CASSCFBackend:
     max_cycle_macro : CASSCF macro-iteration limit for every attempt of the fallback ladder.
     active_space_warning : warn when the smallest singular value of the active-orbital overlap
         with the previous step falls below this.
-    gradient_method : ``"plain"`` (one PySCF call per gradient/NAC).
+    gradient_method : ``"one_pass"`` (default: all gradients and NACs with one shared pass over the
+        derivative integrals, :mod:`mapdyn.backends.casscf_response`; identical results) or
+        ``"plain"`` (one PySCF call per gradient/NAC).  With density fitting the plain path is used.
     """
 
     def __init__(self, symbols: Sequence[str], basis: str = "sto-3g", ncas: int = 2,
@@ -191,7 +193,7 @@ class CASSCFBackend:
                  nac_form: str = "full", spin_purity: str = "shift", spin_shift: float = 1.0,
                  spin_tolerance: float = 1e-3, conv_tol: float = 1e-10, conv_tol_grad: float = 1e-6,
                  max_cycle_macro: int = 50, active_space_warning: float = 0.9,
-                 gradient_method: str = "plain"):
+                 gradient_method: str = "one_pass"):
         self.symbols = [str(s) for s in symbols]
         if not self.symbols:
             raise ValueError("symbols: need at least one atom")
@@ -520,13 +522,16 @@ class CASSCFBackend:
         f = self.nstates
         natm = len(self.symbols)
         info: dict[str, Any] = {}
-        if self.gradient_method == "one_pass":
+        if self.gradient_method == "one_pass" and not self.density_fitting:
             from mapdyn.backends.casscf_response import one_pass_gradients_and_couplings
 
             t0 = time.perf_counter()
             grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf")
             timings.update(info.pop("timings", {}))
             timings["gradients_and_couplings"] = time.perf_counter() - t0
+            if not (info["gradients_converged"] and info["couplings_converged"]):
+                warnings.warn("SA-CASSCF response (Lagrange multiplier) equations did not converge",
+                              RuntimeWarning, stacklevel=3)
             return grads, nacs, info
         t0 = time.perf_counter()
         grads = np.zeros((f, natm, 3))
