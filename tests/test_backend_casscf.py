@@ -244,7 +244,10 @@ def test_state_dipoles_match_pyscf_density_dipole():
     assert np.allclose(mu, np.swapaxes(mu, 0, 1))
 
 
+@pytest.mark.filterwarnings("ignore:Basis may be available")
 def test_bad_inputs_raise_value_error():
+    with pytest.raises(ValueError, match="auxbasis"):
+        lih_backend(density_fitting=True).compute(LIH_POS, need_gradients=False)  # no Li cc-pvdz-jkfit
     with pytest.raises(ValueError, match="nac_form"):
         lih_backend(nac_form="other")
     with pytest.raises(ValueError, match="spin_purity"):
@@ -276,3 +279,44 @@ def test_cation_gradients_and_nacs_match_finite_differences():
         assert np.max(np.abs(ref.gradients[:, atom, xyz] - de)) <= 1e-4
         d = ref.couplings[0, 1, atom, xyz]
         assert abs(ds[0, 1] - d) <= 0.02 * abs(d) and abs(ds[1, 0] + d) <= 0.02 * abs(d)
+
+
+@pytest.mark.parametrize("spin_purity,nac_form", [("shift", "full"), ("spin0", "etf")])
+def test_one_pass_equals_plain_pyscf_calls(spin_purity, nac_form):
+    # Source: PySCF's own per-state calls (nuc_grad_method().kernel(state=k),
+    # nac_method().kernel(state=(a, b))) on the same converged SA-CASSCF; the one-pass path only
+    # reorders when the derivative integrals are evaluated, so agreement is to round-off (1e-8).
+    from mapdyn.backends.casscf_response import one_pass_gradients_and_couplings
+
+    backend = h2o_backend(spin_purity=spin_purity, nac_form=nac_form, gradient_method="plain")
+    mol = backend._build_mol(H2O_POS)
+    mf = backend._run_scf(mol)
+    mc = backend._make_mc(mf)
+    backend._solve_casscf(mc, mf.mo_coeff)
+    g_plain, d_plain, _ = backend._gradients_and_couplings(mc, {})
+    g_one, d_one, info = one_pass_gradients_and_couplings(mc, use_etfs=nac_form == "etf")
+    assert info["gradients_converged"] and info["couplings_converged"]
+    assert np.max(np.abs(g_one - g_plain)) < 1e-8
+    assert np.max(np.abs(d_one - d_plain)) < 1e-8
+    # and through the backend: the default path is the one-pass one
+    assert CASSCFBackend(["O", "H", "H"], nstates=3).gradient_method == "one_pass"
+    res = h2o_backend(spin_purity=spin_purity, nac_form=nac_form).compute(H2O_POS)
+    assert "eri_pass" in res.diagnostics["timings"]
+    assert np.max(np.abs(res.gradients - g_plain)) < 1e-6  # independent CASSCF run: 1e-6 convergence
+    assert np.max(np.abs(res.couplings - d_plain)) < 1e-5
+
+
+def test_density_fitted_gradients_match_finite_differences():
+    # Source: central differences of the backend's own DF energies; tolerance as above.
+    # The NAC vectors come from PySCF's non-DF NAC code and are only checked for shape here.
+    backend = lih_backend(density_fitting=True, auxbasis="def2-universal-jkfit")
+    ref = backend.compute(LIH_POS)
+    assert ref.couplings.shape == (2, 2, 2, 3)
+    exact = lih_backend().compute(LIH_POS, need_gradients=False)
+    assert np.max(np.abs(ref.energies - exact.energies)) < 1e-3  # DF error, common practice ~1e-4 Eh/atom
+    for atom, xyz in [(1, 0), (1, 2)]:
+        step = np.zeros_like(LIH_POS)
+        step[atom, xyz] = FD_STEP
+        ep = backend.compute(LIH_POS + step, guess=ref.guess, need_gradients=False).energies
+        em = backend.compute(LIH_POS - step, guess=ref.guess, need_gradients=False).energies
+        assert np.max(np.abs((ep - em) / (2 * FD_STEP) - ref.gradients[:, atom, xyz])) < 1e-4

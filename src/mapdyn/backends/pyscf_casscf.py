@@ -169,6 +169,8 @@ class CASSCFBackend:
     charge, spin : total charge and 2S (PySCF convention).
     cas_orbitals : optional 0-based indices of the SCF orbitals that form the active space on a cold
         start (warm starts carry the previous active orbitals).
+    auxbasis : auxiliary basis for density fitting (None: PySCF's default JK-fit basis, which does
+        not cover every element, e.g. use ``"def2-universal-jkfit"`` for Li).
     density_fitting : density-fitted integrals for SCF, CASSCF and gradients.  PySCF's NAC class
         is not density-fitting aware: NAC vectors are then built with exact integrals on the DF
         orbitals/CI, inconsistent with the DF energies at the level of the fitting error.
@@ -193,7 +195,7 @@ class CASSCFBackend:
                  nac_form: str = "full", spin_purity: str = "shift", spin_shift: float = 1.0,
                  spin_tolerance: float = 1e-3, conv_tol: float = 1e-10, conv_tol_grad: float = 1e-6,
                  max_cycle_macro: int = 50, active_space_warning: float = 0.9,
-                 gradient_method: str = "one_pass"):
+                 gradient_method: str = "one_pass", auxbasis: str | None = None):
         self.symbols = [str(s) for s in symbols]
         if not self.symbols:
             raise ValueError("symbols: need at least one atom")
@@ -220,6 +222,7 @@ class CASSCFBackend:
         if self.cas_orbitals is not None and len(self.cas_orbitals) != self.ncas:
             raise ValueError(f"cas_orbitals must list exactly ncas={self.ncas} orbitals, got {len(self.cas_orbitals)}")
         self.density_fitting = bool(density_fitting)
+        self.auxbasis = auxbasis
         if nac_form not in _NAC_FORMS:
             raise ValueError(f"nac_form must be one of {_NAC_FORMS}, got {nac_form!r}")
         self.nac_form = nac_form
@@ -268,7 +271,7 @@ class CASSCFBackend:
 
         mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
         if self.density_fitting:
-            mf = mf.density_fit()
+            mf = mf.density_fit(auxbasis=self.auxbasis)
         mf.conv_tol = 1e-12
         mf.max_cycle = 200
         if damped:
@@ -377,7 +380,7 @@ class CASSCFBackend:
 
                 mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
                 if self.density_fitting:
-                    mf = mf.density_fit()
+                    mf = mf.density_fit(auxbasis=self.auxbasis)
             return mf, mo, [np.asarray(c) for c in prev.ci]
 
         ladder = []
@@ -420,6 +423,8 @@ class CASSCFBackend:
                 record["seconds"] = time.perf_counter() - ta
                 attempts.append(record)
             except (np.linalg.LinAlgError, RuntimeError, ArithmeticError) as exc:
+                if type(exc).__name__ == "BasisNotFoundError":
+                    raise ValueError(f"auxbasis/basis: {exc}") from exc
                 record["outcome"] = f"failed: {type(exc).__name__}: {exc}"
                 record["seconds"] = time.perf_counter() - ta
                 attempts.append(record)
