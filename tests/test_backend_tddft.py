@@ -188,9 +188,10 @@ def test_hf_gradients_match_central_finite_differences(method):
 
 
 def test_dft_tda_gradients_match_central_finite_differences():
-    # PBE0/TDA, grid level 3: the analytic gradients omit the grid-weight response, measured
-    # effect ~4e-6 Eh/Bohr here; required ≤ 1e-5 Eh/Bohr.
-    backend = TDDFTBackend(["O", "H", "H"], basis="sto-3g", xc="pbe0", method="tda", nstates=3)
+    # PBE0/TDA: PySCF's TD-DFT gradients omit the grid-weight response; measured effect here
+    # 6e-6 Eh/Bohr at grid level 3, 1.8e-6 at level 4 (used); required ≤ 1e-5 Eh/Bohr.
+    backend = TDDFTBackend(["O", "H", "H"], basis="sto-3g", xc="pbe0", method="tda", nstates=3,
+                           grids_level=4)
     res = backend.compute(WATER)
     fd = _fd_gradients(backend, WATER, 1e-3)
     err = np.max(np.abs(fd - res.gradients))
@@ -309,14 +310,15 @@ def test_sign_tracking_survives_flipped_amplitude(cis_backend, cis_reference):
 
 
 def test_full_tddft_x_only_overlaps_near_unitary():
-    # X-only convention for RPA states: at zero displacement the overlap deviates from 1 only by
-    # the de-excitation weight (O(Y²)); along a short step it stays nearly unitary.
+    # X-only convention for RPA states: at zero displacement the overlap deviates from 1 only
+    # through the de-excitation weight (O(Y²); measured 1e-9 for TDHF water/STO-3G, bound 1e-6);
+    # along a short step it stays unitary to O(Δ²) (measured 1.8e-3, bound 5e-3).
     backend = TDDFTBackend(["O", "H", "H"], basis="sto-3g", xc=None, method="tddft", nstates=3)
     res = backend.compute(WATER, need_gradients=False)
     same = backend.compute(WATER, guess=res.guess, need_gradients=False).overlap_prev
-    assert np.max(np.abs(same - np.eye(3))) < 1e-2
+    assert np.max(np.abs(same - np.eye(3))) < 1e-6
     step = backend.compute(WATER + VELOCITY * 2.0, guess=res.guess, need_gradients=False).overlap_prev
-    assert np.max(np.abs(step.T @ step - np.eye(3))) < 2e-2
+    assert np.max(np.abs(step.T @ step - np.eye(3))) < 5e-3
 
 
 # ---------------------------------------------------------------------------------------------

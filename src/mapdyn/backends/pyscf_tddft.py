@@ -243,7 +243,11 @@ class TDDFTBackend:
     nstates : number of states F **including** the ground state (F ≥ 1).
     scf_conv_tol : SCF energy tolerance (Eh); scf_conv_tol_grad : orbital-gradient tolerance.
     td_conv_tol : Davidson residual tolerance (Eh); cphf_conv_tol : Z-vector tolerance.
-    cphf_residual_tol : relative Z-vector residual above which a gradient counts as unconverged.
+    cphf_residual_tol : relative Z-vector residual above which a gradient counts as unconverged
+        (PySCF's Krylov solver stops near a relative residual ~1e-5 whatever ``cphf_conv_tol``
+        says, because of its linear-dependence cut-off; measured gradient error then ~2e-7 Eh/Bohr).
+    Accuracy note: PySCF's TD-DFT gradients omit the DFT grid-weight response; against finite
+    differences this costs ~6e-6 Eh/Bohr at grid level 3 and ~2e-6 at level 4 (water/STO-3G, PBE0).
     grids_level : PySCF DFT grid level (0–9), ignored for HF.
     extra_roots : additional Davidson roots solved for robustness (not returned).
     singular_tol : smallest allowed singular value of the occupied–occupied MO overlap.
