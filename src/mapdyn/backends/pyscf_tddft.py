@@ -505,6 +505,7 @@ class TDDFTBackend:
                 raise BackendError(f"occupied count changed between steps ({guess.nocc} -> {nocc})", attempts)
             raw, sigma_min = determinant_state_overlaps(s_mo, nocc, guess.x_amplitudes, x_norm,
                                                         self.singular_tol)
+            diagnostics["overlap_raw"] = raw
             match = match_states(raw)
             signs = match.signs
             overlap_aligned = match.overlap
@@ -557,6 +558,7 @@ class TDDFTBackend:
             "timings": timings,
             "attempts": attempts,
             "scf_cycles": getattr(mf, "cycles", None),
+            "warm_start": attempts[0]["what"].startswith("warm") and attempts[0]["outcome"].startswith("converged"),
             "excitation_energies": (energies[1:] - energies[0]).tolist(),
             "oscillator_strengths": osc,
             "method": self.method,
