@@ -320,3 +320,23 @@ def test_density_fitted_gradients_match_finite_differences():
         ep = backend.compute(LIH_POS + step, guess=ref.guess, need_gradients=False).energies
         em = backend.compute(LIH_POS - step, guess=ref.guess, need_gradients=False).energies
         assert np.max(np.abs((ep - em) / (2 * FD_STEP) - ref.gradients[:, atom, xyz])) < 1e-4
+
+
+def test_active_space_change_is_detected_and_cas_orbitals_option():
+    from mapdyn.backends.pyscf_casscf import active_overlap_min_singular
+
+    backend = h2o_backend()
+    res = backend.compute(H2O_POS, need_gradients=False)
+    mol = backend._build_mol(H2O_POS)
+    s = mol.intor_symmetric("int1e_ovlp")
+    mo = res.guess.mo_coeff
+    nc, na = backend.ncore, backend.ncas
+    assert active_overlap_min_singular(mo, mo, s, nc, na) == pytest.approx(1.0, abs=1e-10)
+    swapped = mo.copy()
+    swapped[:, [nc + 1, nc + 2]] = swapped[:, [nc + 2, nc + 1]]  # an active orbital leaves, a virtual enters
+    assert active_overlap_min_singular(mo, swapped, s, nc, na) < 1e-8
+    # explicit active orbitals equal to the default choice (0-based HOMO, LUMO) give the same states
+    explicit = h2o_backend(cas_orbitals=[nc, nc + 1]).compute(H2O_POS, need_gradients=False)
+    assert np.max(np.abs(explicit.energies - res.energies)) < 1e-8
+    with pytest.raises(ValueError, match="cas_orbitals"):
+        h2o_backend(cas_orbitals=[1, 2, 3])

@@ -20,6 +20,8 @@ Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
 * State overlaps between geometries S_kl = ⟨ψ_k(R')|ψ_l(R)⟩ from the determinant expansion of the CI
   vectors, ⟨D_I|D_J⟩ = det S^α_IJ · det S^β_IJ with the MO cross-overlap C'ᵀ S_AO(R', R) C over the
   occupied (core + string-occupied active) orbitals (Löwdin's rule for non-orthogonal determinants).
+* By default all gradients and NAC vectors of a step share one pass over the derivative
+  integrals (:mod:`mapdyn.backends.casscf_response`), identical to the plain per-state calls.
 * Warm start from the previous orbitals, Löwdin-orthonormalised at the new geometry
   C (CᵀSC)^(−1/2); the result is guarded by max|CᵀSC − 1| < 1e-10 (raw orbitals from another
   geometry give a converged but wrong CASSCF, DESIGN.md §7.10b).
