@@ -220,7 +220,12 @@ def test_ci_overlap_is_identity_at_same_geometry_and_guess_pickles():
     g = pickle.loads(pickle.dumps(res.guess))
     ov = ci_overlap_matrix(g.mo_coeff, g.ci, g.mo_coeff, g.ci, s, backend.ncore, backend.ncas, backend.nelecas)
     assert np.allclose(ov, np.eye(2), atol=1e-10)
+    ci_before = g.ci.copy()
     again = backend.compute(LIH_POS, guess=g, need_gradients=False)
+    repeat = backend.compute(LIH_POS, guess=g, need_gradients=False)  # pure function of its arguments
+    assert np.array_equal(g.ci, ci_before)
+    assert np.allclose(repeat.energies, again.energies, atol=1e-12)
+    assert np.allclose(repeat.overlap_prev, again.overlap_prev, atol=1e-12)
     assert np.allclose(again.overlap_prev, np.eye(2), atol=1e-6)
     assert again.diagnostics["permutation"] == [0, 1]
 
@@ -340,3 +345,17 @@ def test_active_space_change_is_detected_and_cas_orbitals_option():
     assert np.max(np.abs(explicit.energies - res.energies)) < 1e-8
     with pytest.raises(ValueError, match="cas_orbitals"):
         h2o_backend(cas_orbitals=[1, 2, 3])
+
+
+def test_doublet_cation_states_gradients_and_nacs():
+    # H2O+ SA2-CAS(3,3)/STO-3G (spin 2S = 1): ROHF starting orbitals on an RHF-type host (PySCF's
+    # NAC code needs it).  Sources and tolerances as in the finite-difference tests above; the
+    # target <S^2> = S(S+1) = 0.75 for a doublet (textbook).
+    backend = CASSCFBackend(["O", "H", "H"], basis="sto-3g", ncas=3, nelecas=3, nstates=2, charge=1, spin=1)
+    ref = backend.compute(H2O_POS)
+    assert np.allclose(ref.spin_squared, 0.75, atol=1e-6)
+    fd = _finite_differences(backend, H2O_POS, ref, [(1, 1), (2, 2)])
+    for atom, xyz, de, ds in fd:
+        assert np.max(np.abs(ref.gradients[:, atom, xyz] - de)) <= 1e-4
+        d = ref.couplings[0, 1, atom, xyz]
+        assert abs(ds[0, 1] - d) <= 0.02 * abs(d) and abs(ds[1, 0] + d) <= 0.02 * abs(d)

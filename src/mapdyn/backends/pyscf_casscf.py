@@ -268,7 +268,21 @@ class CASSCFBackend:
         return gto.M(atom=atom, basis=self.basis, unit="Bohr", charge=self.charge, spin=self.spin,
                      verbose=0, max_memory=2000)
 
+    def _host_scf(self, mol):
+        """Closed-shell SCF object that hosts the CASSCF integrals (never run itself).
+
+        PySCF's SA-CASSCF NAC code needs an RHF-type host (it fails on an ROHF one), so open-shell
+        cases take their starting orbitals from ROHF but keep an RHF host.
+        """
+        from pyscf import scf
+
+        mf = scf.hf.RHF(mol)
+        if self.density_fitting:
+            mf = mf.density_fit(auxbasis=self.auxbasis)
+        return mf
+
     def _run_scf(self, mol, damped: bool = False):
+        """SCF for cold-start orbitals: returns the CASSCF host with ``mo_coeff`` and ``converged`` set."""
         from pyscf import scf
 
         mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
@@ -281,7 +295,13 @@ class CASSCFBackend:
             mf.damp = 0.5
             mf.diis_start_cycle = 4
         mf.kernel()
-        return mf
+        if self.spin == 0:
+            return mf
+        host = self._host_scf(mol)
+        host.mo_coeff = mf.mo_coeff
+        host.mo_energy = mf.mo_energy
+        host.converged = mf.converged
+        return host
 
     def _make_mc(self, mf):
         from pyscf import mcscf
@@ -378,12 +398,8 @@ class CASSCFBackend:
                 raise BackendError(f"Löwdin-orthonormalised guess fails the guard: max|CᵀSC-1| = {err:.2e}")
             mf = mf_cache.get("mf")
             if mf is None:
-                from pyscf import scf
-
-                mf = scf.RHF(mol) if self.spin == 0 else scf.ROHF(mol)
-                if self.density_fitting:
-                    mf = mf.density_fit(auxbasis=self.auxbasis)
-            return mf, mo, [np.asarray(c) for c in prev.ci]
+                mf = self._host_scf(mol)
+            return mf, mo, [np.array(c, copy=True) for c in prev.ci]  # never touch the caller's guess
 
         ladder = []
         if prev is not None:
