@@ -348,6 +348,8 @@ class CASSCFBackend:
             raise ValueError("guess: produced for a different molecule/basis/active space")
         if guess.mo_coeff.shape[0] != mol.nao_nr():
             raise ValueError("guess: orbital coefficients do not match the basis size")
+        if np.shape(guess.ci)[0] != self.nstates or np.shape(guess.positions_bohr) != (len(self.symbols), 3):
+            raise ValueError("guess: CI vectors or geometry do not match this backend")
         return guess
 
     def _spin_squares(self, ci) -> np.ndarray:
