@@ -1,0 +1,298 @@
+"""Figures for analysis results (matplotlib, Agg canvas, mapdyn house style), written atomically.
+
+Every figure has labelled axes with units and a legend.  Times are plotted in fs for molecular
+sets and in atomic units for model sets (``time_unit`` = "fs" or "a.u.").
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+from typing import Any, Sequence
+
+import numpy as np
+
+__all__ = [
+    "HOUSE_STYLE",
+    "STATE_COLOURS",
+    "atomic_write_text",
+    "save_figure",
+    "new_figure",
+    "plot_populations",
+    "plot_initial_population",
+    "plot_observable",
+    "plot_first_entry",
+    "plot_energy_drift",
+    "plot_branching",
+    "plot_vibrational_distribution",
+]
+
+#: Our state palette: ink blue, ember, moss, plum, ochre, slate, rose, teal.
+STATE_COLOURS = ("#1f3a93", "#d35400", "#3c7a3b", "#7d3c98", "#b7950b", "#566573", "#c0392b", "#138d90")
+
+#: rc parameters of the house style (applied with matplotlib.rc_context around each figure).
+HOUSE_STYLE = {
+    "font.family": "DejaVu Sans",
+    "font.size": 9.5,
+    "axes.titlesize": 10,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.labelsize": 9.5,
+    "axes.edgecolor": "#33373d",
+    "axes.linewidth": 0.8,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "grid.color": "#d9dde3",
+    "grid.linewidth": 0.6,
+    "grid.linestyle": "-",
+    "axes.facecolor": "#fbfbf8",
+    "figure.facecolor": "white",
+    "axes.prop_cycle": __import__("cycler").cycler(color=list(STATE_COLOURS)),
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+    "xtick.direction": "out",
+    "ytick.direction": "out",
+    "xtick.labelsize": 8.5,
+    "ytick.labelsize": 8.5,
+    "lines.linewidth": 1.7,
+}
+
+_FIGSIZE = (6.4, 4.0)
+
+
+def atomic_write_text(path: str | os.PathLike, text: str) -> str:
+    """Write text to ``path`` atomically (``*.tmp``, flush, fsync, os.replace)."""
+    path = os.fspath(path)
+    tmp = path + ".tmp"
+    with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+        fh.write(text)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    return path
+
+
+@contextlib.contextmanager
+def new_figure(nrows: int = 1, ncols: int = 1, figsize=_FIGSIZE, **kw):
+    """A Figure on an Agg canvas (no pyplot state) under the house style; yields (fig, axes)."""
+    import matplotlib
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    with matplotlib.rc_context(HOUSE_STYLE):
+        fig = Figure(figsize=figsize)
+        FigureCanvasAgg(fig)
+        axes = fig.subplots(nrows, ncols, squeeze=False, **kw)
+        yield fig, axes
+
+
+def save_figure(fig, path: str | os.PathLike, dpi: int = 150) -> str:
+    """Save ``fig`` as PNG/PDF/SVG (by suffix) atomically; returns the path."""
+    path = os.fspath(path)
+    fmt = os.path.splitext(path)[1].lstrip(".").lower() or "png"
+    if fmt not in ("png", "pdf", "svg"):
+        raise ValueError(f"figure path must end in .png, .pdf or .svg, got {path!r}")
+    fig.tight_layout()
+    tmp = path + ".tmp"
+    with open(tmp, "wb") as fh:
+        fig.savefig(fh, format=fmt, dpi=dpi)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    return path
+
+
+def _time(times_au: np.ndarray, time_unit: str) -> tuple[np.ndarray, str]:
+    from .analysis import AU_TIME_FS
+
+    if time_unit == "fs":
+        return np.asarray(times_au) * AU_TIME_FS, "time / fs"
+    if time_unit == "a.u.":
+        return np.asarray(times_au), "time / a.u."
+    raise ValueError(f"time_unit={time_unit!r} is not allowed; choose 'fs' or 'a.u.'")
+
+
+def plot_populations(series: Any, path: str | os.PathLike, *, time_unit: str = "fs", title: str | None = None) -> str:
+    """Populations (lines) with bootstrap bands per state; lower panel: trajectories in no window
+    (SQC) and trajectories contributing, as fractions of the ensemble."""
+    t, xlabel = _time(series.times, time_unit)
+    sqc = series.estimator.startswith("SQC")
+    with new_figure(2, 1, figsize=(6.4, 5.0), sharex=True, gridspec_kw={"height_ratios": [3.2, 1]}) as (fig, ax):
+        top, bottom = ax[0, 0], ax[1, 0]
+        for k, label in enumerate(series.labels):
+            c = STATE_COLOURS[k % len(STATE_COLOURS)]
+            top.fill_between(t, series.low[:, k], series.high[:, k], color=c, alpha=0.22, lw=0)
+            top.plot(t, series.populations[:, k], color=c, label=label)
+        top.set_ylabel("population")
+        top.set_ylim(-0.02, 1.02)
+        pct = int(round(100 * series.confidence_level))
+        top.legend(loc="best", title=f"bands: {pct} % bootstrap ({series.bootstrap_method})",
+                   title_fontsize=8)
+        top.set_title(title or ("Adiabatic populations, " + ("SQC windows" if sqc else "Ehrenfest")))
+        ntot = max(int(series.n_frames.max()), 1)
+        bottom.plot(t, series.n_frames / ntot, color="#566573", lw=1.2, label="with a frame")
+        if sqc:
+            bottom.plot(t, series.n_none / ntot, color="#c0392b", lw=1.2, label="in no window")
+        bottom.set_ylabel(f"fraction of {ntot}")
+        bottom.set_xlabel(xlabel)
+        bottom.set_ylim(-0.03, 1.05)
+        bottom.legend(loc="center right", ncol=2)
+        return save_figure(fig, path)
+
+
+def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike, *, time_unit: str = "fs",
+                            title: str | None = None) -> str:
+    """Initial-state population with its band and the exponential fits (solid = preferred)."""
+    from .analysis import AU_TIME_FS
+
+    t, xlabel = _time(series.times, time_unit)
+    scale = AU_TIME_FS if time_unit == "fs" else 1.0
+    unit = "fs" if time_unit == "fs" else "a.u."
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        c = STATE_COLOURS[0]
+        ax.fill_between(t, series.low[:, 0], series.high[:, 0], color=c, alpha=0.2, lw=0,
+                        label=f"{int(round(100 * series.confidence_level))} % bootstrap band")
+        ax.plot(t, series.populations[:, 0], color=c, label="initial-state population")
+        tf, _ = _time(lifetimes.times, time_unit)
+        styles = {"mono": ("#d35400", "single exponential"), "bi": ("#3c7a3b", "bi-exponential")}
+        for name, fit in lifetimes.fits.items():
+            if not fit.diagnostics.get("converged"):
+                continue
+            colour, label = styles[name]
+            pref = lifetimes.preferred == name
+            if name == "mono":
+                label += f", τ = {fit.parameters['tau'] * scale:.4g} ± {fit.uncertainties['tau'] * scale:.2g} {unit}"
+            else:
+                label += (f", τ1 = {fit.parameters['tau1'] * scale:.3g}, τ2 = {fit.parameters['tau2'] * scale:.3g} {unit}"
+                          f", a = {fit.parameters['a']:.2f}")
+            label += " (preferred)" if pref else ("" if fit.supported else " (not supported)")
+            ax.plot(tf, fit.curve, color=colour, ls="-" if pref else "--", lw=1.4 if pref else 1.1, label=label)
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel("population of the initial state")
+        ax.set_ylim(-0.02, 1.02)
+        if lifetimes.lifetime is None:
+            ax.text(0.98, 0.97, "no lifetime supported by the data", transform=ax.transAxes, ha="right",
+                    va="top", fontsize=8.5, color="#c0392b")
+        ax.legend(loc="lower left", fontsize=7.8)
+        ax.set_title(title or "Decay of the initial state")
+        return save_figure(fig, path)
+
+
+def plot_observable(series: Any, path: str | os.PathLike, *, time_unit: str = "fs", title: str | None = None) -> str:
+    """Ensemble mean ± standard deviation (band) and 10/90 % quantiles of one observable."""
+    t, xlabel = _time(series.times, time_unit)
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        c = STATE_COLOURS[3]
+        ax.fill_between(t, series.mean - series.std, series.mean + series.std, color=c, alpha=0.2, lw=0,
+                        label="mean ± standard deviation")
+        ax.plot(t, series.mean, color=c, label="ensemble mean")
+        ax.plot(t, series.q10, color=c, ls=":", lw=1.0, label="10 % / 90 % quantiles")
+        ax.plot(t, series.q90, color=c, ls=":", lw=1.0)
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel(f"{series.name} / {series.unit}")
+        ax.legend(loc="best")
+        ax.set_title(title or f"{series.name} over the ensemble")
+        return save_figure(fig, path)
+
+
+def plot_first_entry(entry: Any, path: str | os.PathLike, *, time_unit: str = "fs", bins: int = 20,
+                     title: str | None = None) -> str:
+    """Histogram of the value (or time) at which trajectories first enter a state."""
+    use_values = np.isfinite(entry.values).any()
+    if use_values:
+        data, xlabel = entry.values[np.isfinite(entry.values)], f"{entry.name} / {entry.unit}"
+    else:
+        data, xlabel = _time(entry.times[np.isfinite(entry.times)], time_unit)
+        xlabel = "entry " + xlabel
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        if data.size:
+            ax.hist(data, bins=bins, color=STATE_COLOURS[2], alpha=0.8, edgecolor="white",
+                    label=f"{data.size} of {entry.times.size} trajectories")
+        else:
+            ax.text(0.5, 0.5, "no trajectory entered this state", transform=ax.transAxes, ha="center")
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel("trajectories")
+        if data.size:
+            ax.legend(loc="best")
+        ax.set_title(title or f"At first entry into state {entry.state}")
+        return save_figure(fig, path)
+
+
+def plot_energy_drift(energy: Any, path: str | os.PathLike, *, bins: int = 30, title: str | None = None) -> str:
+    """Histogram of the total-energy drift E(end) − E(0) per trajectory, in meV, with the tolerance."""
+    from .analysis import _HARTREE_EV
+
+    d = energy.drift[np.isfinite(energy.drift)] * _HARTREE_EV * 1e3
+    tol = energy.tolerance * _HARTREE_EV * 1e3
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        if d.size:
+            ax.hist(d, bins=bins, color=STATE_COLOURS[0], alpha=0.85, edgecolor="white",
+                    label=f"{d.size} trajectories")
+        lo, hi = ax.get_xlim()
+        if lo <= -tol or tol <= hi:
+            ax.axvline(tol, color="#c0392b", ls="--", lw=1.0, label=f"tolerance ±{tol:.3g} meV (on max deviation)")
+            ax.axvline(-tol, color="#c0392b", ls="--", lw=1.0)
+            ax.set_xlim(min(lo, -1.1 * tol), max(hi, 1.1 * tol))
+        else:
+            ax.text(0.02, 0.97, f"flag tolerance ±{tol:.3g} meV lies outside the drift range", transform=ax.transAxes,
+                    ha="left", va="top", fontsize=8, color="#c0392b")
+        ax.set_xlabel("energy drift E(end) − E(0) / meV")
+        ax.set_ylabel("trajectories")
+        ax.legend(loc="best")
+        ax.set_title(title or f"Energy conservation ({energy.ensemble['n_flagged']} flagged)")
+        return save_figure(fig, path)
+
+
+def plot_branching(branching: Any, path: str | os.PathLike, *, title: str | None = None) -> str:
+    """Branching ratios as bars with bootstrap error bars."""
+    x = np.arange(len(branching.labels))
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        r = branching.ratios
+        err = np.vstack([r - branching.low, branching.high - r])
+        ax.bar(x, r, color=[STATE_COLOURS[k % len(STATE_COLOURS)] for k in range(len(x))], alpha=0.85,
+               label=f"{branching.n_classified} classified trajectories")
+        ax.errorbar(x, r, yerr=err, fmt="none", ecolor="#33373d", capsize=4, lw=1.0,
+                    label=f"{int(round(100 * branching.confidence_level))} % bootstrap interval")
+        ax.set_xticks(x, branching.labels)
+        ax.set_ylabel("branching ratio")
+        ax.set_ylim(0, 1.05)
+        ax.set_xlabel("product")
+        ax.legend(loc="upper right")
+        ax.set_title(title or "Products from the final geometries")
+        return save_figure(fig, path)
+
+
+def plot_vibrational_distribution(dist: Any, path: str | os.PathLike, *, title: str | None = None) -> str:
+    """Population per vibrational level from plain histogram boxes and from symmetric windows."""
+    v = np.asarray(dist.levels)
+    w = 0.38
+    with new_figure(1, 2, figsize=(8.6, 3.8), gridspec_kw={"width_ratios": [2.2, 1]}) as (fig, ax):
+        a, b = ax[0, 0], ax[0, 1]
+        err_h = np.vstack([dist.histogram - dist.histogram_low, dist.histogram_high - dist.histogram])
+        err_w = np.vstack([dist.windowed - dist.windowed_low, dist.windowed_high - dist.windowed])
+        a.bar(v - w / 2, dist.histogram, width=w, color=STATE_COLOURS[0], alpha=0.85,
+              label="histogram boxes [v − ½, v + ½)")
+        a.errorbar(v - w / 2, dist.histogram, yerr=err_h, fmt="none", ecolor="#33373d", capsize=2, lw=0.8)
+        a.bar(v + w / 2, dist.windowed, width=w, color=STATE_COLOURS[1], alpha=0.85,
+              label=f"windows |v − n| ≤ {dist.window_half_width:.3g}")
+        a.errorbar(v + w / 2, dist.windowed, yerr=err_w, fmt="none", ecolor="#33373d", capsize=2, lw=0.8)
+        a.set_xlabel("vibrational level v")
+        a.set_ylabel("population (fraction of bound fragments)")
+        a.set_xticks(v)
+        a.legend(loc="upper right")
+        a.set_title(title or f"Vibrational levels of {dist.fragment}")
+        cont = dist.v_continuous[np.isfinite(dist.v_continuous)]
+        if cont.size:
+            b.hist(cont, bins=max(10, 4 * len(v)), color=STATE_COLOURS[5], alpha=0.85, edgecolor="white",
+                   label=f"{cont.size} bound, {dist.n_unbound} unbound")
+            b.legend(loc="upper right", fontsize=7.5)
+        b.set_xlabel("continuous v (Bohr–Sommerfeld)")
+        b.set_ylabel("fragments")
+        b.set_title("Continuous quantum number")
+        return save_figure(fig, path)

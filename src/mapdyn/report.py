@@ -1,0 +1,345 @@
+"""Report folder: PNG figures, one CSV per plotted curve, and a Markdown summary (atomic writes).
+
+``write_report(results, folder)`` takes an :class:`mapdyn.analysis.AnalysisResults` (or a
+:class:`mapdyn.analysis.TrajectorySet`, analysed with default settings) and writes
+
+    populations.png / populations.csv            adiabatic populations with bootstrap bands
+    initial_population.png / .csv                 initial-state population and exponential fits
+    observable_<name>.png / .csv                  each geometric observable (mean, std, quantiles)
+    first_entry_state<k>_<name>.png / .csv        value/time at first entry into state k
+    energy_drift.png / energy_drift.csv           per-trajectory energy drift (histogram)
+    branching.png / branching.csv                 product branching ratios
+    vibrational_<fragment>.png / .csv (+ _continuous.csv)   vibrational level populations
+    spectrum.png / spectrum.csv                   absorption spectrum, when supplied
+    summary.md                                    inputs, counts, lifetimes, products, flags
+
+CSV files: a header line of column names (units in the names), numbers written with 17
+significant digits (``%.17g``) so they read back equal to the in-memory arrays.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import io
+import os
+import re
+from typing import Any, Sequence
+
+import numpy as np
+
+from . import plots
+from .analysis import AU_TIME_FS, _HARTREE_EV, AnalysisResults, TrajectorySet, analyze
+
+__all__ = ["Report", "write_report", "write_csv", "read_csv"]
+
+
+@dataclasses.dataclass
+class Report:
+    """What :func:`write_report` wrote: folder, figure paths, CSV paths, summary path (all str)."""
+
+    folder: str
+    figures: dict
+    tables: dict
+    summary: str
+
+
+def _slug(text: str) -> str:
+    s = re.sub(r"[^A-Za-z0-9]+", "_", text).strip("_")
+    return s or "item"
+
+
+def _fmt(v: Any) -> str:
+    if isinstance(v, str):
+        return '"' + v.replace('"', "'") + '"' if ("," in v or '"' in v) else v
+    if isinstance(v, (bool, np.bool_)):
+        return "1" if v else "0"
+    if isinstance(v, (int, np.integer)):
+        return str(int(v))
+    return "%.17g" % float(v)
+
+
+def write_csv(path: str | os.PathLike, columns: Sequence[str], data: Sequence[Sequence[Any]]) -> str:
+    """CSV with a header of ``columns`` and one row per entry of the column arrays in ``data``
+    (numbers as %.17g, integers plain, NaN as "nan"); atomic write."""
+    cols = [list(c) if not isinstance(c, np.ndarray) else c for c in data]
+    nrow = len(cols[0]) if cols else 0
+    if any(len(c) != nrow for c in cols) or len(columns) != len(cols):
+        raise ValueError(f"write_csv {path}: columns must all have the same length and match the header")
+    buf = io.StringIO()
+    buf.write(",".join(columns) + "\n")
+    for i in range(nrow):
+        buf.write(",".join(_fmt(c[i]) for c in cols) + "\n")
+    return plots.atomic_write_text(path, buf.getvalue())
+
+
+def read_csv(path: str | os.PathLike) -> dict[str, np.ndarray]:
+    """Read a CSV written by :func:`write_csv`: column name → array (float where numeric, else str)."""
+    import csv
+
+    with open(path, newline="", encoding="utf-8") as fh:
+        rows = list(csv.reader(fh))
+    header, body = rows[0], rows[1:]
+    out = {}
+    for k, name in enumerate(header):
+        col = [r[k] for r in body]
+        try:
+            out[name] = np.array([float(x) for x in col])
+        except ValueError:
+            out[name] = np.array(col, dtype=str)
+    return out
+
+
+def _time_columns(times_au: np.ndarray) -> tuple[list[str], list[np.ndarray]]:
+    return ["time_au", "time_fs"], [times_au, times_au * AU_TIME_FS]
+
+
+def _pm(v: float, e: float, digits: int = 3) -> str:
+    if v is None or not np.isfinite(v):
+        return "n/a"
+    if e is None or not np.isfinite(e):
+        return f"{v:.{digits}g}"
+    return f"{v:.{digits}g} ± {e:.2g}"
+
+
+def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.PathLike, *,
+                 time_unit: str | None = None, title: str | None = None) -> Report:
+    """Write figures, CSV files and ``summary.md`` into ``folder`` (created if missing).
+
+    ``time_unit`` for the figures: "fs" (default for molecular sets) or "a.u." (default for
+    model sets).  CSVs always carry both ``time_au`` and ``time_fs``.
+    """
+    if isinstance(results, TrajectorySet):
+        results = analyze(results)
+    if not isinstance(results, AnalysisResults):
+        raise ValueError("results must be an AnalysisResults (from mapdyn.analysis.analyze) or a TrajectorySet")
+    folder = os.fspath(folder)
+    os.makedirs(folder, exist_ok=True)
+    ts = results.tset
+    tu = time_unit or ("fs" if ts.is_molecular else "a.u.")
+    figs: dict = {}
+    tabs: dict = {}
+    notes: dict = {}
+
+    def fig(name, fn, *args, note: str = "", **kw):
+        figs[name] = fn(*args, os.path.join(folder, name + ".png"), **kw)
+        notes[name] = note
+
+    def tab(name, columns, data):
+        tabs[name] = write_csv(os.path.join(folder, name + ".csv"), columns, data)
+
+    # populations ------------------------------------------------------------------------------
+    pops = results.populations
+    cols, data = _time_columns(pops.times)
+    for k, lab in enumerate(pops.labels):
+        s = _slug(lab)
+        cols += [f"P_{s}", f"low_{s}", f"high_{s}", f"se_{s}"]
+        data += [pops.populations[:, k], pops.low[:, k], pops.high[:, k], pops.standard_error[:, k]]
+    cols += ["n_none", "n_frames"]
+    data += [pops.n_none, pops.n_frames]
+    tab("populations", cols, data)
+    fig("populations", plots.plot_populations, pops, time_unit=tu,
+        note=(f"adiabatic populations vs time, {int(round(100 * pops.confidence_level))} % trajectory-bootstrap "
+              "bands; lower panel: fraction of trajectories with a frame and (SQC) in no window"))
+
+    # initial-state population and fits ----------------------------------------------------------
+    init, life = results.initial_population, results.lifetimes
+    cols, data = _time_columns(init.times)
+    cols += ["P_initial", "low", "high", "se"]
+    data += [init.populations[:, 0], init.low[:, 0], init.high[:, 0], init.standard_error[:, 0]]
+    for name, fitres in life.fits.items():
+        curve = np.full(init.times.shape, np.nan)
+        idx = np.searchsorted(init.times, life.times)
+        if fitres.curve.shape == life.times.shape:
+            curve[idx] = fitres.curve
+        cols.append(f"fit_{name}")
+        data.append(curve)
+    tab("initial_population", cols, data)
+    fig("initial_population", plots.plot_initial_population, init, life, time_unit=tu,
+        note="population of each trajectory's initial state with its band and the single/bi-exponential fits")
+
+    # observables -------------------------------------------------------------------------------
+    for obs in results.observables:
+        name = "observable_" + _slug(obs.name)
+        cols, data = _time_columns(obs.times)
+        u = "angstrom" if obs.unit == "Å" else obs.unit
+        cols += [f"mean_{u}", f"std_{u}", f"q10_{u}", f"q90_{u}", "n"]
+        data += [obs.mean, obs.std, obs.q10, obs.q90, obs.n]
+        tab(name, cols, data)
+        fig(name, plots.plot_observable, obs, time_unit=tu,
+            note=f"{obs.name} ({obs.unit}): ensemble mean ± standard deviation and 10/90 % quantiles")
+
+    for ent in results.first_entries:
+        name = f"first_entry_state{ent.state}_" + _slug(ent.name)
+        u = "angstrom" if ent.unit == "Å" else ent.unit
+        tab(name, ["trajectory", "time_au", "time_fs", f"value_{_slug(u)}"],
+            [ent.indices, ent.times, ent.times * AU_TIME_FS, ent.values])
+        fig(name, plots.plot_first_entry, ent, time_unit=tu,
+            note=f"histogram of {ent.name} when trajectories first enter state {ent.state} ({ent.criterion})")
+
+    # energy -----------------------------------------------------------------------------------
+    en = results.energy
+    if en is not None:
+        tab("energy_drift", ["trajectory", "drift_hartree", "max_deviation_hartree", "drift_rate_hartree_per_au",
+                             "flagged"], [en.indices, en.drift, en.max_deviation, en.drift_rate, en.flagged])
+        fig("energy_drift", plots.plot_energy_drift, en,
+            note="histogram of total-energy drift E(end) − E(0) per trajectory (meV) with the flag tolerance")
+
+    # products ---------------------------------------------------------------------------------
+    br = results.branching
+    if br is not None and len(br.labels):
+        tab("branching", ["product", "count", "ratio", "low", "high", "se"],
+            [list(br.labels), br.counts, br.ratios, br.low, br.high, br.standard_error])
+        fig("branching", plots.plot_branching, br,
+            note=f"branching ratios of the final geometries with {int(round(100 * br.confidence_level))} % bootstrap intervals")
+
+    # vibrational ------------------------------------------------------------------------------
+    for dist in results.vibrational:
+        name = "vibrational_" + _slug(dist.fragment)
+        tab(name, ["v", "histogram", "histogram_low", "histogram_high", "windowed", "windowed_low", "windowed_high"],
+            [dist.levels, dist.histogram, dist.histogram_low, dist.histogram_high, dist.windowed,
+             dist.windowed_low, dist.windowed_high])
+        tab(name + "_continuous", ["trajectory", "v_continuous", "internal_energy_hartree", "angular_momentum_au"],
+            [dist.indices, dist.v_continuous, dist.internal_energy, dist.angular_momentum])
+        fig(name, plots.plot_vibrational_distribution, dist,
+            note=(f"vibrational level populations of {dist.fragment} from histogram boxes and from windows "
+                  f"|v − n| ≤ {dist.window_half_width:.3g}; right: continuous Bohr–Sommerfeld v"))
+
+    # spectrum ---------------------------------------------------------------------------------
+    spec = results.spectrum
+    if spec is not None:
+        from .initial_excitation import plot_absorption_spectrum
+
+        cols = ["energy_ev", "cross_section_angstrom2"] + [f"S{k + 1}_angstrom2"
+                                                          for k in range(spec.per_state_cross_section_angstrom2.shape[0])]
+        tab("spectrum", cols, [spec.energy_ev, spec.cross_section_angstrom2] + list(spec.per_state_cross_section_angstrom2))
+        figs["spectrum"] = plot_absorption_spectrum(spec, os.path.join(folder, "spectrum.png"))
+        notes["spectrum"] = "nuclear-ensemble absorption spectrum (Å²) with per-state contributions"
+
+    summary = _summary(results, figs, tabs, notes, title, tu)
+    spath = plots.atomic_write_text(os.path.join(folder, "summary.md"), summary)
+    return Report(folder, figs, tabs, spath)
+
+
+def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: str | None, tu: str) -> str:
+    ts = res.tset
+    L: list[str] = []
+    L.append(f"# {title or ts.metadata.get('name') or 'mapdyn analysis report'}")
+    L.append("")
+    L.append("## Inputs")
+    L.append(f"- method: {ts.options.describe()} (window γ = {ts.options.window_gamma:.6g})")
+    L.append(f"- trajectories: {ts.ntraj}; states: {ts.nstates}; time points: {ts.times.size}, "
+             f"t = {ts.times[0]:.6g} … {ts.times[-1]:.6g} a.u. ({ts.times[0] * AU_TIME_FS:.4g} … "
+             f"{ts.times[-1] * AU_TIME_FS:.4g} fs)")
+    states, counts = np.unique(ts.initial_states, return_counts=True)
+    L.append("- initial states: " + ", ".join(f"{s}: {c}" for s, c in zip(states, counts)))
+    for k, v in ts.metadata.items():
+        L.append(f"- {k}: {v}")
+    st = res.settings
+    if st:
+        L.append(f"- analysis: {int(round(100 * st.get('confidence_level', 0.95)))} % bootstrap intervals, "
+                 f"{st.get('n_resamples')} resamples (seed {st.get('bootstrap_seed')}), "
+                 f"energy tolerance {st.get('energy_tolerance_hartree')} Eh")
+    L.append("")
+    L.append("## Counts")
+    sc = ts.status_counts()
+    L.append("- status: " + ", ".join(f"{k} {v}" for k, v in sc.items()))
+    pops = res.populations
+    L.append(f"- estimator: {pops.estimator}")
+    if ts.options.method == "sqc":
+        L.append(f"- trajectories in no window: {int(pops.n_none[-1])} at the last time, at most "
+                 f"{int(pops.n_none.max())}")
+    L.append("")
+    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_FS:.4g} fs, "
+             f"{int(round(100 * pops.confidence_level))} % interval, {pops.bootstrap_method}):")
+    L.append("")
+    L.append("| state | population | interval |")
+    L.append("|---|---|---|")
+    for k, lab in enumerate(pops.labels):
+        L.append(f"| {lab} | {pops.populations[-1, k]:.4f} | [{pops.low[-1, k]:.4f}, {pops.high[-1, k]:.4f}] |")
+    L.append("")
+    L.append("## Lifetime of the initial state")
+    life = res.lifetimes
+    if life.lifetime is None:
+        L.append("No lifetime reported: " + ("; ".join(life.reasons) if life.reasons else "not supported") + ".")
+    else:
+        tau_fs, err_fs = life.lifetime_fs()
+        what = "τ" if life.preferred == "mono" else "amplitude-weighted mean a·τ1 + (1 − a)·τ2"
+        L.append(f"**{_pm(tau_fs, err_fs, 4)} fs** ({what}, {'single' if life.preferred == 'mono' else 'bi'}-exponential fit).")
+    L.append("")
+    if life.fits:
+        L.append("| model | parameters (times in fs) | reduced χ² | AIC | supported |")
+        L.append("|---|---|---|---|---|")
+        for name, f in life.fits.items():
+            parts = []
+            for p in f.names:
+                scale = AU_TIME_FS if p.startswith("tau") or p == "delay" else 1.0
+                parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
+            d = f.diagnostics
+            rc = f"{d['reduced_chi2']:.3g}" if "reduced_chi2" in d else "n/a"
+            aic = f"{d['aic']:.4g}" if "aic" in d else "n/a"
+            sup = "yes" if f.supported else "no: " + "; ".join(f.reasons)
+            L.append(f"| {name} | {', '.join(parts)} | {rc} | {aic} | {sup} |")
+        L.append("")
+    L.append(f"Rule: {life.rule}")
+    L.append("")
+    if res.observables or res.first_entries:
+        L.append("## Geometric observables")
+        for o in res.observables:
+            L.append(f"- {o.name}: {o.mean[0]:.4g} ± {o.std[0]:.2g} {o.unit} at the start, "
+                     f"{o.mean[-1]:.4g} ± {o.std[-1]:.2g} {o.unit} at the end (mean ± std)")
+        for e in res.first_entries:
+            ok = np.isfinite(e.times)
+            if ok.any():
+                extra = (f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit}"
+                         if np.isfinite(e.values).any() else "")
+                L.append(f"- first entry into state {e.state}: {int(ok.sum())} of {ok.size} trajectories, "
+                         f"mean time {np.nanmean(e.times) * AU_TIME_FS:.4g} fs{extra}")
+            else:
+                L.append(f"- first entry into state {e.state}: no trajectory entered")
+        L.append("")
+    br = res.branching
+    if br is not None:
+        L.append("## Products")
+        L.append(f"{br.n_classified} trajectories classified ({len(br.excluded)} excluded: not finished or failed).")
+        L.append("")
+        L.append("| product | count | ratio | interval |")
+        L.append("|---|---|---|---|")
+        for k, lab in enumerate(br.labels):
+            L.append(f"| {lab} | {br.counts[k]} | {br.ratios[k]:.4f} | [{br.low[k]:.4f}, {br.high[k]:.4f}] |")
+        L.append("")
+    for dist in res.vibrational:
+        L.append(f"## Vibrational levels of {dist.fragment}")
+        L.append(f"- potential: {dist.potential_source}")
+        L.append(f"- {dist.n_bound} bound, {dist.n_unbound} unbound; windowed binning: {dist.n_outside_windows} "
+                 f"bound fragments in no window (half-width {dist.window_half_width:.4g})")
+        L.append(f"- normalisation: {dist.normalisation}")
+        L.append("")
+    en = res.energy
+    L.append("## Energy conservation")
+    if en is None:
+        L.append("No energies recorded.")
+    else:
+        e = en.ensemble
+        L.append(f"- |drift| mean {e['mean_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV, median "
+                 f"{e['median_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV, max {e['max_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV; "
+                 f"max deviation {e['max_deviation'] * _HARTREE_EV * 1e3:.3g} meV")
+        L.append(f"- flagged (max deviation > {en.tolerance:.3g} Eh = {en.tolerance * _HARTREE_EV * 1e3:.3g} meV): "
+                 f"{e['n_flagged']}")
+    L.append("")
+    L.append("## Flagged and failed trajectories")
+    if not res.flags:
+        L.append("None.")
+    for fl in res.flags[:50]:
+        L.append(f"- trajectory {fl.index} ({fl.status}): {'; '.join(fl.reasons)}")
+    if len(res.flags) > 50:
+        L.append(f"- … and {len(res.flags) - 50} more (see energy_drift.csv)")
+    L.append("")
+    L.append("## Figures")
+    for name, path in figs.items():
+        L.append(f"- `{os.path.basename(path)}`: {notes.get(name, '')}")
+    L.append("")
+    L.append("## Data files")
+    L.append("Every plotted curve is in a CSV next to its figure: " + ", ".join(
+        f"`{os.path.basename(p)}`" for p in tabs.values()) + ".")
+    L.append("")
+    return "\n".join(L)
