@@ -1,0 +1,21 @@
+"""Electronic-structure backends (adapters returning :class:`mapdyn.electronic.ElectronicResult`).
+
+Imported lazily so that model studies never pay for importing PySCF.
+"""
+
+import importlib
+
+_EXPORTS = {
+    "CASSCFBackend": "mapdyn.backends.pyscf_casscf",
+    "CASSCFGuess": "mapdyn.backends.pyscf_casscf",
+    "TDDFTBackend": "mapdyn.backends.pyscf_tddft",
+    "time_derivative_couplings": "mapdyn.backends.pyscf_tddft",
+}
+
+__all__ = list(_EXPORTS)
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        return getattr(importlib.import_module(_EXPORTS[name]), name)
+    raise AttributeError(f"module 'mapdyn.backends' has no attribute {name!r}")
