@@ -1038,7 +1038,7 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     vib = []
     for frag in vibrational:
         from .vibrational import analyze_fragment
-        vib.append(analyze_fragment(tset, frag))
+        vib.append(analyze_fragment(tset, frag, **kw))
     settings = {"confidence_level": confidence_level, "n_resamples": n_resamples, "bootstrap_seed": seed,
                 "energy_tolerance_hartree": energy_tolerance, "lifetime_delay": lifetime_delay,
                 "lifetime_asymptote": lifetime_asymptote}
