@@ -44,6 +44,7 @@ __all__ = [
     "PopulationSeries",
     "populations",
     "initial_state_population",
+    "resampled_initial_population",
     "bootstrap_ratio",
     "ExponentialFit",
     "LifetimeResult",
@@ -409,6 +410,19 @@ def initial_state_population(tset: TrajectorySet, *, confidence_level: float = 0
                    bootstrap=bootstrap)
 
 
+def resampled_initial_population(tset: TrajectorySet, n_resamples: int = 100, seed: int = 0) -> np.ndarray:
+    """(B, T) initial-state population curves of B trajectory-bootstrap resamples (whole trajectories
+    drawn with replacement, same estimator as :func:`initial_state_population`)."""
+    num, den, _ = _state_weights(tset)
+    n = tset.ntraj
+    own = num[np.arange(n), :, tset.initial_states]
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 7]))
+    idx = rng.integers(0, n, size=(int(n_resamples), n))
+    w = _resample_weights(idx, n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (w @ own) / (w @ den)
+
+
 # ----------------------------------------------------------------------------------------------
 # lifetimes
 # ----------------------------------------------------------------------------------------------
@@ -483,7 +497,7 @@ def _bi(t, P0, tau1, tau2, a, td, Pinf):
 
 
 def _fit_one(model: str, t: np.ndarray, y: np.ndarray, s: np.ndarray, P0: float, delay: bool,
-             asymptote: bool) -> ExponentialFit:
+             asymptote: bool, resampled: np.ndarray | None = None) -> ExponentialFit:
     span = float(t[-1] - t[0])
     drop = P0 - y[-1]
     # 1/e time of the observed decay as a starting guess
@@ -548,12 +562,47 @@ def _fit_one(model: str, t: np.ndarray, y: np.ndarray, s: np.ndarray, P0: float,
         pcov = J @ pcov @ J.T
     curve = f(t, *popt)
     err = np.sqrt(np.clip(np.diag(pcov), 0.0, None)) if np.all(np.isfinite(pcov)) else np.full(k, np.nan)
+    cov_err = err.copy()
+    samples = None
+    if resampled is not None and len(resampled) >= 2:
+        # trajectory bootstrap of the fit: refit every resampled population curve from the best fit
+        out = []
+        for yb in resampled:
+            P0b = float(yb[0])
+
+            def fb(tt, *q, P0b=P0b):
+                it = iter(q)
+                if model == "mono":
+                    tau = next(it)
+                    td = next(it) if delay else 0.0
+                    pinf = next(it) if asymptote else 0.0
+                    return _mono(tt, P0b, tau, td + t[0], pinf)
+                tau1, tau2, a = next(it), next(it), next(it)
+                td = next(it) if delay else 0.0
+                pinf = next(it) if asymptote else 0.0
+                return _bi(tt, P0b, tau1, tau2, a, td + t[0], pinf)
+            try:
+                pb, _ = optimize.curve_fit(fb, t, yb, p0=np.clip(popt, np.array(lo) + 1e-12, np.array(hi) - 1e-12),
+                                           sigma=s, absolute_sigma=True, bounds=(lo, hi), method="trf", maxfev=5000)
+            except (RuntimeError, ValueError):
+                continue
+            if model == "bi" and pb[0] > pb[1]:
+                pb[0], pb[1] = pb[1], pb[0]
+                pb[2] = 1.0 - pb[2]
+            out.append(pb)
+        if len(out) >= 2:
+            samples = np.array(out)
+            err = samples.std(axis=0, ddof=1)
     dof = max(len(t) - k, 1)
     ss_res = float(np.sum((curve - y) ** 2))
     ss_tot = float(np.sum((y - y.mean()) ** 2))
     diag = {"converged": True, "message": "ok", "chi2": chi2, "dof": dof, "reduced_chi2": chi2 / dof,
             "r2": 1.0 - ss_res / ss_tot if ss_tot > 0 else float("nan"),
-            "rms_residual": math.sqrt(ss_res / len(t)), "aic": chi2 + 2.0 * k, "npoints": int(len(t))}
+            "rms_residual": math.sqrt(ss_res / len(t)), "aic": chi2 + 2.0 * k, "npoints": int(len(t)),
+            "uncertainty_method": (f"trajectory bootstrap ({len(samples)} refits)" if samples is not None
+                                   else "covariance (independent points)"),
+            "covariance_uncertainties": {nm: float(v) for nm, v in zip(names, cov_err)},
+            "bootstrap_samples": samples}
     params = {nm: float(v) for nm, v in zip(names, popt)}
     uncs = {nm: float(v) for nm, v in zip(names, err)}
     if "delay" in params:
@@ -578,7 +627,8 @@ def _fit_one(model: str, t: np.ndarray, y: np.ndarray, s: np.ndarray, P0: float,
 
 def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.ndarray | None = None, *,
                   delay: bool = True, asymptote: bool = True, models: Sequence[str] = ("mono", "bi"),
-                  sigma_floor: float | None = None, t_max: float | None = None) -> LifetimeResult:
+                  sigma_floor: float | None = None, t_max: float | None = None,
+                  resampled_populations: np.ndarray | None = None) -> LifetimeResult:
     """Fit the initial-state population with single/bi-exponentials (scipy.optimize.curve_fit).
 
     times (T,) a.u.; population (T,); standard_error (T,) 1σ per point (e.g. the bootstrap SE),
@@ -586,7 +636,10 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
     weight; None = unweighted (σ = sigma_floor).  P0 is fixed to the first population value;
     ``delay`` adds a free onset t_d ≥ 0, ``asymptote`` a free P∞ ∈ [0, 1] (otherwise P∞ = 0).
     ``t_max`` restricts the fit to t ≤ t_max (a.u.).  Parameter uncertainties are
-    √diag(covariance) with absolute σ.  Whether a lifetime is reported follows :data:`LIFETIME_RULE`.
+    √diag(covariance) with absolute σ, or — when ``resampled_populations`` (B, T) trajectory-bootstrap
+    replicas of the curve are given — the standard deviation of the B refitted parameters, which
+    accounts for the correlation between time points (successive points share trajectories, so the
+    covariance estimate is too small).  Whether a lifetime is reported follows :data:`LIFETIME_RULE`.
     """
     t = np.asarray(times, dtype=float)
     y = np.asarray(population, dtype=float)
@@ -602,6 +655,13 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
     if t_max is not None:
         keep &= t <= float(t_max)
     t, y, s = t[keep], y[keep], s[keep]
+    rs = None
+    if resampled_populations is not None:
+        rs = np.asarray(resampled_populations, dtype=float)
+        if rs.ndim != 2 or rs.shape[1] != keep.size:
+            raise ValueError(f"resampled_populations must have shape (B, {keep.size}), got {rs.shape}")
+        rs = rs[:, keep]
+        rs = rs[np.all(np.isfinite(rs), axis=1)]
     reasons: list = []
     fits: dict = {}
     if t.size < 5:
@@ -613,7 +673,7 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
     if drop < needed:
         reasons.append(f"population fell by {drop:.3g} < {needed:.3g} (no measurable decay in the window)")
     for m in models:
-        fits[m] = _fit_one(m, t, y, s, P0, delay, asymptote)
+        fits[m] = _fit_one(m, t, y, s, P0, delay, asymptote, rs)
     preferred = None
     if not reasons:
         mono, bi = fits.get("mono"), fits.get("bi")
@@ -636,7 +696,13 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
         grad[fit.names.index("tau1")] = a
         grad[fit.names.index("tau2")] = 1 - a
         grad[fit.names.index("a")] = t1 - t2
-        unc = float(math.sqrt(max(grad @ fit.covariance @ grad, 0.0)))
+        samples = fit.diagnostics.get("bootstrap_samples")
+        if samples is not None:
+            ia, i1, i2 = (fit.names.index(k) for k in ("a", "tau1", "tau2"))
+            mean_tau = samples[:, ia] * samples[:, i1] + (1 - samples[:, ia]) * samples[:, i2]
+            unc = float(np.std(mean_tau, ddof=1))
+        else:
+            unc = float(math.sqrt(max(grad @ fit.covariance @ grad, 0.0)))
     return LifetimeResult(t, y, s, fits, preferred, lifetime, unc, LIFETIME_RULE, reasons)
 
 
@@ -1014,21 +1080,24 @@ class AnalysisResults:
 def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry: Sequence[tuple] = (),
             classifier: Callable | Mapping | None = None, vibrational: Sequence[Any] = (),
             spectrum: Any = None, confidence_level: float = 0.95, n_resamples: int = 999, seed: int = 0,
-            energy_tolerance: float = 1e-3, lifetime_delay: bool = True, lifetime_asymptote: bool = True
-            ) -> AnalysisResults:
+            energy_tolerance: float = 1e-3, lifetime_delay: bool = True, lifetime_asymptote: bool = True,
+            lifetime_resamples: int = 100) -> AnalysisResults:
     """Run every estimator on ``tset``.
 
     observables : specs for :class:`GeometricObservable`; first_entry : (state, observable-spec or
     None) pairs; classifier : product classifier (see :func:`classify_products`); vibrational :
     :class:`mapdyn.vibrational.FragmentAnalysis` objects (or specs) evaluated on final frames;
-    spectrum : an :class:`mapdyn.initial_excitation.AbsorptionSpectrum` to include in the report.
+    spectrum : an :class:`mapdyn.initial_excitation.AbsorptionSpectrum` to include in the report;
+    lifetime_resamples : trajectory-bootstrap refits for the lifetime uncertainties (0 = covariance).
     """
     kw = dict(confidence_level=confidence_level, n_resamples=n_resamples, seed=seed)
     pops = populations(tset, **kw)
     init = initial_state_population(tset, **kw)
     life = fit_lifetimes(init.times, init.populations[:, 0], init.standard_error[:, 0],
                          delay=lifetime_delay, asymptote=lifetime_asymptote,
-                         sigma_floor=max(0.01, 1.0 / max(tset.ntraj, 1)))
+                         sigma_floor=max(0.01, 1.0 / max(tset.ntraj, 1)),
+                         resampled_populations=(resampled_initial_population(tset, lifetime_resamples, seed)
+                                                if lifetime_resamples else None))
     obs = [observable_series(tset, o) for o in observables] if tset.positions is not None else []
     entries = [values_at_first_entry(tset, int(s), o if tset.positions is not None else None)
                for s, o in first_entry]
@@ -1041,5 +1110,5 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
         vib.append(analyze_fragment(tset, frag, **kw))
     settings = {"confidence_level": confidence_level, "n_resamples": n_resamples, "bootstrap_seed": seed,
                 "energy_tolerance_hartree": energy_tolerance, "lifetime_delay": lifetime_delay,
-                "lifetime_asymptote": lifetime_asymptote}
+                "lifetime_asymptote": lifetime_asymptote, "lifetime_resamples": lifetime_resamples}
     return AnalysisResults(tset, pops, init, life, obs, entries, branching, energy, flags, vib, spectrum, settings)

@@ -279,6 +279,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
             aic = f"{d['aic']:.4g}" if "aic" in d else "n/a"
             sup = "yes" if f.supported else "no: " + "; ".join(f.reasons)
             L.append(f"| {name} | {', '.join(parts)} | {rc} | {aic} | {sup} |")
+        meth = {f.diagnostics.get("uncertainty_method") for f in life.fits.values() if f.diagnostics.get("converged")}
+        L.append("Uncertainties (1σ): " + ", ".join(sorted(m for m in meth if m)) + ".")
         L.append("")
     L.append(f"Rule: {life.rule}")
     L.append("")
