@@ -336,7 +336,7 @@ def _check_single_thread_workers(executor: DaskExecutor) -> None:
 def local_cluster_executor(n_workers: int = 2, *, task_retries: int = 1, allowed_failures: int = 3,
                            memory_per_worker: int | str | None = None,
                            local_directory: str | None = None) -> DaskExecutor:
-    """A Dask ``LocalCluster`` on 127.0.0.1: ``n_workers`` processes, one thread each (no dashboard)."""
+    """A Dask ``LocalCluster`` on 127.0.0.1: ``n_workers`` processes, one thread each (dashboard on a free local port)."""
     distributed = _import_distributed()
     import dask
 
@@ -345,7 +345,7 @@ def local_cluster_executor(n_workers: int = 2, *, task_retries: int = 1, allowed
     with dask.config.set({"distributed.scheduler.allowed-failures": int(allowed_failures)}):
         cluster = distributed.LocalCluster(
             n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-            dashboard_address=None, env=dict(SINGLE_THREAD_ENV),
+            dashboard_address="127.0.0.1:0", env=dict(SINGLE_THREAD_ENV),
             memory_limit=memory_per_worker if memory_per_worker is not None else "auto",
             local_directory=local_directory)
     client = distributed.Client(cluster)
