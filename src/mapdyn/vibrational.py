@@ -164,8 +164,9 @@ def scan_fragment_potential(backend: Any, r_grid_bohr: Sequence[float], *, state
     r = np.asarray(r_grid_bohr, dtype=float)
     if r.ndim != 1 or r.size < 4 or np.any(np.diff(r) <= 0) or r[0] <= 0:
         raise ValueError("r_grid_bohr must be ≥ 4 increasing positive distances (Bohr)")
-    level = label or str(getattr(backend, "level_of_theory", lambda: type(backend).__name__)()
-                         if callable(getattr(backend, "level_of_theory", None)) else type(backend).__name__)
+    lot = getattr(backend, "level_of_theory", None)
+    lot = lot() if callable(lot) else lot
+    level = label or (str(lot) if lot else type(backend).__name__)
     key = hashlib.sha256(json.dumps({"r": r.tolist(), "state": int(state), "label": level}).encode()).hexdigest()[:16]
     if cache_path is not None:
         cache_path = os.fspath(cache_path)
