@@ -288,10 +288,13 @@ def plot_vibrational_distribution(dist: Any, path: str | os.PathLike, *, title: 
         a.set_ylabel("population (fraction of bound fragments)")
         a.set_xticks(v)
         a.legend(loc="upper right")
-        a.set_title(title or f"Vibrational levels of {dist.fragment}")
+        a.set_title("Population per level")
+        fig.suptitle(title or f"Vibrational levels of {dist.fragment}", fontsize=10, fontweight="bold", x=0.01,
+                     ha="left")
         cont = dist.v_continuous[np.isfinite(dist.v_continuous)]
         if cont.size:
-            b.hist(cont, bins=max(10, 4 * len(v)), color=STATE_COLOURS[5], alpha=0.85, edgecolor="white",
+            edges = np.arange(-0.5, max(float(cont.max()), len(v) - 0.5) + 0.25, 0.25)
+            b.hist(cont, bins=edges, color=STATE_COLOURS[5], alpha=0.85, edgecolor="white",
                    label=f"{cont.size} bound, {dist.n_unbound} unbound")
             b.legend(loc="upper right", fontsize=7.5)
         b.set_xlabel("continuous v (Bohr–Sommerfeld)")
