@@ -411,3 +411,25 @@ def test_write_report_accepts_a_trajectory_set(tmp_path):
     ts = make_set(assign)
     rep = R.write_report(ts, tmp_path)
     assert os.path.exists(rep.summary) and "No lifetime reported" in open(rep.summary, encoding="utf-8").read()
+
+
+def test_from_trajectories_pads_unequal_lengths():
+    rng = np.random.default_rng(0)
+    recs = []
+    for j, T in enumerate((5, 3, 0)):
+        t = np.arange(T) * 20.0
+        a = square_actions(np.array([1] * T)) if T else np.zeros((0, 2))
+        recs.append({"time_au": t, "actions": a, "total_energy_Eh": -1.0 + np.zeros(T),
+                     "positions_bohr": rng.normal(size=(T, 2, 3)), "momenta_au": rng.normal(size=(T, 2, 3)),
+                     "status": ("finished", "failed", "pending")[j], "reason": ("", "SCF failed", "")[j],
+                     "index": 10 + j, **({"initial_state": 1} if T == 0 else {})})
+    ts = A.from_trajectories(recs, SQC, symbols=("H", "H"))
+    assert ts.actions.shape == (3, 5, 2) and ts.positions.shape == (3, 5, 2, 3)
+    assert ts.frame_mask.sum(axis=1).tolist() == [5, 3, 0]
+    np.testing.assert_array_equal(ts.positions[1, :3], recs[1]["positions_bohr"])
+    assert np.isnan(ts.positions[1, 3:]).all()
+    assert ts.initial_states.tolist() == [1, 1, 1] and ts.indices.tolist() == [10, 11, 12]
+    p = A.populations(ts, bootstrap=False)
+    assert p.n_frames.tolist() == [2, 2, 2, 1, 1]
+    flags = A.flagged_trajectories(ts)
+    assert [(f.index, f.status) for f in flags] == [(11, "failed"), (12, "pending")]

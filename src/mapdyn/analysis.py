@@ -41,6 +41,8 @@ __all__ = [
     "AU_TIME_FS",
     "TrajectorySet",
     "from_diabatic_run",
+    "from_trajectories",
+    "frames_to_record",
     "PopulationSeries",
     "populations",
     "initial_state_population",
@@ -232,6 +234,84 @@ def from_diabatic_run(run: Any, initial_states: Sequence[int] | int | None = Non
                          initial_states=np.asarray(initial_states), energies=np.asarray(run.energy).T,
                          coordinates=coords, coordinate_momenta=moms, masses=masses,
                          indices=indices, metadata=meta)
+
+
+def frames_to_record(frames: Sequence[Mapping[str, Any]], **extra) -> dict:
+    """One trajectory record for :func:`from_trajectories` from the frame dicts recorded by
+    :class:`mapdyn.dynamics.MappingDynamics` (keys time_au, actions, total_energy_Eh,
+    positions_bohr, momenta_au).  ``extra`` adds status, reason, initial_state, index."""
+    rec = {"time_au": np.array([f["time_au"] for f in frames], dtype=float),
+           "actions": np.array([f["actions"] for f in frames], dtype=float)}
+    for key in ("total_energy_Eh", "positions_bohr", "momenta_au"):
+        if frames and key in frames[0] and frames[0][key] is not None:
+            rec[key] = np.array([f[key] for f in frames], dtype=float)
+    rec.update(extra)
+    return rec
+
+
+def from_trajectories(records: Sequence[Mapping[str, Any]], options: MethodOptions, *,
+                      symbols: Sequence[str] | None = None, masses: np.ndarray | None = None,
+                      metadata: dict | None = None, time_decimals: int = 6) -> TrajectorySet:
+    """A :class:`TrajectorySet` from per-trajectory records of possibly different lengths.
+
+    Each record: ``time_au`` (T_j,), ``actions`` (T_j, F) adiabatic, optional ``total_energy_Eh``
+    (T_j,), ``positions_bohr``/``momenta_au`` (T_j, N, 3), ``status`` (default "finished"),
+    ``reason``, ``initial_state`` (default: window at the first frame, or largest action), ``index``.
+    Frames are placed on the union of all recorded times (rounded to ``time_decimals`` a.u.);
+    missing frames are NaN.  Records without frames are kept (status/reason listed, no data).
+    """
+    if not records:
+        raise ValueError("records must contain at least one trajectory")
+    F = None
+    for rec in records:
+        a = np.asarray(rec.get("actions", np.zeros((0, 0))), dtype=float)
+        if a.size:
+            F = a.shape[1]
+            break
+    if F is None:
+        raise ValueError("records: no trajectory has any recorded frame")
+    all_t = np.concatenate([np.round(np.asarray(r.get("time_au", []), dtype=float), time_decimals) for r in records])
+    times = np.unique(all_t)
+    n, T = len(records), times.size
+    e = np.full((n, T, F), np.nan)
+    has_e = any("total_energy_Eh" in r for r in records)
+    has_x = symbols is not None and any("positions_bohr" in r for r in records)
+    E = np.full((n, T), np.nan) if has_e else None
+    N = len(symbols) if symbols is not None else 0
+    X = np.full((n, T, N, 3), np.nan) if has_x else None
+    Pm = np.full((n, T, N, 3), np.nan) if has_x and any("momenta_au" in r for r in records) else None
+    status, reasons, init, idx = [], [], [], []
+    for j, rec in enumerate(records):
+        t = np.round(np.asarray(rec.get("time_au", []), dtype=float), time_decimals)
+        cols = np.searchsorted(times, t)
+        a = np.asarray(rec.get("actions", np.zeros((0, F))), dtype=float).reshape(-1, F)
+        if a.shape[0] != t.size:
+            raise ValueError(f"record {j}: actions has {a.shape[0]} frames but time_au has {t.size}")
+        e[j, cols] = a
+        if E is not None and "total_energy_Eh" in rec:
+            E[j, cols] = np.asarray(rec["total_energy_Eh"], dtype=float)
+        if X is not None and "positions_bohr" in rec:
+            X[j, cols] = np.asarray(rec["positions_bohr"], dtype=float).reshape(t.size, N, 3)
+            if Pm is not None and "momenta_au" in rec:
+                Pm[j, cols] = np.asarray(rec["momenta_au"], dtype=float).reshape(t.size, N, 3)
+        status.append(str(rec.get("status", "finished")))
+        reasons.append(str(rec.get("reason", "") or ""))
+        idx.append(int(rec.get("index", j)))
+        if rec.get("initial_state") is not None:
+            init.append(int(rec["initial_state"]))
+        elif a.shape[0] == 0:
+            init.append(0)
+        elif options.method == "ehrenfest":
+            init.append(int(np.argmax(a[0])))
+        else:
+            w = window_indicators(a[:1], options)[0]
+            if not w.any():
+                raise ValueError(f"record {j}: first frame is in no window; give initial_state")
+            init.append(int(np.argmax(w)))
+    return TrajectorySet(times=times, actions=e, options=options, initial_states=np.array(init), energies=E,
+                         positions=X, momenta=Pm, symbols=None if symbols is None else tuple(symbols),
+                         masses=masses, status=tuple(status), reasons=tuple(reasons), indices=np.array(idx),
+                         metadata=dict(metadata or {}))
 
 
 # ----------------------------------------------------------------------------------------------
