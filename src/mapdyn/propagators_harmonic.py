@@ -134,7 +134,13 @@ class HarmonicBathIntegrator:
         BP = np.vstack([G2T * (S - W / tau), G2T * (W / tau)])
         Mgs = np.vstack([G2T @ (((x - zz / tau) / (m * tau))[:, None] * G2),
                          G2T @ (((-2.0 * x + zz / tau) / (m * tau))[:, None] * G2)])
-        return dict(C=C, Sm=S / m, kS=k * S, MR=MR, MP=MP, Mg0=Mg0, BR=BR, BP=BP, Mgs=Mgs,
+        # H_sys(R̄⁺) = Rn·M_R − Pn·M_P + rs·Mgs + A, rewritten in the start-of-step R, P
+        # (Rn = C R + (S/m) P − rs·B_R, Pn = C P − kS R − rs·B_P):
+        MRp = C[:, None] * MR + (k * S)[:, None] * MP
+        MPp = (S / m)[:, None] * MR - C[:, None] * MP
+        Mgs2 = Mgs - BR @ MR + BP @ MP
+        return dict(C=C, Sm=S / m, kS=k * S, Mg0=Mg0, BR=BR, BP=BP, Mgs2=Mgs2,
+                    MR2=np.hstack([MR, MRp]), MP2=np.hstack([MP, MPp]),
                     A=np.asarray(self.model.constant, dtype=float).reshape(F * F))
 
     def density(self, state: EnsembleState) -> np.ndarray:
@@ -222,7 +228,10 @@ class HarmonicBathIntegrator:
         rho0 = self.density(state)
         tr = np.trace(rho0, axis1=1, axis2=2)
         if self._fast is not None and np.all(np.abs(tr - 1.0) < 1e-12):
-            self._step_averaged_unit_trace(state, rho0)
+            if rho0.shape[1] == 2:
+                self._step_two_state_unit_trace(state, rho0)
+            else:
+                self._step_averaged_unit_trace(state, rho0)
             return
         g0 = model.system_contract_gradient(state.R, rho0)
         Rm = self._mean_position(state.R, state.P, g0, tr, half)
@@ -241,26 +250,100 @@ class HarmonicBathIntegrator:
 
     def _step_averaged_unit_trace(self, state: EnsembleState, rho0: np.ndarray) -> None:
         """Same step as the general averaged path, specialised to Tr ρ = 1 (symmetrized/adjusted/
-        Ehrenfest) with precomputed coefficient matrices (identical algebra, fewer passes)."""
+        Ehrenfest) with precomputed coefficient matrices (identical algebra, fewer passes):
+        H_sys(R̄⁻) and H_sys(R̄⁺) both come from R·[M_R | M_R'] and P·[M_P | M_P'] at the step start."""
         c, half = self._fast, 0.5 * self.dt
         n, F, _ = rho0.shape
+        F2 = F * F
         R, P = state.R, state.P
-        r0 = rho0.reshape(n, F * F)
-        Hm = R @ c["MR"] + P @ c["MP"] - r0 @ c["Mg0"] + c["A"]
+        r0 = rho0.reshape(n, F2)
+        HR = R @ c["MR2"]
+        HP = P @ c["MP2"]
+        Hm = HR[:, :F2] + HP[:, :F2] - r0 @ c["Mg0"] + c["A"]
         z = propagate_amplitudes(state.x + 1j * state.p, Hm.reshape(n, F, F), half)
         state.x, state.p = z.real.copy(), z.imag.copy()
-        rs = np.concatenate([r0, self.density(state).reshape(n, F * F)], axis=1)
-        Rn = R * c["C"]
-        Rn += P * c["Sm"]
-        Rn -= rs @ c["BR"]
-        Pn = P * c["C"]
-        Pn -= R * c["kS"]
-        Pn -= rs @ c["BP"]
-        state.R, state.P = Rn, Pn
-        Hp = Rn @ c["MR"] - Pn @ c["MP"] + rs @ c["Mgs"] + c["A"]
+        rs = np.concatenate([r0, self.density(state).reshape(n, F2)], axis=1)
+        buf = self._buffers(R.shape)
+        np.multiply(R, c["kS"], out=buf[0])
+        R *= c["C"]
+        np.multiply(P, c["Sm"], out=buf[1])
+        R += buf[1]
+        np.matmul(rs, c["BR"], out=buf[1])
+        R -= buf[1]
+        P *= c["C"]
+        P -= buf[0]
+        np.matmul(rs, c["BP"], out=buf[1])
+        P -= buf[1]
+        Hp = HR[:, F2:] + HP[:, F2:] + rs @ c["Mgs2"] + c["A"]
         z = propagate_amplitudes(z, Hp.reshape(n, F, F), half)
         state.x, state.p = z.real.copy(), z.imag.copy()
         state.time += self.dt
+
+    def _two_state_density(self, x0, x1, p0, p1, state):
+        """Flattened ρ (n, 4) = [ρ00, ρ01, ρ10, ρ11] for F = 2 (same definition as mapping.effective_density)."""
+        e0 = 0.5 * (x0 * x0 + p0 * p0)
+        e1 = 0.5 * (x1 * x1 + p1 * p1)
+        off = 0.5 * (x0 * x1 + p0 * p1)
+        if self.options.method == "ehrenfest":
+            g0 = g1 = 0.0
+        elif self.options.zero_point == "symmetrized":
+            g0 = g1 = 0.5 * (e0 + e1 - 1.0)
+        else:  # adjusted (fixed never reaches the Tr ρ = 1 path)
+            g0, g1 = state.gamma_adjusted[:, 0], state.gamma_adjusted[:, 1]
+        return np.stack([e0 - g0, off, off, e1 - g1], axis=1)
+
+    @staticmethod
+    def _two_state_propagate(x0, x1, p0, p1, H, t):
+        """exp(−i H t) on z = x + ip for F = 2 in real arithmetic (same closed form as
+        propagators.propagate_amplitudes); H given as (n, 4) flattened rows [H00, H01, H10, H11]."""
+        a = 0.5 * (H[:, 0] + H[:, 3])
+        b3 = 0.5 * (H[:, 0] - H[:, 3])
+        b1 = 0.5 * (H[:, 1] + H[:, 2])
+        w = np.sqrt(b1 * b1 + b3 * b3)
+        c = np.cos(w * t)
+        s = t * np.sinc(w * t / np.pi)
+        # cos(wt) z − i s B z, B = [[b3, b1], [b1, −b3]]
+        Bx0, Bx1 = b3 * x0 + b1 * x1, b1 * x0 - b3 * x1
+        Bp0, Bp1 = b3 * p0 + b1 * p1, b1 * p0 - b3 * p1
+        X0, X1 = c * x0 + s * Bp0, c * x1 + s * Bp1
+        Y0, Y1 = c * p0 - s * Bx0, c * p1 - s * Bx1
+        ca, sa = np.cos(a * t), np.sin(a * t)
+        return ca * X0 + sa * Y0, ca * X1 + sa * Y1, ca * Y0 - sa * X0, ca * Y1 - sa * X1
+
+    def _step_two_state_unit_trace(self, state: EnsembleState, rho0: np.ndarray) -> None:
+        """:meth:`_step_averaged_unit_trace` for F = 2 with the oscillator algebra in real columns."""
+        c, half = self._fast, 0.5 * self.dt
+        n = rho0.shape[0]
+        R, P = state.R, state.P
+        r0 = rho0.reshape(n, 4)
+        HR = R @ c["MR2"]
+        HP = P @ c["MP2"]
+        Hm = HR[:, :4] + HP[:, :4] - r0 @ c["Mg0"] + c["A"]
+        x0, x1, p0, p1 = self._two_state_propagate(state.x[:, 0], state.x[:, 1], state.p[:, 0], state.p[:, 1],
+                                                   Hm, half)
+        rs = np.concatenate([r0, self._two_state_density(x0, x1, p0, p1, state)], axis=1)
+        buf = self._buffers(R.shape)
+        np.multiply(R, c["kS"], out=buf[0])
+        R *= c["C"]
+        np.multiply(P, c["Sm"], out=buf[1])
+        R += buf[1]
+        np.matmul(rs, c["BR"], out=buf[1])
+        R -= buf[1]
+        P *= c["C"]
+        P -= buf[0]
+        np.matmul(rs, c["BP"], out=buf[1])
+        P -= buf[1]
+        Hp = HR[:, 4:] + HP[:, 4:] + rs @ c["Mgs2"] + c["A"]
+        x0, x1, p0, p1 = self._two_state_propagate(x0, x1, p0, p1, Hp, half)
+        state.x = np.stack([x0, x1], axis=1)
+        state.p = np.stack([p0, p1], axis=1)
+        state.time += self.dt
+
+    def _buffers(self, shape):
+        if getattr(self, "_buf_shape", None) != shape:
+            self._buf = (np.empty(shape), np.empty(shape))
+            self._buf_shape = shape
+        return self._buf
 
 
 def _fourth_integral(omega2, t, W):
