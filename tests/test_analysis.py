@@ -433,3 +433,21 @@ def test_from_trajectories_pads_unequal_lengths():
     assert p.n_frames.tolist() == [2, 2, 2, 1, 1]
     flags = A.flagged_trajectories(ts)
     assert [(f.index, f.status) for f in flags] == [(11, "failed"), (12, "pending")]
+
+
+def test_settings_from_table(tmp_path):
+    r = np.linspace(0.8, 10, 50)
+    np.savetxt(tmp_path / "curve.csv", np.c_[r, 0.17 * (1 - np.exp(-(r - 1.4))) ** 2], delimiter=",")
+    kw = A.settings_from_table({"observables": ["distance 0 1"], "first_entry": [{"state": 0}],
+                                "products": {"apart": [{"distance": [0, 1], "above": 3.0}]},
+                                "fragments": [{"atoms": [0, 1], "potential": {"curve": "curve.csv"}},
+                                              {"atoms": [0, 1], "name": "m", "potential": {"morse": {"D": 0.17, "a": 1.0, "r_e": 1.4}}}],
+                                "n_resamples": 99, "energy_tolerance_hartree": 2e-3}, folder=str(tmp_path),
+                               symbols=("H", "H"))
+    assert kw["n_resamples"] == 99 and kw["energy_tolerance"] == 2e-3 and kw["first_entry"] == [(0, None)]
+    assert "curve file curve.csv" in kw["vibrational"][0].potential.source
+    assert kw["vibrational"][0].name == "H0-H1" and "Morse" in kw["vibrational"][1].potential.source
+    with pytest.raises(ValueError, match="'observable'"):
+        A.settings_from_table({"observable": []})
+    with pytest.raises(ValueError, match="needs the study's backend"):
+        A.settings_from_table({"fragments": [{"atoms": [0, 1], "potential": {"scan": {}}}]}, symbols=("H", "H"))
