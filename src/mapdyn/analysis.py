@@ -508,12 +508,16 @@ def resampled_initial_population(tset: TrajectorySet, n_resamples: int = 100, se
 # ----------------------------------------------------------------------------------------------
 # lifetimes
 # ----------------------------------------------------------------------------------------------
+#: Minimum fraction of time points at which an adequate fit lies inside the population's band.
+MIN_INSIDE_BAND = 0.9
+
 LIFETIME_RULE = (
     "A lifetime is reported only if (1) the initial-state population fell by at least "
     "max(0.05, 3 standard errors) between the first and the last time point; (2) the weighted "
     "least-squares fit converged with a finite covariance; (3) every time constant has relative "
     "uncertainty ≤ 50 % and lies below 3× the fitted time window; for the bi-exponential also "
-    "(4) both amplitudes lie in [0.05, 0.95] and τ2/τ1 ≥ 2.  The bi-exponential is preferred only "
+    "(4) both amplitudes lie in [0.05, 0.95] and τ2/τ1 ≥ 2; when a confidence band is available, (5) the "
+    "fitted curve lies inside the band (widened by σ/4) at ≥ 90 % of the time points.  The bi-exponential is preferred only "
     "if its AIC is lower than the single exponential's by more than 2."
 )
 
@@ -710,7 +714,8 @@ def _fit_one(model: str, t: np.ndarray, y: np.ndarray, s: np.ndarray, P0: float,
 def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.ndarray | None = None, *,
                   delay: bool = True, asymptote: bool = True, models: Sequence[str] = ("mono", "bi"),
                   sigma_floor: float | None = None, t_max: float | None = None,
-                  resampled_populations: np.ndarray | None = None) -> LifetimeResult:
+                  resampled_populations: np.ndarray | None = None,
+                  band: tuple[np.ndarray, np.ndarray] | None = None) -> LifetimeResult:
     """Fit the initial-state population with single/bi-exponentials (scipy.optimize.curve_fit).
 
     times (T,) a.u.; population (T,); standard_error (T,) 1σ per point (e.g. the bootstrap SE),
@@ -737,6 +742,9 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
     if t_max is not None:
         keep &= t <= float(t_max)
     t, y, s = t[keep], y[keep], s[keep]
+    if band is not None:
+        b_lo = np.asarray(band[0], dtype=float)[keep]
+        b_hi = np.asarray(band[1], dtype=float)[keep]
     rs = None
     if resampled_populations is not None:
         rs = np.asarray(resampled_populations, dtype=float)
@@ -755,7 +763,18 @@ def fit_lifetimes(times: np.ndarray, population: np.ndarray, standard_error: np.
     if drop < needed:
         reasons.append(f"population fell by {drop:.3g} < {needed:.3g} (no measurable decay in the window)")
     for m in models:
-        fits[m] = _fit_one(m, t, y, s, P0, delay, asymptote, rs)
+        fit = _fit_one(m, t, y, s, P0, delay, asymptote, rs)
+        if band is not None and fit.diagnostics.get("converged"):
+            # adequacy: the fitted curve must run inside the pointwise confidence band (small slack
+            # of 1e-9 for points where the band collapses onto the estimate)
+            inside = (fit.curve >= b_lo - 1e-9 - 0.25 * s) & (fit.curve <= b_hi + 1e-9 + 0.25 * s)
+            frac = float(np.mean(inside[np.isfinite(b_lo) & np.isfinite(b_hi)]))
+            fit.diagnostics["inside_band_fraction"] = frac
+            if frac < MIN_INSIDE_BAND:
+                fit.reasons.append(f"fit runs outside the confidence band at {100 * (1 - frac):.0f} % of the points "
+                                   f"(> {100 * (1 - MIN_INSIDE_BAND):.0f} %: model does not describe the curve)")
+                fit.supported = False
+        fits[m] = fit
     preferred = None
     if not reasons:
         mono, bi = fits.get("mono"), fits.get("bi")
@@ -1178,6 +1197,7 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     life = fit_lifetimes(init.times, init.populations[:, 0], init.standard_error[:, 0],
                          delay=lifetime_delay, asymptote=lifetime_asymptote,
                          sigma_floor=max(0.01, 1.0 / max(tset.ntraj, 1)),
+                         band=(init.low[:, 0], init.high[:, 0]),
                          resampled_populations=(resampled_initial_population(tset, lifetime_resamples, seed)
                                                 if lifetime_resamples else None))
     obs = [observable_series(tset, o) for o in observables] if tset.positions is not None else []
