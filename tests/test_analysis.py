@@ -451,3 +451,17 @@ def test_settings_from_table(tmp_path):
         A.settings_from_table({"observable": []})
     with pytest.raises(ValueError, match="needs the study's backend"):
         A.settings_from_table({"fragments": [{"atoms": [0, 1], "potential": {"scan": {}}}]}, symbols=("H", "H"))
+
+
+def test_no_lifetime_when_exponential_does_not_describe_the_curve():
+    """A Gaussian-shaped decay with a tight band: neither exponential stays inside the band."""
+    t = np.linspace(0.0, 1000.0, 101)
+    y = 0.3 + 0.7 * np.exp(-(t / 300.0) ** 2)
+    se = np.full(t.size, 0.005)
+    res = A.fit_lifetimes(t, y, se, delay=False, band=(y - 2 * se, y + 2 * se))
+    assert res.lifetime is None
+    assert any("outside the confidence band" in r for r in res.fits["mono"].reasons)
+    # the same curve shape from a true exponential is accepted
+    y2 = 0.3 + 0.7 * np.exp(-t / 300.0)
+    res2 = A.fit_lifetimes(t, y2, se, delay=False, band=(y2 - 2 * se, y2 + 2 * se))
+    assert res2.preferred == "mono" and res2.fits["mono"].diagnostics["inside_band_fraction"] == 1.0
