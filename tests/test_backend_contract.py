@@ -122,6 +122,13 @@ def test_coordinate_map_and_masses():
     assert np.all(r.gradients[:, 0, 2] == 0) and np.all(r.gradients[:, 1] == 0)
     np.testing.assert_array_equal(backend.atom_masses(), [1500.0, 1500.0])
     np.testing.assert_array_equal(backend.positions_from_model([0.4, -0.3])[0, :2], [0.4, -0.3])
+    atoms = backend.make_atoms([0.4, -0.3], [12.0, -3.0])
+    from mapdyn.dynamics import MappingDynamics
+
+    dyn = MappingDynamics(atoms, backend, 1.0, 0, mapping_variables=(np.ones(3), np.zeros(3)))
+    np.testing.assert_allclose(dyn.state.positions[0, :2], [0.4, -0.3], rtol=1e-14)
+    np.testing.assert_allclose(dyn.state.momenta[0, :2], [12.0, -3.0], rtol=1e-14)
+    np.testing.assert_allclose(dyn.masses_au, [1500.0, 1500.0], rtol=1e-14)
     with pytest.raises(ValueError, match="positions_bohr"):
         backend.compute(np.zeros((1, 3)))
     with pytest.raises(ValueError, match="natoms"):

@@ -116,6 +116,22 @@ class ModelAdapterBackend:
                 out[a] = block[0]
         return out
 
+    def make_atoms(self, R: np.ndarray, P: np.ndarray | None = None, symbol: str = "H"):
+        """An ase.Atoms for the driver holding model positions R (D,) in Bohr and momenta P (D,) in a.u.
+
+        Masses from :meth:`atom_masses` (converted to amu), positions to Å and momenta to ASE units
+        with ``ase.units``; coordinates outside the model are zero.
+        """
+        from ase import Atoms, units
+
+        amu = units._amu / units._me
+        atoms = Atoms(symbol * self.natoms if len(symbol) == 1 else [symbol] * self.natoms,
+                      positions=self.positions_from_model(R) * units.Bohr,
+                      masses=self.atom_masses() / amu)
+        if P is not None:
+            atoms.set_momenta(self.positions_from_model(P) / (amu * units.AUT / units.Bohr))
+        return atoms
+
     # ------------------------------------------------------------------ contract
     def _raw_signs(self, positions_bohr: np.ndarray) -> np.ndarray:
         digest = hashlib.sha256(np.ascontiguousarray(positions_bohr, dtype=float).tobytes()
