@@ -157,6 +157,45 @@ class SpinBoson(LinearVibronicModel):
         """ΔG = −2ε (Eh): minimum of H_22 minus minimum of H_11 (electron transfer 1 → 2)."""
         return -2.0 * self.epsilon
 
+    def marcus_rate(self, beta: float) -> float:
+        """Classical nonadiabatic (Marcus) rate of transfer 1 → 2 in 1/a.u. of time, ħ = 1:
+
+            k = 2π Δ² (4π λ_M k_BT)^(−1/2) exp[−(ΔG + λ_M)²/(4 λ_M k_BT)]
+
+        with |V| = Δ (H_12), λ_M = Σ 2c²/ω², ΔG = −2ε (R. A. Marcus, J. Chem. Phys. 24, 966 (1956);
+        golden-rule prefactor as in VALIDATION.md).  beta = 1/k_BT in 1/Eh.
+        """
+        beta = _positive("beta", beta)
+        lam = self.marcus_reorganization
+        return float(2.0 * np.pi * self.delta ** 2 / np.sqrt(4.0 * np.pi * lam / beta)
+                     * np.exp(-beta * (self.driving_force + lam) ** 2 / (4.0 * lam)))
+
+    def golden_rule_rate(self, beta: float, npoints: int = 2001) -> float:
+        """Fermi golden-rule rate 1 → 2 (1/a.u.) for this discretised bath, quantum (ħ = 1):
+
+            k = 2 Δ² Re ∫_0^∞ dt exp{ i 2ε t − Σ_j S_j [coth(βω_j/2)(1 − cos ω_j t) + i sin ω_j t] },
+            S_j = 2 c_j²/ω_j³  (Huang–Rhys factors of the displacement 2c_j/ω_j² between the diabats)
+
+        (displaced-oscillator line shape: Kubo & Toyozawa, Prog. Theor. Phys. 13, 160 (1955), from
+        memory; re-derived for this Hamiltonian).  Its short-time (classical, βω → 0) limit is
+        :meth:`marcus_rate`.  The integrand is sampled on ``npoints`` points up to the time where the
+        Gaussian envelope exp(−t² Σ S_j ω_j² coth/2) has fallen below 1e-16 (trapezoid rule; 1001
+        points already agree with 20001 to 1e-9 for the study's baths); the integrand must have
+        decayed before the bath's recurrence time, which holds for λ_M k_BT ≫ (ω_c/N)².
+        """
+        beta = _positive("beta", beta)
+        w, c = self.frequencies, self.bath_couplings
+        S = 2.0 * c * c / w ** 3
+        coth = 1.0 / np.tanh(0.5 * beta * w)
+        curvature = np.sum(S * coth * w * w)  # exponent ≈ −curvature t²/2 at short times
+        t_end = np.sqrt(2.0 * 37.0 / curvature)
+        t = np.linspace(0.0, t_end, int(npoints))
+        wt = np.outer(t, w)
+        phase = 2.0 * self.epsilon * t - np.sin(wt) @ S
+        decay = (1.0 - np.cos(wt)) @ (S * coth)
+        f = np.exp(-decay) * np.cos(phase)
+        return float(2.0 * self.delta ** 2 * np.trapezoid(f, t))
+
 
 class ExcitonTransferModel(LinearVibronicModel):
     """Excitation transfer between F sites, one independent harmonic bath per site:
