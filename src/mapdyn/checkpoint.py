@@ -1,0 +1,360 @@
+"""Checkpoint files: atomic HDF5 writes with integrity checks, per-trajectory restart state and
+write-once frame chunks (DESIGN.md §6).
+
+File rules
+----------
+* Every file is written atomically: ``<name>.tmp`` is written and closed, fsync'ed, then
+  ``os.replace``'d onto ``<name>`` and the directory fsync'ed.  A reader therefore sees either the
+  old or the new file, never a half-written one — unless the disk itself damages it.
+* Every dataset carries a SHA-256 digest of its bytes (attribute ``sha256``) and, when it is a
+  non-empty array, HDF5's fletcher32 checksum filter.  Metadata is one JSON string (attribute
+  ``meta``) with its own digest.  :func:`read_h5` verifies all of them; any mismatch, truncation
+  or unreadable file raises :class:`CheckpointError` naming the file.
+
+Trajectory folder (``trajectories/traj_000042/``)
+-------------------------------------------------
+* ``state.h5`` — the complete :class:`mapdyn.dynamics.DriverState` as pickle bytes (numpy arrays
+  pickle bit-for-bit; the backend ``guess`` travels inside it), plus readable copies of step,
+  time, positions, momenta and mapping variables, and ``meta`` with ``chunks`` = the number of
+  frame chunks it covers (it covers chunks 0 … chunks−1) and their digests.
+* ``state_previous.h5`` — the state before the last one (one older generation), the fallback.
+* ``frames_0000.h5``, ``frames_0001.h5``, … — chunk c holds the frames recorded since the state
+  before it was written (chunk 0 starts with the frame at step 0).  A chunk is written once, before
+  the state that covers it; a chunk with an index ≥ the state's ``chunks`` (written just before a
+  crash) is ignored on resume and replaced when the trajectory continues.  So I/O per checkpoint
+  is one small state plus K frames, linear in trajectory length.
+
+Resume rule (:meth:`TrajectoryStore.restart_point`): use the newest state file that reads back
+intact and whose covered chunks all read back intact with the digests it recorded; otherwise the
+previous generation; otherwise start from scratch.  Every problem found is reported.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import os
+import pickle
+from typing import Any, Callable, Mapping, Sequence
+
+import h5py
+import numpy as np
+
+__all__ = ["CheckpointError", "atomic_write", "write_h5", "read_h5", "file_digest", "fsync_directory",
+           "frames_to_arrays", "TrajectoryStore", "RestartPoint", "STATE_FILE", "PREVIOUS_STATE_FILE",
+           "FORMAT_VERSION"]
+
+FORMAT_VERSION = 1
+STATE_FILE = "state.h5"
+PREVIOUS_STATE_FILE = "state_previous.h5"
+
+
+class CheckpointError(RuntimeError):
+    """A checkpoint file is missing, truncated or corrupted; ``path`` names it."""
+
+    def __init__(self, path: str, reason: str):
+        self.path, self.reason = os.fspath(path), reason
+        super().__init__(f"{os.fspath(path)}: {reason}")
+
+
+def fsync_directory(path: str) -> None:
+    """fsync a directory so a rename inside it survives a power cut (POSIX; no-op elsewhere)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> str:
+    """Call ``write(tmp_path)``, fsync the temporary file, ``os.replace`` it onto ``path``."""
+    path = os.fspath(path)
+    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process: two writers never share a temporary
+    try:
+        write(tmp)
+        fd = os.open(tmp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    fsync_directory(os.path.dirname(os.path.abspath(path)))
+    return path
+
+
+def _digest(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
+def _array_bytes(arr: np.ndarray) -> bytes:
+    return np.ascontiguousarray(arr).tobytes()
+
+
+def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[str, Any] | None = None) -> str:
+    """Write ``arrays`` (name → ndarray or bytes) and JSON ``meta`` atomically to ``path``.
+
+    bytes become uint8 datasets (attribute ``kind = "bytes"``).  Each dataset gets a SHA-256
+    attribute; non-empty arrays are chunked with the fletcher32 filter.
+    """
+    meta_text = json.dumps(dict(meta or {}), sort_keys=True, allow_nan=True)
+
+    def write(tmp: str) -> None:
+        with h5py.File(tmp, "w") as h5:
+            h5.attrs["meta"] = meta_text
+            h5.attrs["meta_sha256"] = _digest(meta_text.encode())
+            h5.attrs["format_version"] = FORMAT_VERSION
+            for name, value in arrays.items():
+                kind = "array"
+                if isinstance(value, (bytes, bytearray)):
+                    arr = np.frombuffer(bytes(value), dtype=np.uint8)
+                    kind = "bytes"
+                else:
+                    arr = np.asarray(value)
+                    if arr.dtype == object:
+                        raise ValueError(f"array {name!r} has dtype object; store it as bytes")
+                if arr.ndim >= 1 and arr.size > 0:
+                    ds = h5.create_dataset(name, data=arr, chunks=arr.shape, fletcher32=True)
+                else:
+                    ds = h5.create_dataset(name, data=arr)
+                ds.attrs["sha256"] = _digest(_array_bytes(arr))
+                ds.attrs["kind"] = kind
+            h5.flush()
+
+    return atomic_write(path, write)
+
+
+def read_h5(path: str | os.PathLike, names: Sequence[str] | None = None) -> tuple[dict, dict]:
+    """Read datasets (all, or ``names``) and meta from ``path``, verifying every checksum.
+
+    Returns (arrays, meta); bytes datasets come back as ``bytes``.  Raises :class:`CheckpointError`.
+    """
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise CheckpointError(path, "missing")
+    try:
+        with h5py.File(path, "r") as h5:
+            text = h5.attrs["meta"]
+            text = text.decode() if isinstance(text, bytes) else str(text)
+            if _digest(text.encode()) != h5.attrs["meta_sha256"]:
+                raise CheckpointError(path, "metadata checksum mismatch")
+            meta = json.loads(text)
+            out = {}
+            for name in (names if names is not None else list(h5.keys())):
+                if name not in h5:
+                    raise CheckpointError(path, f"dataset {name!r} missing")
+                ds = h5[name]
+                arr = ds[()]
+                arr = np.asarray(arr)
+                if _digest(_array_bytes(arr)) != ds.attrs["sha256"]:
+                    raise CheckpointError(path, f"dataset {name!r} checksum mismatch")
+                out[name] = arr.tobytes() if ds.attrs.get("kind") == "bytes" else arr
+    except CheckpointError:
+        raise
+    except Exception as err:  # truncated/corrupted HDF5 raises OSError, KeyError, ValueError, ...
+        first = str(err).splitlines()[0] if str(err) else ""
+        raise CheckpointError(path, f"unreadable ({type(err).__name__}{': ' + first if first else ''})") from None
+    return out, meta
+
+
+def file_digest(path: str | os.PathLike) -> str:
+    """SHA-256 of a whole file's bytes."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+# ----------------------------------------------------------------------------------------------
+# frames
+# ----------------------------------------------------------------------------------------------
+_FRAME_SCALARS = {"step": np.int64, "time_au": float, "window": np.int64, "kinetic_energy_Eh": float,
+                  "potential_energy_Eh": float, "total_energy_Eh": float, "drift_Eh": float, "swap": bool}
+_FRAME_ARRAYS = ("positions_bohr", "momenta_au", "energies_Eh", "actions", "populations",
+                 "coupling_norms", "sigma", "permutation")
+
+
+def frames_to_arrays(frames: Sequence[Mapping[str, Any]]) -> dict[str, np.ndarray]:
+    """Stack driver frames (:attr:`MappingDynamics.frames`) into arrays with a leading frame axis.
+
+    Fields that are None in every frame are left out; ``min_overlap`` None → NaN.
+    """
+    out: dict[str, np.ndarray] = {}
+    if not frames:
+        return out
+    for k, dtype in _FRAME_SCALARS.items():
+        out[k] = np.array([f[k] for f in frames], dtype=dtype)
+    out["min_overlap"] = np.array([np.nan if f.get("min_overlap") is None else f["min_overlap"] for f in frames], dtype=float)
+    for k in _FRAME_ARRAYS:
+        vals = [f.get(k) for f in frames]
+        if all(v is None for v in vals):
+            continue
+        template = np.asarray(next(v for v in vals if v is not None))
+        fill = np.full(template.shape, -1 if k == "permutation" else np.nan)
+        out[k] = np.array([fill if v is None else np.asarray(v) for v in vals])
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# per-trajectory store
+# ----------------------------------------------------------------------------------------------
+@dataclasses.dataclass
+class RestartPoint:
+    """Where a trajectory continues: ``state`` (a DriverState, or None = start from scratch),
+    ``chunks`` covered, the state's ``meta``, and the ``problems`` found on the way (messages)."""
+
+    state: Any
+    chunks: int
+    meta: dict
+    problems: list
+    source: str | None = None
+
+
+class TrajectoryStore:
+    """The checkpoint files of one trajectory in ``folder`` (see the module docstring)."""
+
+    def __init__(self, folder: str | os.PathLike):
+        self.folder = os.fspath(folder)
+
+    def chunk_path(self, index: int) -> str:
+        return os.path.join(self.folder, f"frames_{index:04d}.h5")
+
+    @property
+    def state_path(self) -> str:
+        return os.path.join(self.folder, STATE_FILE)
+
+    @property
+    def previous_state_path(self) -> str:
+        return os.path.join(self.folder, PREVIOUS_STATE_FILE)
+
+    # ------------------------------------------------------------------ writing
+    def commit(self, state: Any, frames: Sequence[Mapping[str, Any]], chunks_before: int, meta: Mapping[str, Any],
+               chunk_digests: Sequence[str]) -> tuple[int, list[str]]:
+        """Write chunk ``chunks_before`` with ``frames`` and then the state covering it.
+
+        ``chunk_digests`` are the file digests of chunks 0 … chunks_before−1 (from the previous
+        commit).  Returns (chunks covered now, digests).  The old state becomes the previous
+        generation.
+        """
+        os.makedirs(self.folder, exist_ok=True)
+        cpath = self.chunk_path(chunks_before)
+        arrays = frames_to_arrays(frames)
+        steps = arrays.get("step", np.zeros(0, dtype=np.int64))
+        write_h5(cpath, arrays, {"chunk": chunks_before, "nframes": int(len(frames)),
+                                 "first_step": int(steps[0]) if len(steps) else None,
+                                 "last_step": int(steps[-1]) if len(steps) else None})
+        digests = list(chunk_digests) + [file_digest(cpath)]
+        payload = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
+        full_meta = dict(meta)
+        full_meta.update({"chunks": chunks_before + 1, "chunk_sha256": digests, "step": int(state.step),
+                          "time_au": float(state.time), "stopped": bool(state.stopped),
+                          "stop_reason": state.stop_reason, "drift_flag": _jsonable(state.drift_flag)})
+        arrays = {"driver_state": payload, "step": np.int64(state.step), "time_au": np.float64(state.time),
+                  "positions_bohr": state.positions, "momenta_au": state.momenta, "x": state.x, "p": state.p}
+        if os.path.exists(self.state_path):
+            os.replace(self.state_path, self.previous_state_path)
+        write_h5(self.state_path, arrays, full_meta)
+        return chunks_before + 1, digests
+
+    # ------------------------------------------------------------------ reading
+    def _load_state(self, path: str) -> tuple[Any, dict]:
+        arrays, meta = read_h5(path, ["driver_state"])
+        try:
+            state = pickle.loads(arrays["driver_state"])
+        except Exception as err:
+            raise CheckpointError(path, f"restart state does not unpickle ({type(err).__name__})") from None
+        return state, meta
+
+    def _check_chunks(self, meta: dict, path: str) -> None:
+        n = int(meta.get("chunks", 0))
+        digests = meta.get("chunk_sha256", [])
+        for c in range(n):
+            cp = self.chunk_path(c)
+            if not os.path.exists(cp):
+                raise CheckpointError(cp, f"frame chunk {c} named by {os.path.basename(path)} is missing")
+            if c < len(digests) and file_digest(cp) != digests[c]:
+                raise CheckpointError(cp, f"frame chunk {c} differs from the digest recorded in {os.path.basename(path)}")
+            read_h5(cp)
+
+    def read_meta(self) -> dict | None:
+        """Meta of the current state file (cheap, no chunk checks), or None if absent/unreadable."""
+        try:
+            _, meta = read_h5(self.state_path, [])
+            return meta
+        except CheckpointError:
+            return None
+
+    def restart_point(self) -> RestartPoint:
+        """The newest intact state whose chunks are intact (see the module docstring)."""
+        problems: list[str] = []
+        for path in (self.state_path, self.previous_state_path):
+            if not os.path.exists(path):
+                continue
+            try:
+                state, meta = self._load_state(path)
+                self._check_chunks(meta, path)
+                return RestartPoint(state, int(meta["chunks"]), meta, problems, path)
+            except CheckpointError as err:
+                problems.append(str(err))
+        return RestartPoint(None, 0, {}, problems, None)
+
+    def read_frames(self, chunks: int | None = None) -> dict[str, np.ndarray]:
+        """Frames of chunks 0 … chunks−1 (default: those covered by the usable state), concatenated."""
+        if chunks is None:
+            chunks = self.restart_point().chunks
+        parts = [read_h5(self.chunk_path(c))[0] for c in range(chunks)]
+        parts = [p for p in parts if p]
+        if not parts:
+            return {}
+        keys = [k for k in parts[0] if all(k in p for p in parts)]
+        return {k: np.concatenate([p[k] for p in parts]) for k in keys}
+
+    def adopt(self, point: RestartPoint) -> None:
+        """Make the files agree with ``point`` before continuing: the state used becomes
+        ``state.h5`` (a damaged newer one is dropped), uncovered chunks are deleted."""
+        if point.state is None:
+            for path in (self.state_path, self.previous_state_path):
+                if os.path.exists(path):
+                    os.unlink(path)
+        elif point.source == self.previous_state_path:
+            os.replace(self.previous_state_path, self.state_path)
+        self.discard_after(point.chunks)
+
+    def discard_after(self, chunks: int) -> None:
+        """Delete chunk files with index >= ``chunks`` (not covered by the state in use)."""
+        if not os.path.isdir(self.folder):
+            return
+        for name in os.listdir(self.folder):
+            if name.startswith("frames_") and name.endswith(".h5"):
+                try:
+                    idx = int(name[7:-3])
+                except ValueError:
+                    continue
+                if idx >= chunks:
+                    os.unlink(os.path.join(self.folder, name))
+
+
+def _jsonable(value: Any) -> Any:
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    return repr(value)

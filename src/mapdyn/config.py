@@ -1,0 +1,767 @@
+"""Study input: one TOML file → validated, frozen dataclasses (:class:`StudyConfig`).
+
+Everything is checked before any computation or file is written.  Bad input raises
+:class:`ConfigError` (a ``ValueError``) whose message is one line naming the offending key and
+what is allowed, e.g.::
+
+    dynamics.time_step = "-0.5 fs": must be a positive duration, e.g. "0.5 fs"
+    ensemble.trajectorys is not a known key (did you mean 'trajectories'?); allowed: ...
+
+The command line turns it into exit code 2.
+
+Units.  Durations are strings with a unit: ``"0.5 fs"``, ``"500 as"``, ``"0.1 ps"``, ``"20 au"``
+(atomic units of time, ħ/Eh ≈ 0.02419 fs); energies likewise ``"1e-3 Eh"`` or ``"0.03 eV"``.
+Inline atom positions are in Å (``molecule.units = "bohr"`` switches to Bohr).  Model initial
+conditions carry their unit in the key name (``position_bohr``, ``momentum_au``, ``width_bohr``).
+Internally (the dataclass fields) everything is Hartree atomic units; conversions use
+:mod:`ase.units`.
+
+Sections and keys (names are our own; see ``mapdyn run --help`` and the files in ``inputs/``)::
+
+    [study]      name, description, folder
+    [molecule]   geometry | atoms, units, charge, spin            (not for backend = "model")
+    [electronic] backend = "casscf" | "tddft" | "model" | "callback", states, and per backend:
+                 casscf:   basis, active_orbitals, active_electrons, density_fitting,
+                           coupling_form, spin_purity
+                 tddft:    basis, functional, response, grid_level
+                 model:    model, parameters, engine
+                 callback: function
+    [initial]    molecules: optimize, normal_modes_from, temperature_kelvin, excitation, state
+                 models:    position_bohr, momentum_au, width_bohr, state, basis
+    [method]     method, window, zero_point, gamma                 (:class:`MethodOptions`)
+    [dynamics]   time_step, duration, checkpoint_every, record_every, drift_threshold,
+                 stop_on_drift, substeps, propagation
+    [ensemble]   trajectories, seed, workers, batch
+    [analysis]   passed to :func:`mapdyn.analysis.settings_from_table` (keys checked here)
+    [cluster]    passed to :func:`mapdyn.cluster.cluster_settings`
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import hashlib
+import importlib
+import importlib.util
+import math
+import os
+import re
+import tomllib
+from typing import Any, Mapping
+
+import numpy as np
+
+from .options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+
+__all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "InitialConfig",
+           "DynamicsConfig", "EnsembleConfig", "load_study", "parse_study", "parse_duration",
+           "parse_energy", "BACKENDS", "SECTIONS", "MODEL_NAMES", "MIN_ATOM_DISTANCE_ANGSTROM"]
+
+#: Backends a study can name.
+BACKENDS = ("casscf", "tddft", "model", "callback")
+#: Model names for backend = "model" (mapdyn.models.tully).
+MODEL_NAMES = ("tully1", "tully2", "tully3", "wide_crossing")
+#: Two atoms closer than this (Å) are refused as overlapping (no bond is shorter than ~0.5 Å;
+#: H2 is 0.74 Å — common knowledge).
+MIN_ATOM_DISTANCE_ANGSTROM = 0.3
+
+_AU_TIME_FS = None  # filled lazily from ase.units
+
+
+def _units():
+    from ase import units
+
+    return units
+
+
+_TIME_UNITS_FS = {"fs": 1.0, "as": 1e-3, "ps": 1e3}
+_ENERGY_UNITS = ("eh", "hartree", "ev")
+
+
+class ConfigError(ValueError):
+    """Invalid study input; ``key`` is the dotted key at fault (or the file), the message one line."""
+
+    def __init__(self, key: str, message: str):
+        self.key = key
+        super().__init__(f"{key}{message if message.startswith((' ', ':')) else ': ' + message}")
+
+
+def _did_you_mean(word: str, allowed) -> str:
+    hint = difflib.get_close_matches(word, list(allowed), n=1, cutoff=0.6)
+    return f" (did you mean '{hint[0]}'?)" if hint else ""
+
+
+def _show(value: Any) -> str:
+    text = repr(value) if not isinstance(value, str) else f'"{value}"'
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def parse_duration(text: Any, key: str = "duration") -> float:
+    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time."""
+    if isinstance(text, bool) or not isinstance(text, str):
+        raise ConfigError(key, f"= {_show(text)}: give a duration with a unit as a string, e.g. \"0.5 fs\" or \"20 au\"")
+    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*([A-Za-z.]+)\s*", text)
+    if not m:
+        raise ConfigError(key, f"= {_show(text)}: cannot read a duration; write a number and a unit (fs, as, ps, au), e.g. \"0.5 fs\"")
+    try:
+        value = float(m.group(1))
+    except ValueError:
+        raise ConfigError(key, f"= {_show(text)}: {m.group(1)!r} is not a number") from None
+    unit = m.group(2).lower().replace(".", "")
+    if unit in _TIME_UNITS_FS:
+        au = value * _TIME_UNITS_FS[unit] * _units().fs / _units().AUT if math.isfinite(value) else value
+    elif unit in ("au", "aut"):
+        au = value
+    else:
+        raise ConfigError(key, f"= {_show(text)}: unknown time unit {m.group(2)!r}; use fs, as, ps or au{_did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
+    if not math.isfinite(au) or au <= 0:
+        raise ConfigError(key, f"= {_show(text)}: must be a positive duration, e.g. \"0.5 fs\"")
+    return float(au)
+
+
+def parse_energy(text: Any, key: str) -> float:
+    """An energy string ("1e-3 Eh", "0.03 eV") → Eh (positive)."""
+    if isinstance(text, bool) or not isinstance(text, str):
+        raise ConfigError(key, f"= {_show(text)}: give an energy with a unit as a string, e.g. \"1e-3 Eh\" or \"0.03 eV\"")
+    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*([A-Za-z]+)\s*", text)
+    if not m:
+        raise ConfigError(key, f"= {_show(text)}: cannot read an energy; write a number and a unit (Eh, eV), e.g. \"1e-3 Eh\"")
+    try:
+        value = float(m.group(1))
+    except ValueError:
+        raise ConfigError(key, f"= {_show(text)}: {m.group(1)!r} is not a number") from None
+    unit = m.group(2).lower()
+    if unit not in _ENERGY_UNITS:
+        raise ConfigError(key, f"= {_show(text)}: unknown energy unit {m.group(2)!r}; use Eh or eV")
+    eh = value / _units().Hartree if unit == "ev" else value
+    if not math.isfinite(eh) or eh <= 0:
+        raise ConfigError(key, f"= {_show(text)}: must be a positive energy, e.g. \"1e-3 Eh\"")
+    return float(eh)
+
+
+class _Section:
+    """Reads keys of one TOML table, remembering which were used; ``finish`` refuses the rest."""
+
+    def __init__(self, name: str, table: Any, allowed: tuple[str, ...], elsewhere: Mapping[str, str] | None = None):
+        if not isinstance(table, Mapping):
+            raise ConfigError(name, f"must be a table ([{name}]), got {_show(table)}")
+        self.name, self.table, self.allowed = name, dict(table), allowed
+        self.elsewhere = dict(elsewhere or {})
+        for key in self.table:
+            if key not in allowed:
+                if key in self.elsewhere:
+                    raise ConfigError(f"{name}.{key}", f"is not used {self.elsewhere[key]}")
+                raise ConfigError(f"{name}.{key}", f" is not a known key{_did_you_mean(key, allowed)}; allowed: {', '.join(allowed)}")
+
+    def key(self, k: str) -> str:
+        return f"{self.name}.{k}"
+
+    def has(self, k: str) -> bool:
+        return k in self.table
+
+    def raw(self, k: str, default: Any = None) -> Any:
+        return self.table.get(k, default)
+
+    def required(self, k: str, what: str) -> Any:
+        if k not in self.table:
+            raise ConfigError(self.key(k), f"is missing; give {what}")
+        return self.table[k]
+
+    def string(self, k: str, default: str | None = None, required: bool = False, what: str = "a string") -> str | None:
+        if required:
+            v = self.required(k, what)
+        else:
+            v = self.table.get(k, default)
+        if v is not None and (not isinstance(v, str) or not v.strip()):
+            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
+        return v
+
+    def choice(self, k: str, allowed, default: str | None = None, required: bool = False) -> str | None:
+        v = self.required(k, "one of " + ", ".join(allowed)) if required else self.table.get(k, default)
+        if v is None:
+            return None
+        if not isinstance(v, str) or v not in allowed:
+            raise ConfigError(self.key(k), f"= {_show(v)}: choose one of {', '.join(allowed)}{_did_you_mean(str(v), allowed)}")
+        return v
+
+    def integer(self, k: str, default: int | None = None, minimum: int | None = None, required: bool = False,
+                what: str = "an integer") -> int | None:
+        v = self.required(k, what) if required else self.table.get(k, default)
+        if v is None:
+            return None
+        if isinstance(v, bool) or not isinstance(v, int):
+            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
+        if minimum is not None and v < minimum:
+            raise ConfigError(self.key(k), f"= {v}: must be {what} (>= {minimum})")
+        return int(v)
+
+    def number(self, k: str, default: float | None = None, required: bool = False, what: str = "a number") -> float | None:
+        v = self.required(k, what) if required else self.table.get(k, default)
+        if v is None:
+            return None
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
+        return float(v)
+
+    def boolean(self, k: str, default: bool) -> bool:
+        v = self.table.get(k, default)
+        if not isinstance(v, bool):
+            raise ConfigError(self.key(k), f"= {_show(v)}: must be true or false")
+        return v
+
+
+# ----------------------------------------------------------------------------------------------
+# dataclasses
+# ----------------------------------------------------------------------------------------------
+@dataclasses.dataclass(frozen=True)
+class MoleculeConfig:
+    """symbols (N,), positions_bohr (N, 3) Bohr, charge (e), spin = 2S, source (file or "inline")."""
+
+    symbols: tuple[str, ...]
+    positions_bohr: np.ndarray
+    charge: int
+    spin: int
+    source: str
+
+    @property
+    def natoms(self) -> int:
+        return len(self.symbols)
+
+
+@dataclasses.dataclass(frozen=True)
+class ElectronicConfig:
+    """Backend name, number of states F (including the ground state) and backend options.
+
+    options : keyword arguments of the backend class (already translated to its names).
+    model, model_parameters, engine : backend = "model" only ("batched" | "on_the_fly").
+    function : backend = "callback" only ("file.py:name" or "package.module:name").
+    """
+
+    backend: str
+    states: int
+    basis: str | None = None
+    options: dict = dataclasses.field(default_factory=dict)
+    model: str | None = None
+    model_parameters: dict = dataclasses.field(default_factory=dict)
+    engine: str = "batched"
+    function: str | None = None
+    level_of_theory: str = ""
+
+
+@dataclasses.dataclass(frozen=True)
+class InitialConfig:
+    """Initial conditions.
+
+    Molecules: optimize (bool), normal_modes_from ("scf" RHF/RKS in the same basis with an
+    analytic Hessian | "dynamics": the dynamics backend's ground state with a finite-difference
+    Hessian), temperature_kelvin (K), excitation ("fixed" | "brightest"), state (adiabatic index,
+    0 = ground state; "fixed" only).
+    Models: position_bohr, momentum_au, width_bohr (Gaussian wavepacket centre, mean momentum,
+    position width σ_R; σ_P = 1/(2σ_R)), state, basis ("adiabatic" | "diabatic").
+    """
+
+    state: int | None = None
+    optimize: bool = True
+    normal_modes_from: str = "scf"
+    temperature_kelvin: float = 0.0
+    excitation: str = "fixed"
+    position_bohr: tuple = ()
+    momentum_au: tuple = ()
+    width_bohr: tuple = ()
+    basis: str = "adiabatic"
+
+
+@dataclasses.dataclass(frozen=True)
+class DynamicsConfig:
+    """time_step_au, duration_au (a.u. of time); nsteps = duration/time_step; checkpoint_every,
+    record_every (steps); drift_threshold_hartree (Eh or None); stop_on_drift; substeps;
+    propagation ("auto" | "overlap" | "coupling")."""
+
+    time_step_au: float
+    duration_au: float
+    nsteps: int
+    checkpoint_every: int = 10
+    record_every: int = 1
+    drift_threshold_hartree: float | None = 1e-3
+    stop_on_drift: bool = False
+    substeps: int = 20
+    propagation: str = "auto"
+
+
+@dataclasses.dataclass(frozen=True)
+class EnsembleConfig:
+    """trajectories, seed, workers (processes, one thread each), batch (model trajectories per task)."""
+
+    trajectories: int
+    seed: int
+    workers: int
+    batch: int = 200
+
+
+@dataclasses.dataclass(frozen=True)
+class StudyConfig:
+    """A validated study (see the module docstring)."""
+
+    name: str
+    description: str
+    folder: str
+    electronic: ElectronicConfig
+    initial: InitialConfig
+    method: MethodOptions
+    dynamics: DynamicsConfig
+    ensemble: EnsembleConfig
+    molecule: MoleculeConfig | None = None
+    analysis: dict = dataclasses.field(default_factory=dict)
+    cluster: dict | None = None
+    source_path: str = ""
+    source_text: str = ""
+
+    @property
+    def is_model(self) -> bool:
+        return self.electronic.backend == "model"
+
+    @property
+    def batched(self) -> bool:
+        """True when trajectories run through the batched diabatic engine (chunks of trajectories)."""
+        return self.is_model and self.electronic.engine == "batched"
+
+    @property
+    def source_hash(self) -> str:
+        """sha256 of the input text."""
+        return hashlib.sha256(self.source_text.encode()).hexdigest()
+
+    def with_overrides(self, trajectories: int | None = None, duration_au: float | None = None) -> "StudyConfig":
+        """The same study with more trajectories and/or a later end time (``extend``)."""
+        ens, dyn = self.ensemble, self.dynamics
+        if trajectories is not None:
+            ens = dataclasses.replace(ens, trajectories=int(trajectories))
+        if duration_au is not None:
+            dyn = _dynamics_with_duration(dyn, float(duration_au), "extend --duration")
+        return dataclasses.replace(self, ensemble=ens, dynamics=dyn)
+
+
+def _dynamics_with_duration(dyn: DynamicsConfig, duration_au: float, key: str) -> DynamicsConfig:
+    ratio = duration_au / dyn.time_step_au
+    nsteps = int(round(ratio))
+    if nsteps < 1 or abs(ratio - nsteps) > 1e-6 * max(1.0, ratio):
+        raise ConfigError(key, f"= {duration_au:.6g} au is not a whole number of time steps ({dyn.time_step_au:.6g} au)")
+    if nsteps % dyn.record_every:
+        raise ConfigError(key, f"gives {nsteps} steps, not a multiple of dynamics.record_every = {dyn.record_every}")
+    return dataclasses.replace(dyn, duration_au=float(duration_au), nsteps=nsteps)
+
+
+# ----------------------------------------------------------------------------------------------
+# sections
+# ----------------------------------------------------------------------------------------------
+SECTIONS = ("study", "molecule", "electronic", "initial", "method", "dynamics", "ensemble", "analysis", "cluster")
+
+_STUDY_KEYS = ("name", "description", "folder")
+_MOLECULE_KEYS = ("geometry", "atoms", "units", "charge", "spin")
+_ELEC_COMMON = ("backend", "states")
+_ELEC_BY_BACKEND = {
+    "casscf": ("basis", "active_orbitals", "active_electrons", "density_fitting", "coupling_form", "spin_purity"),
+    "tddft": ("basis", "functional", "response", "grid_level"),
+    "model": ("model", "parameters", "engine"),
+    "callback": ("function",),
+}
+_INITIAL_MOLECULE = ("optimize", "normal_modes_from", "temperature_kelvin", "excitation", "state")
+_INITIAL_MODEL = ("position_bohr", "momentum_au", "width_bohr", "state", "basis")
+_METHOD_KEYS = ("method", "window", "zero_point", "gamma")
+_DYNAMICS_KEYS = ("time_step", "duration", "checkpoint_every", "record_every", "drift_threshold",
+                  "stop_on_drift", "substeps", "propagation")
+_ENSEMBLE_KEYS = ("trajectories", "seed", "workers", "batch")
+
+
+def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
+    from ase.data import atomic_numbers
+
+    units = _units()
+    has_file, has_inline = sec.has("geometry"), sec.has("atoms")
+    if has_file == has_inline:
+        raise ConfigError("molecule", "give exactly one of 'geometry' (a file ase.io reads) or 'atoms' (inline list)")
+    length = sec.choice("units", ("angstrom", "bohr"), "angstrom")
+    if has_file:
+        if sec.has("units"):
+            raise ConfigError("molecule.units", "applies to inline 'atoms' only (geometry files carry their own units)")
+        name = sec.string("geometry", what="a file name (any format ase.io reads, e.g. .xyz)")
+        path = name if os.path.isabs(name) else os.path.join(base_dir, name)
+        if not os.path.isfile(path):
+            raise ConfigError("molecule.geometry", f"= {_show(name)}: file not found (looked for {path})")
+        try:
+            import ase.io
+
+            atoms = ase.io.read(path)
+        except Exception as err:  # ase raises many types for unreadable files
+            first = str(err).splitlines()[0] if str(err) else type(err).__name__
+            raise ConfigError("molecule.geometry", f"= {_show(name)}: ase.io cannot read it ({first})") from None
+        if len(atoms) == 0:
+            raise ConfigError("molecule.geometry", f"= {_show(name)}: the file holds no atoms")
+        symbols = tuple(atoms.get_chemical_symbols())
+        pos_ang = atoms.get_positions()
+        source = os.path.abspath(path)
+    else:
+        rows = sec.raw("atoms")
+        what = 'a list of [symbol, x, y, z] rows, e.g. [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]'
+        if not isinstance(rows, list) or not rows:
+            raise ConfigError("molecule.atoms", f"must be {what}")
+        symbols_l, pos_l = [], []
+        for j, row in enumerate(rows):
+            if (not isinstance(row, list) or len(row) != 4 or not isinstance(row[0], str)
+                    or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in row[1:])):
+                raise ConfigError("molecule.atoms", f"row {j} = {_show(row)}: must be [symbol, x, y, z] with numbers")
+            if row[0] not in atomic_numbers or row[0] == "X":
+                raise ConfigError("molecule.atoms", f"row {j}: unknown element {row[0]!r}{_did_you_mean(row[0], [s for s in atomic_numbers if s != 'X'])}")
+            symbols_l.append(row[0])
+            pos_l.append([float(v) for v in row[1:]])
+        symbols = tuple(symbols_l)
+        pos_ang = np.array(pos_l) * (units.Bohr if length == "bohr" else 1.0)
+        source = "inline"
+    key = "molecule.geometry" if has_file else "molecule.atoms"
+    if len(symbols) > 1:
+        d = np.linalg.norm(pos_ang[:, None, :] - pos_ang[None, :, :], axis=2)
+        d[np.diag_indices(len(symbols))] = np.inf
+        i, j = np.unravel_index(np.argmin(d), d.shape)
+        if d[i, j] < MIN_ATOM_DISTANCE_ANGSTROM:
+            raise ConfigError(key, f"atoms {min(i, j)} and {max(i, j)} are {d[i, j]:.3f} Å apart (overlapping; "
+                              f"the minimum allowed is {MIN_ATOM_DISTANCE_ANGSTROM} Å)")
+    charge = sec.integer("charge", 0, what="an integer total charge")
+    spin = sec.integer("spin", 0, minimum=0, what="a non-negative integer 2S (0 singlet, 1 doublet, ...)")
+    nelec = sum(atomic_numbers[s] for s in symbols) - charge
+    if nelec <= 0:
+        raise ConfigError("molecule.charge", f"= {charge}: leaves {nelec} electrons")
+    if (nelec - spin) % 2:
+        raise ConfigError("molecule.spin", f"= {spin}: {nelec} electrons cannot have 2S = {spin} (parity)")
+    return MoleculeConfig(symbols, np.asarray(pos_ang, dtype=float) / units.Bohr, charge, spin, source)
+
+
+def _check_basis(basis: str, symbols, key: str) -> None:
+    try:
+        from pyscf import gto
+
+        for s in sorted(set(symbols)):
+            if not gto.basis.load(basis, s):
+                raise KeyError(s)
+    except Exception:
+        raise ConfigError(key, f"= {_show(basis)}: PySCF has no such basis for {', '.join(sorted(set(symbols)))} "
+                          f"(e.g. \"sto-3g\", \"6-31g*\", \"cc-pvdz\")") from None
+
+
+def _resolve_callback(spec: str, base_dir: str):
+    """"file.py:name" (relative to the input file) or "package.module:name" → the callable."""
+    key = "electronic.function"
+    if ":" not in spec:
+        raise ConfigError(key, f"= {_show(spec)}: write \"file.py:function\" or \"package.module:function\"")
+    target, name = spec.rsplit(":", 1)
+    if target.endswith(".py"):
+        path = target if os.path.isabs(target) else os.path.join(base_dir, target)
+        if not os.path.isfile(path):
+            raise ConfigError(key, f"= {_show(spec)}: file not found (looked for {path})")
+        modname = "mapdyn_user_" + hashlib.sha1(os.path.abspath(path).encode()).hexdigest()[:12]
+        try:
+            loader_spec = importlib.util.spec_from_file_location(modname, path)
+            module = importlib.util.module_from_spec(loader_spec)
+            loader_spec.loader.exec_module(module)
+        except Exception as err:
+            raise ConfigError(key, f"= {_show(spec)}: importing the file failed ({type(err).__name__}: {err})") from None
+    else:
+        try:
+            module = importlib.import_module(target)
+        except Exception as err:
+            raise ConfigError(key, f"= {_show(spec)}: cannot import {target!r} ({type(err).__name__})") from None
+    fn = getattr(module, name, None)
+    if not callable(fn):
+        raise ConfigError(key, f"= {_show(spec)}: {target} has no function {name!r}")
+    return fn
+
+
+def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: str) -> ElectronicConfig:
+    backend = sec.choice("backend", BACKENDS, required=True)
+    own = _ELEC_BY_BACKEND[backend]
+    for k in sec.table:
+        if k not in _ELEC_COMMON and k not in own:
+            raise ConfigError(sec.key(k), f"is not used with backend = \"{backend}\"; its keys are {', '.join(_ELEC_COMMON + own)}")
+    if backend == "model":
+        if molecule is not None:
+            raise ConfigError("molecule", "is not used with electronic.backend = \"model\" (the model defines the coordinates)")
+        name = sec.choice("model", MODEL_NAMES, required=True)
+        params = sec.raw("parameters", {})
+        if not isinstance(params, Mapping):
+            raise ConfigError("electronic.parameters", "must be a table of model parameters, e.g. {A = 0.01, B = 1.6}")
+        from .models.tully import tully_model
+
+        for k, v in params.items():
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                raise ConfigError(f"electronic.parameters.{k}", f"= {_show(v)}: must be a number (atomic units)")
+        try:
+            model = tully_model(name, **params)
+        except TypeError as err:
+            import inspect
+
+            allowed = [p for p in inspect.signature(type(tully_model(name)).__init__).parameters if p != "self"]
+            bad = next((k for k in params if k not in allowed), "?")
+            raise ConfigError(f"electronic.parameters.{bad}", f" is not a parameter of {name}{_did_you_mean(bad, allowed)}; allowed: {', '.join(allowed)}") from None
+        states = sec.integer("states", model.nstates, what="an integer")
+        if states != model.nstates:
+            raise ConfigError("electronic.states", f"= {states}: model {name} has {model.nstates} states")
+        engine = sec.choice("engine", ("batched", "on_the_fly"), "batched")
+        return ElectronicConfig("model", states, model=name, model_parameters=dict(params), engine=engine,
+                                level_of_theory=f"model {name}")
+    if molecule is None:
+        raise ConfigError("molecule", f"is missing; electronic.backend = \"{backend}\" needs a [molecule] section")
+    states = sec.integer("states", required=True, minimum=2,
+                         what="the number of electronic states including the ground state (>= 2)")
+    if backend == "callback":
+        spec = sec.string("function", required=True, what="\"file.py:function\" or \"package.module:function\"")
+        _resolve_callback(spec, base_dir)
+        path, _, name = spec.rpartition(":")
+        if path.endswith(".py") and not os.path.isabs(path):
+            spec = os.path.abspath(os.path.join(base_dir, path)) + ":" + name
+        return ElectronicConfig("callback", states, function=spec, level_of_theory=f"callback {spec}")
+    basis = sec.string("basis", required=True, what="a PySCF basis name, e.g. \"6-31g*\"")
+    _check_basis(basis, molecule.symbols, "electronic.basis")
+    if backend == "casscf":
+        ncas = sec.integer("active_orbitals", required=True, minimum=1, what="the number of active orbitals (>= 1)")
+        nel = sec.integer("active_electrons", required=True, minimum=1, what="the number of active electrons (>= 1)")
+        from ase.data import atomic_numbers
+
+        nelec = sum(atomic_numbers[s] for s in molecule.symbols) - molecule.charge
+        if nel > nelec:
+            raise ConfigError("electronic.active_electrons", f"= {nel}: the molecule has only {nelec} electrons")
+        if nel > 2 * ncas:
+            raise ConfigError("electronic.active_electrons", f"= {nel}: more than 2 × active_orbitals = {2 * ncas}")
+        if (nelec - nel) % 2:
+            raise ConfigError("electronic.active_electrons", f"= {nel}: leaves an odd number of core electrons ({nelec - nel})")
+        if (nel - molecule.spin) % 2 or nel < molecule.spin:
+            raise ConfigError("electronic.active_electrons", f"= {nel}: incompatible with molecule.spin = {molecule.spin}")
+        options = {"basis": basis, "ncas": ncas, "nelecas": nel, "nstates": states, "charge": molecule.charge,
+                   "spin": molecule.spin,
+                   "density_fitting": sec.boolean("density_fitting", False),
+                   "nac_form": sec.choice("coupling_form", ("full", "etf"), "full"),
+                   "spin_purity": sec.choice("spin_purity", ("shift", "spin0", "none"), "shift")}
+        level = f"SA{states}-CASSCF({nel},{ncas})/{basis}"
+        return ElectronicConfig("casscf", states, basis, options, level_of_theory=level)
+    # tddft
+    if molecule.spin != 0:
+        raise ConfigError("molecule.spin", f"= {molecule.spin}: the tddft backend needs a closed-shell singlet (spin = 0)")
+    functional = sec.string("functional", "hf", what="\"hf\" (CIS/TDHF) or a functional name, e.g. \"pbe0\"")
+    if functional.lower() not in ("hf", "rhf"):
+        try:
+            from pyscf.dft import libxc
+
+            libxc.parse_xc(functional)
+        except Exception:
+            raise ConfigError("electronic.functional", f"= {_show(functional)}: PySCF does not know this functional "
+                              f"(e.g. \"hf\", \"pbe0\", \"b3lyp\")") from None
+    response = sec.choice("response", ("tda", "full"), "tda")
+    grid = sec.integer("grid_level", 3, minimum=0, what="a DFT grid level 0..9")
+    if grid > 9:
+        raise ConfigError("electronic.grid_level", f"= {grid}: must be 0..9")
+    options = {"basis": basis, "xc": None if functional.lower() in ("hf", "rhf") else functional,
+               "method": "tda" if response == "tda" else "tddft", "nstates": states,
+               "charge": molecule.charge, "grids_level": grid}
+    name = ("CIS" if response == "tda" else "TDHF") if options["xc"] is None else \
+        (f"TDA-{functional}" if response == "tda" else f"TD-{functional}")
+    return ElectronicConfig("tddft", states, basis, options, level_of_theory=f"{name}/{basis}")
+
+
+def _vector(sec: _Section, k: str, ndof: int, default=None, positive: bool = False, what: str = "a number") -> tuple:
+    v = sec.raw(k, default)
+    if v is None:
+        raise ConfigError(sec.key(k), f"is missing; give {what}")
+    vals = v if isinstance(v, list) else [v]
+    if (len(vals) not in (1, ndof) or
+            not all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) for x in vals)):
+        raise ConfigError(sec.key(k), f"= {_show(v)}: must be {what} (or a list of {ndof})")
+    if positive and any(x <= 0 for x in vals):
+        raise ConfigError(sec.key(k), f"= {_show(v)}: must be positive")
+    return tuple(float(x) for x in (vals * ndof if len(vals) == 1 else vals))
+
+
+def _parse_initial(sec: _Section, elec: ElectronicConfig) -> InitialConfig:
+    F = elec.states
+    if elec.backend == "model":
+        state = sec.integer("state", 0, minimum=0, what=f"an electronic state index 0..{F - 1}")
+        if state >= F:
+            raise ConfigError("initial.state", f"= {state}: only states 0..{F - 1} are computed (electronic.states = {F})")
+        return InitialConfig(state=state,
+                             position_bohr=_vector(sec, "position_bohr", 1, what="the wavepacket centre in Bohr"),
+                             momentum_au=_vector(sec, "momentum_au", 1, what="the mean momentum in a.u."),
+                             width_bohr=_vector(sec, "width_bohr", 1, positive=True, what="the position width σ_R in Bohr"),
+                             basis=sec.choice("basis", ("adiabatic", "diabatic"), "adiabatic"))
+    excitation = sec.choice("excitation", ("fixed", "brightest"), "fixed")
+    if excitation == "fixed":
+        state = sec.integer("state", required=True, minimum=0, what=f"the initial adiabatic state 0..{F - 1} (1 = first excited)")
+        if state >= F:
+            raise ConfigError("initial.state", f"= {state}: only states 0..{F - 1} are computed (electronic.states = {F})")
+    else:
+        if sec.has("state"):
+            raise ConfigError("initial.state", "is not used with excitation = \"brightest\" (the state is chosen per geometry)")
+        state = None
+    default_modes = "dynamics" if elec.backend == "callback" else "scf"
+    modes = sec.choice("normal_modes_from", ("scf", "dynamics"), default_modes)
+    if elec.backend == "callback" and modes == "scf":
+        raise ConfigError("initial.normal_modes_from", "= \"scf\" needs a PySCF backend; with a callback use \"dynamics\"")
+    temp = sec.number("temperature_kelvin", 0.0, what="a temperature in K (>= 0)")
+    if temp < 0:
+        raise ConfigError("initial.temperature_kelvin", f"= {temp}: must be >= 0 K")
+    return InitialConfig(state=state, optimize=sec.boolean("optimize", True), normal_modes_from=modes,
+                         temperature_kelvin=temp, excitation=excitation)
+
+
+def _parse_method(sec: _Section, elec: ElectronicConfig) -> MethodOptions:
+    method = sec.choice("method", METHODS, "sqc")
+    window = sec.choice("window", WINDOWS, "square")
+    zero = sec.choice("zero_point", ZERO_POINTS, "symmetrized")
+    gamma = sec.number("gamma", None, what="a window half-width strictly between 0 and 1/2")
+    if zero == "fixed" and method == "sqc" and not (elec.backend == "model" and elec.engine == "batched"):
+        raise ConfigError("method.zero_point", "= \"fixed\" is allowed for batched model studies only: on a molecule "
+                          "it rescales the whole bonding potential per trajectory; use \"symmetrized\" or \"adjusted\"")
+    if method == "ehrenfest":
+        for k in ("window", "zero_point", "gamma"):
+            if sec.has(k):
+                raise ConfigError(f"method.{k}", "is not used with method = \"ehrenfest\"")
+    try:
+        return MethodOptions(method, window, zero, gamma)
+    except ValueError as err:
+        key = "gamma" if "gamma" in str(err) else "window"
+        raise ConfigError(f"method.{key}", str(err)) from None
+
+
+def _parse_dynamics(sec: _Section, elec: ElectronicConfig) -> DynamicsConfig:
+    dt = parse_duration(sec.required("time_step", "a time step with a unit, e.g. \"0.5 fs\""), "dynamics.time_step")
+    total = parse_duration(sec.required("duration", "the simulated time with a unit, e.g. \"100 fs\""), "dynamics.duration")
+    if total < dt * (1 - 1e-9):
+        raise ConfigError("dynamics.duration", f"= {_show(sec.raw('duration'))}: shorter than one time step")
+    ck = sec.integer("checkpoint_every", 10, minimum=1, what="a number of steps >= 1")
+    rec = sec.integer("record_every", 1, minimum=1, what="a number of steps >= 1")
+    drift = sec.raw("drift_threshold", "1e-3 Eh")
+    if drift is False:
+        drift_eh = None
+    else:
+        drift_eh = parse_energy(drift, "dynamics.drift_threshold")
+    stop = sec.boolean("stop_on_drift", False)
+    if stop and drift_eh is None:
+        raise ConfigError("dynamics.stop_on_drift", "needs a dynamics.drift_threshold")
+    substeps = sec.integer("substeps", 20, minimum=1, what="an integer >= 1")
+    prop = sec.choice("propagation", ("auto", "overlap", "coupling"), "auto")
+    if elec.backend == "model" and elec.engine == "batched":
+        for k in ("substeps", "propagation", "stop_on_drift"):
+            if sec.has(k):
+                raise ConfigError(f"dynamics.{k}", "is not used by the batched model engine (electronic.engine = \"batched\")")
+    ratio = total / dt
+    nsteps = int(round(ratio))
+    if abs(ratio - nsteps) > 1e-6 * max(1.0, ratio):
+        raise ConfigError("dynamics.duration", f"= {_show(sec.raw('duration'))}: not a whole number of time steps "
+                          f"({ratio:.6g} × {_show(sec.raw('time_step'))})")
+    if nsteps % rec:
+        raise ConfigError("dynamics.record_every", f"= {rec}: the {nsteps} steps are not a whole number of recording intervals")
+    return DynamicsConfig(dt, total, nsteps, ck, rec, drift_eh, stop, substeps, prop)
+
+
+def _parse_ensemble(sec: _Section) -> EnsembleConfig:
+    n = sec.integer("trajectories", required=True, minimum=1, what="the number of trajectories (>= 1)")
+    seed = sec.integer("seed", required=True, minimum=0, what="a non-negative integer random seed")
+    w = sec.raw("workers", "auto")
+    if w == "auto":
+        workers = max(1, os.cpu_count() or 1)
+    elif isinstance(w, bool) or not isinstance(w, int) or w < 1:
+        raise ConfigError("ensemble.workers", f"= {_show(w)}: must be a number of processes >= 1 or \"auto\"")
+    else:
+        workers = int(w)
+    batch = sec.integer("batch", 200, minimum=1, what="a number of model trajectories per task (>= 1)")
+    return EnsembleConfig(n, seed, workers, batch)
+
+
+def _parse_analysis(table: Any) -> dict:
+    if not isinstance(table, Mapping):
+        raise ConfigError("analysis", f"must be a table ([analysis]), got {_show(table)}")
+    try:
+        from . import analysis as _analysis  # guarded: the analysis module is optional
+    except ImportError:
+        return dict(table)
+    allowed = getattr(_analysis, "_ANALYSIS_KEYS", None)
+    if allowed:
+        for k in table:
+            if k not in allowed:
+                raise ConfigError(f"analysis.{k}", f" is not a known key{_did_you_mean(k, allowed)}; allowed: {', '.join(allowed)}")
+    check = getattr(_analysis, "settings_from_table", None)
+    if check is not None:
+        try:
+            check({k: v for k, v in table.items() if k != "fragments"})
+        except (ValueError, TypeError, KeyError) as err:
+            raise ConfigError("analysis", str(err).splitlines()[0] if str(err) else type(err).__name__) from None
+    return dict(table)
+
+
+def _parse_cluster(table: Any) -> dict:
+    if not isinstance(table, Mapping):
+        raise ConfigError("cluster", f"must be a table ([cluster]), got {_show(table)}")
+    try:
+        from .cluster import cluster_settings
+    except ImportError:
+        return dict(table)
+    try:
+        cluster_settings(table)
+    except ValueError as err:
+        raise ConfigError("cluster", str(err).splitlines()[0]) from None
+    return dict(table)
+
+
+def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: str = "", source_text: str = "",
+                default_name: str = "study") -> StudyConfig:
+    """Validate a parsed TOML mapping; relative geometry/callback files are relative to ``base_dir``,
+    a relative ``study.folder`` to the current directory."""
+    for k in data:
+        if k not in SECTIONS:
+            raise ConfigError(k, f" is not a known section{_did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
+    for required in ("electronic", "dynamics", "ensemble"):
+        if required not in data:
+            raise ConfigError(required, f"section is missing; add a [{required}] table")
+    study = _Section("study", data.get("study", {}), _STUDY_KEYS)
+    name = study.string("name", default_name, what="a non-empty name")
+    if not re.fullmatch(r"[A-Za-z0-9_.\-]+", name):
+        raise ConfigError("study.name", f"= {_show(name)}: use letters, digits, '_', '-', '.' only (it names folders)")
+    description = study.string("description", "", what="a string") if study.has("description") else ""
+    folder = study.string("folder", os.path.join("runs", name), what="a folder path")
+    electronic_table = data["electronic"]
+    backend = electronic_table.get("backend") if isinstance(electronic_table, Mapping) else None
+    mol = None
+    if "molecule" in data:
+        if backend == "model":
+            raise ConfigError("molecule", "is not used with electronic.backend = \"model\" (the model defines the coordinates)")
+        mol = _parse_molecule(_Section("molecule", data["molecule"], _MOLECULE_KEYS), base_dir)
+    all_elec = tuple(dict.fromkeys(_ELEC_COMMON + sum(_ELEC_BY_BACKEND.values(), ())))
+    elec = _parse_electronic(_Section("electronic", electronic_table, all_elec), mol, base_dir)
+    if elec.backend == "model":
+        init_sec = _Section("initial", data.get("initial", {}), _INITIAL_MODEL,
+                            {k: "with electronic.backend = \"model\"" for k in _INITIAL_MOLECULE if k not in _INITIAL_MODEL})
+    else:
+        init_sec = _Section("initial", data.get("initial", {}), _INITIAL_MOLECULE,
+                            {k: "for molecules (it is a model-study key)" for k in _INITIAL_MODEL if k not in _INITIAL_MOLECULE})
+    initial = _parse_initial(init_sec, elec)
+    method = _parse_method(_Section("method", data.get("method", {}), _METHOD_KEYS), elec)
+    dynamics = _parse_dynamics(_Section("dynamics", data["dynamics"], _DYNAMICS_KEYS), elec)
+    ensemble = _parse_ensemble(_Section("ensemble", data["ensemble"], _ENSEMBLE_KEYS))
+    analysis = _parse_analysis(data.get("analysis", {}))
+    cluster = _parse_cluster(data["cluster"]) if "cluster" in data else None
+    return StudyConfig(name, description, os.path.abspath(folder), elec, initial, method, dynamics, ensemble,
+                       mol, analysis, cluster, source_path, source_text)
+
+
+def load_study(path: str | os.PathLike, *, base_dir: str | None = None) -> StudyConfig:
+    """Read and validate a study TOML file (raises :class:`ConfigError`)."""
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise ConfigError(path, "file not found")
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+        text = raw.decode("utf-8")
+        data = tomllib.loads(text)
+    except UnicodeDecodeError:
+        raise ConfigError(path, "is not UTF-8 text") from None
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(path, f"is not valid TOML ({err})") from None
+    stem = re.sub(r"[^A-Za-z0-9_.\-]+", "_", os.path.splitext(os.path.basename(path))[0]) or "study"
+    return parse_study(data, base_dir=base_dir or os.path.dirname(os.path.abspath(path)), source_path=os.path.abspath(path),
+                       source_text=text, default_name=stem)
