@@ -367,7 +367,9 @@ def bootstrap_ratio(numerator: np.ndarray, denominator: np.ndarray, column_of: n
             r = num / den
         return np.moveaxis(r, -1, 0)                 # (K, ...)
 
-    batch = max(1, int(4e6 // max(1, n * (K + b.shape[1]))))
+    # resamples per statistic call: the products W @ a are memory-bound, so take many resamples at
+    # once (≈ 2.5e7 floats of work arrays)
+    batch = max(1, min(int(n_resamples), int(2.5e7 // (n + K + b.shape[1]))))
     import warnings
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
