@@ -292,6 +292,9 @@ def thermal_bath_ensemble(model: LinearVibronicModel, ntraj: int, seed: int, bet
         if bath_center == "zero":
             Q0 = np.zeros(D)
         elif bath_center == "donor":
+            if not hasattr(model, "diabatic_minimum"):
+                raise ValueError("bath_center='donor' needs a model with diabatic_minimum (a linear vibronic "
+                                 "model); pass the centre as an explicit array instead")
             Q0 = model.diabatic_minimum(initial_state)
         else:
             raise ValueError(f"bath_center={bath_center!r} is not allowed; choose zero, donor or a length-{D} array")
