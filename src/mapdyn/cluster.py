@@ -267,9 +267,11 @@ class DaskExecutor(cf.Executor):
     lost.  ``shutdown`` closes the client, and the cluster when this executor started it.
     """
 
-    def __init__(self, client: Any, cluster: Any = None, task_retries: int = 1, description: str = ""):
+    def __init__(self, client: Any, cluster: Any = None, task_retries: int = 1, description: str = "",
+                 expected_workers: int | None = None):
         self.client = client
         self.cluster = cluster
+        self.expected_workers = expected_workers
         self.task_retries = int(task_retries)
         self.description = description or f"Dask scheduler {client.scheduler.address}"
         self._inner = client.get_executor(pure=False, retries=self.task_retries)
@@ -303,8 +305,9 @@ class DaskExecutor(cf.Executor):
 
     @property
     def max_workers(self) -> int:
-        """Tasks that can run at once now (sum of worker threads; at least 1)."""
-        return max(1, sum(self.worker_threads.values()))
+        """Tasks that can run at once: worker threads connected now, or the workers requested from
+        a batch system / local cluster if more (they may still be queued); at least 1."""
+        return max(1, sum(self.worker_threads.values()), int(self.expected_workers or 0))
 
     def worker_pids(self) -> dict[str, int]:
         """Process id of each worker, by address (for diagnostics)."""
@@ -349,7 +352,8 @@ def local_cluster_executor(n_workers: int = 2, *, task_retries: int = 1, allowed
             memory_limit=memory_per_worker if memory_per_worker is not None else "auto",
             local_directory=local_directory)
     client = distributed.Client(cluster)
-    return DaskExecutor(client, cluster, task_retries, f"Dask LocalCluster, {n_workers} workers x 1 thread")
+    return DaskExecutor(client, cluster, task_retries, f"Dask LocalCluster, {n_workers} workers x 1 thread",
+                        expected_workers=n_workers)
 
 
 def _jobqueue_cluster(settings: ClusterSettings):
@@ -408,7 +412,8 @@ def cluster_executor(settings: ClusterSettings | Mapping[str, Any] | None = None
         with dask.config.set({"distributed.scheduler.allowed-failures": settings.allowed_failures}):
             cluster = _jobqueue_cluster(settings)
         client = distributed.Client(cluster)
-        executor = DaskExecutor(client, cluster, settings.task_retries, settings.describe())
+        executor = DaskExecutor(client, cluster, settings.task_retries, settings.describe(),
+                                expected_workers=settings.workers)
         _wait_for_first_worker(client, settings.connect_timeout, f"the {settings.system} cluster")
         return executor
     target = settings.scheduler

@@ -45,7 +45,10 @@ __all__ = [
     "choose_coordinates",
     "check_backend",
     "estimate_core_hours",
+    "estimate_initial_conditions_seconds",
+    "molecular_preflight",
     "preflight",
+    "check_study",
 ]
 
 _VERDICTS = ("PASS", "WARN", "FAIL", "INFO")
@@ -421,3 +424,133 @@ def molecular_preflight(backend: Any, positions_bohr: np.ndarray, *, n_steps: in
                            f"≈ {_hours(wall)} wall time on {int(workers)} worker{'s' if int(workers) != 1 else ''}"))
     numbers["wall_seconds"] = wall
     return PreflightReport(lines, numbers)
+
+
+def _batched_model_cost(config: Any, probe_steps: int = 50) -> tuple[float, int]:
+    """Seconds per trajectory-step of the batched diabatic engine, timed on one task-sized batch."""
+    from mapdyn.propagators import DiabaticIntegrator
+    from mapdyn.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.study import make_model
+
+    model = make_model(config)
+    n = int(min(config.ensemble.batch, config.ensemble.trajectories))
+    init = config.initial
+    state = gaussian_wavepacket_ensemble(model, n, config.ensemble.seed, position=init.position_bohr,
+                                         momentum=init.momentum_au, position_width=init.width_bohr,
+                                         initial_state=init.state, options=config.method, basis=init.basis)
+    integ = DiabaticIntegrator(model, config.method, config.dynamics.time_step_au)
+    integ.step(state)  # first call outside the timing (allocation, caches)
+    t0 = time.perf_counter()
+    for _ in range(probe_steps):
+        integ.step(state)
+    return (time.perf_counter() - t0) / (probe_steps * n), n
+
+
+def _model_point(backend: Any, pos: np.ndarray) -> str:
+    r = backend.model_coordinates(pos)[0]
+    return ", ".join(f"{x:.3g}" for x in r) + " Bohr"
+
+
+def _strongest_coupling_point(backend: Any, pos: np.ndarray, npoints: int = 200) -> np.ndarray | None:
+    """Positions (N, 3) of the largest max|d_kl| on the segment R0 → −R0 (R0 ± 5 Bohr if R0 = 0).
+
+    An even number of grid points keeps off the segment's midpoint, where a model may be
+    non-analytic (Tully model 1 has a second-derivative jump at R = 0, which makes central
+    differences there first-order only).
+    """
+    r0 = backend.model_coordinates(pos)[0]
+    r1 = -r0 if np.any(r0 != 0.0) else r0 + 5.0
+    a = r0 if np.any(r0 != 0.0) else r0 - 5.0
+    best, best_d = None, 0.0
+    for s in np.linspace(0.0, 1.0, npoints):
+        p = backend.positions_from_model(a + s * (r1 - a))
+        res = backend.compute(p, None, True)
+        if res.couplings is None:
+            return None
+        d = float(np.abs(res.couplings).max())
+        if d > best_d:
+            best, best_d = p, d
+    return best
+
+
+def preflight(study_config: Any, *, n_coordinates: int = 3,
+              positions_bohr: np.ndarray | None = None) -> PreflightReport:
+    """Preflight of a validated study (:class:`mapdyn.config.StudyConfig`): ``mapdyn check``.
+
+    First geometry: for molecules the first trajectory's sampled geometry when the study folder
+    already holds initial conditions, else the input geometry (before optimisation); for model
+    studies the wavepacket centre ``initial.position_bohr``.  ``positions_bohr`` (N, 3) overrides.
+    Lines: backend, gradients, couplings, overlaps (see :func:`check_backend`), then the
+    initial-conditions, per-step and core-hour estimates.  Units: seconds, core-hours.
+    """
+    import os
+
+    from mapdyn.study import INITIAL_CONDITIONS, make_backend
+
+    cfg = study_config
+    n_traj = int(cfg.ensemble.trajectories)
+    n_steps = int(cfg.dynamics.nsteps)
+    workers = int(cfg.ensemble.workers)
+    backend = make_backend(cfg)
+    if cfg.is_model:
+        pos = (backend.positions_from_model(np.asarray(cfg.initial.position_bohr, dtype=float))
+               if positions_bohr is None else np.asarray(positions_bohr, dtype=float))
+        check = check_backend(backend, pos, n_coordinates=n_coordinates)
+        lines = [dataclasses.replace(l, message=f"[R = {_model_point(backend, pos)}] {l.message}") for l in check.lines]
+        if check.passed and positions_bohr is None:
+            # The wavepacket usually starts where nothing happens; check again where the coupling
+            # is strongest on the way from R0 to −R0 (the region the packet crosses).
+            strong = _strongest_coupling_point(backend, pos)
+            if strong is not None:
+                more = check_backend(backend, strong, n_coordinates=n_coordinates)
+                lines += [dataclasses.replace(l, message=f"[R = {_model_point(backend, strong)}, strongest coupling] "
+                                                         f"{l.message}") for l in more.lines if l.topic != "backend"]
+        numbers: dict[str, Any] = {"first_call_seconds": check.first_call_seconds,
+                                   "gradient_error": check.gradient_error, "coupling_error": check.coupling_error,
+                                   "sigma_error": check.sigma_error, "coordinates": check.coordinates,
+                                   "n_steps": n_steps, "n_trajectories": n_traj, "initial_conditions_seconds": 0.0}
+        if check.step_seconds is None:
+            return PreflightReport(lines, numbers)
+        if cfg.batched:
+            per_step, batch = _batched_model_cost(cfg)
+            what = f"batched diabatic engine, per trajectory-step, timed on a batch of {batch}"
+        else:
+            per_step = check.step_seconds
+            what = "model adapter call per step (driver overhead not included)"
+        numbers["step_seconds"] = per_step
+        total = estimate_core_hours(per_step, n_steps, n_traj)
+        numbers["core_hours"] = total
+        numbers["wall_seconds"] = total * 3600.0 / max(1, workers)
+        lines.append(CheckLine("INFO", "cost", f"{per_step:.3g} s per step ({what})"))
+        lines.append(CheckLine("INFO", "core-hours", f"≈ {total:.3g} core-hours = {per_step:.3g} s × {n_steps} "
+                               f"steps × {n_traj} trajectories; ≈ {_hours(numbers['wall_seconds'])} wall time "
+                               f"on {workers} worker{'s' if workers != 1 else ''}"))
+        return PreflightReport(lines, numbers)
+
+    from mapdyn.study import _ground_state_backend
+
+    ic_path = os.path.join(cfg.folder, INITIAL_CONDITIONS)
+    done = os.path.isfile(ic_path)
+    where = "input geometry"
+    if positions_bohr is not None:
+        pos = np.asarray(positions_bohr, dtype=float)
+        where = "given geometry"
+    elif done:
+        from mapdyn.checkpoint import read_h5
+
+        arrays, _ = read_h5(ic_path)
+        pos = np.asarray(arrays["positions_bohr"][0], dtype=float)
+        where = "sampled geometry of trajectory 0"
+    else:
+        pos = np.asarray(cfg.molecule.positions_bohr, dtype=float)
+    ground, _ = _ground_state_backend(cfg, backend)
+    report = molecular_preflight(backend, pos, n_steps=n_steps, n_trajectories=n_traj, workers=workers,
+                                 symbols=list(cfg.molecule.symbols), ground_state_backend=ground,
+                                 initial_conditions_done=done, n_coordinates=n_coordinates)
+    report.lines.insert(0, CheckLine("INFO", "study", f"{cfg.name}: {cfg.electronic.level_of_theory}, "
+                                     f"{n_traj} trajectories × {n_steps} steps; checked at the {where}"))
+    return report
+
+
+#: name the command line looks for.
+check_study = preflight
