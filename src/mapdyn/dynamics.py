@@ -177,6 +177,16 @@ class MappingDynamics(MolecularDynamics):
     on_backend_error : "raise" (default) or "stop" (the trajectory stops, reason recorded).
     restart_state : a :class:`DriverState` to continue from instead of starting anew (no backend
         call, no random draws).
+
+    Records: :attr:`frames` is a list of dicts, one per recorded step, with ``step``, ``time_au``,
+    ``positions_bohr`` (N, 3), ``momenta_au`` (N, 3), ``energies_Eh`` (F,), ``actions`` (F,),
+    ``populations`` (F,) (SQC window indicator 0/1, or e_k/Σe for Ehrenfest), ``window`` (state
+    index, −1 = no window or Ehrenfest), ``kinetic_energy_Eh``, ``potential_energy_Eh``,
+    ``total_energy_Eh``, ``drift_Eh``, ``coupling_norms`` (F, F) |d_kl| in 1/Bohr (None without
+    vectors), ``sigma`` (F, F) mid-step σ_kl = V·d_kl in 1/a.u. time, ``min_overlap``, ``swap``,
+    ``permutation``.  After a restart the list starts empty (a checkpoint writer keeps the older
+    frames).  ``atoms`` carries a single-point calculator with the mapping potential Σ_k ρ_kk E_k
+    (eV) and the force (eV/Å), so ASE observers and loggers work.
     """
 
     def __init__(self, atoms: Atoms, backend: Any, timestep: float, initial_state: int = 0,
