@@ -34,8 +34,11 @@ modes near ω_j h = 2πk are aliased (tests/test_models_bath.py shows both).
 K: P ← P − (h/2) Σ ρ ∇H_sys and A the exact rotation under Tr ρ · V0 (g = 0); accurate only while
 the stiff modes' coupling is resolved (ω_max h < π), but stable beyond.
 
-All variants are compositions of exact sub-flows whose vector fields add up to the MMST field,
-hence consistent and second order in h; no sub-step resolves ω_j.  The idea is that of
+The unaveraged variants are symmetric compositions of exact sub-flows whose vector fields add up
+to the MMST field, hence time-reversible and second order; the averaged variant replaces the
+oscillator sub-flows by their first-order Magnus form along the exact bath flow (nearly but not
+exactly reversible, since R̄⁻ uses g₀) and is second order in ⟨σ_z⟩(t) as measured in
+tests/test_models_bath.py.  No sub-step resolves ω_j.  The idea is that of
 multiple-time-step / mollified-impulse integrators (Tuckerman, Berne & Martyna, J. Chem. Phys. 97,
 1990 (1992); García-Archilla, Sanz-Serna & Skeel, SIAM J. Sci. Comput. 20, 930 (1998); both from
 memory) with the stiff harmonic part solved analytically.  Cost per step: two H_sys evaluations
