@@ -465,3 +465,86 @@ def test_no_lifetime_when_exponential_does_not_describe_the_curve():
     y2 = 0.3 + 0.7 * np.exp(-t / 300.0)
     res2 = A.fit_lifetimes(t, y2, se, delay=False, band=(y2 - 2 * se, y2 + 2 * se))
     assert res2.preferred == "mono" and res2.fits["mono"].diagnostics["inside_band_fraction"] == 1.0
+
+
+# --- study folders ------------------------------------------------------------------------------------
+STUDY_TOML = """
+# Scenario of our own for a test: Tully model 1 (J. Chem. Phys. 93, 1061 (1990)), short run.
+[study]
+name = "tiny_tully1"
+[electronic]
+backend = "model"
+model = "tully1"
+[initial]
+position_bohr = -4.0
+momentum_au = 20.0
+width_bohr = 1.0
+state = 0
+basis = "adiabatic"
+[method]
+method = "sqc"
+window = "square"
+[dynamics]
+time_step = "4 au"
+duration = "800 au"
+record_every = 10
+[ensemble]
+trajectories = 40
+seed = 77
+workers = 1
+batch = 15
+[analysis]
+n_resamples = 99
+lifetime_resamples = 10
+products = {"transmitted on 1" = [{coordinate = 0, above = 0.0}, {state = 1}], "transmitted on 0" = [{coordinate = 0, above = 0.0}, {state = 0}], reflected = [{coordinate = 0, below = 0.0}]}
+"""
+
+
+def test_study_folder_load_analyze_and_cli(tmp_path):
+    from mapdyn.cli import main
+    from mapdyn.models.tully import tully_model
+    from mapdyn.propagators import run_diabatic
+    from mapdyn.sampling import gaussian_wavepacket_ensemble
+
+    toml = tmp_path / "tiny.toml"
+    toml.write_text(STUDY_TOML)
+    folder = tmp_path / "study"
+    assert main(["run", str(toml), "--output", str(folder), "--quiet", "--no-analysis"]) == 0
+    ts = A.load_study(str(folder))
+    assert ts.ntraj == 40 and ts.status_counts()["finished"] == 40 and ts.times[-1] == 800.0
+    # the same 40 trajectories in memory (same seed, same per-trajectory streams) give the same populations
+    model = tully_model("tully1")
+    state = gaussian_wavepacket_ensemble(model, 40, 77, np.array([-4.0]), np.array([20.0]), np.array([1.0]), 0, SQC)
+    run = run_diabatic(model, state, SQC, 4.0, 200, record_every=10, record_nuclei=True)
+    mem = A.populations(A.from_diabatic_run(run), bootstrap=False)
+    disk = A.populations(ts, bootstrap=False)
+    np.testing.assert_allclose(disk.populations, mem.populations, atol=1e-12, equal_nan=True)
+    assert np.array_equal(disk.n_none, mem.n_none)
+    res = A.analyze_study(str(folder))
+    br = res.branching
+    assert br is not None and sum(br.counts) == 40
+    final = run.final.R[:, 0]
+    from mapdyn.windows import window_assignment
+    w = window_assignment(run.actions_adiabatic[-1], SQC)
+    assert br.counts[br.labels.index("transmitted on 0")] == int(np.sum((final > 0) & (w == 0)))
+    # `mapdyn analyze DIR` writes the report folder
+    assert main(["analyze", str(folder)]) == 0
+    for name in ("summary.md", "populations.png", "populations.csv", "branching.csv", "energy_drift.png"):
+        assert (folder / "report" / name).exists(), name
+    # a partial folder: one chunk lost → its trajectories are left out, the rest still analysed
+    os.unlink(folder / "chunks" / "chunk_0001_seg00.h5")
+    part = A.load_study(str(folder))
+    assert part.ntraj == 25 and 15 not in part.indices
+    A.analyze(part, n_resamples=99, lifetime_resamples=0)
+
+
+def test_rule_classifier_coordinates_states_and_mismatch():
+    clf = A.distance_rule_classifier({"right, 1": [{"coordinate": 0, "above": 0.0}, {"state": 1}],
+                                      "right": [{"coordinate": 0, "above": 0.0}]})
+    assert clf(np.array([1.0]), 1) == "right, 1" and clf(np.array([1.0]), 0) == "right"
+    assert clf(np.array([-1.0]), 1) == "other"
+    from ase import Atoms
+    with pytest.raises(ValueError, match="coordinate"):
+        clf(Atoms("H2", positions=[[0, 0, 0], [0, 0, 1]]), 1)
+    with pytest.raises(ValueError, match="each condition"):
+        A.distance_rule_classifier({"x": [{"distance": [0, 1]}]})

@@ -68,6 +68,9 @@ __all__ = [
     "analyze",
     "settings_from_table",
     "fragment_from_table",
+    "load_study",
+    "study_spectrum",
+    "analyze_study",
 ]
 
 #: Atomic unit of time in fs (ase.units._aut, CODATA).
@@ -976,11 +979,13 @@ def values_at_first_entry(tset: TrajectorySet, state: int, observable: Geometric
 # ----------------------------------------------------------------------------------------------
 def distance_rule_classifier(rules: Mapping[str, Sequence[Mapping[str, Any]]], default: str = "other"
                              ) -> Callable[[Any], str]:
-    """Classifier from rules: ``{"label": [{"distance": [i, j], "above": 2.5}, …], …}`` (Å).
+    """Classifier from rules: ``{"label": [{"distance": [i, j], "above": 2.5}, …], …}``.
 
     A geometry gets the first label (in the given order) whose conditions all hold; each condition
-    names a distance between two atoms and ``above`` and/or ``below`` thresholds in Å.  Otherwise
-    ``default``.
+    names a distance between two atoms (molecules, Å) or a model coordinate index (models,
+    ``{"coordinate": 0, "above": 0.0}``, Bohr) and ``above`` and/or ``below`` thresholds
+    (strict), or the final electronic state ``{"state": k}`` (SQC window at the last frame;
+    Ehrenfest: largest action).  Otherwise ``default``.
     """
     parsed = []
     for label, conds in rules.items():
@@ -988,19 +993,43 @@ def distance_rule_classifier(rules: Mapping[str, Sequence[Mapping[str, Any]]], d
             conds = [conds]
         checks = []
         for c in conds:
-            unknown = set(c) - {"distance", "above", "below"}
-            if unknown or "distance" not in c or not ({"above", "below"} & set(c)):
-                raise ValueError(f"product rule {label!r}: each condition needs 'distance' = [i, j] and 'above' "
-                                 f"and/or 'below' in Å (got keys {sorted(c)})")
-            i, j = (int(a) for a in c["distance"])
-            checks.append((i, j, float(c.get("above", -np.inf)), float(c.get("below", np.inf))))
+            if set(c) == {"state"}:
+                checks.append(("state", int(c["state"]), None, None))
+                continue
+            what = {"distance", "coordinate"} & set(c)
+            unknown = set(c) - {"distance", "coordinate", "above", "below"}
+            if unknown or len(what) != 1 or not ({"above", "below"} & set(c)):
+                raise ValueError(f"product rule {label!r}: each condition needs 'distance' = [i, j] (Å, molecules) or "
+                                 f"'coordinate' = k (Bohr, models) and 'above' and/or 'below' (got keys {sorted(c)})")
+            lo, hi = float(c.get("above", -np.inf)), float(c.get("below", np.inf))
+            if "distance" in c:
+                i, j = (int(a) for a in c["distance"])
+                checks.append(("distance", (i, j), lo, hi))
+            else:
+                checks.append(("coordinate", int(c["coordinate"]), lo, hi))
         parsed.append((str(label), checks))
 
-    def classify(atoms) -> str:
+    def value(geometry, kind, where):
+        if kind == "distance":
+            if not hasattr(geometry, "get_distance"):
+                raise ValueError("product rule: 'distance' conditions need molecular geometries; use 'coordinate' for models")
+            return geometry.get_distance(*where)
+        if hasattr(geometry, "get_distance"):
+            raise ValueError("product rule: 'coordinate' conditions are for model studies; use 'distance' for molecules")
+        return float(np.asarray(geometry)[where])
+
+    def holds(geometry, state, kind, where, lo, hi) -> bool:
+        if kind == "state":
+            return state is not None and int(state) == where
+        return lo < value(geometry, kind, where) < hi
+
+    def classify(geometry, state: int | None = None) -> str:
         for label, checks in parsed:
-            if all(lo < atoms.get_distance(i, j) < hi for i, j, lo, hi in checks):
+            if all(holds(geometry, state, *chk) for chk in checks):
                 return label
         return default
+
+    classify.uses_state = True  # type: ignore[attr-defined]
 
     classify.rules = dict(rules)  # type: ignore[attr-defined]
     return classify
@@ -1033,7 +1062,8 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
     """Classify each trajectory's last frame and estimate branching ratios.
 
     Molecules: ``classifier(atoms: ase.Atoms) -> label`` on the last geometry (Å, ASE units).
-    Models: ``classifier(coordinates (D,) Bohr) -> label``.  A mapping is turned into
+    Models: ``classifier(coordinates (D,) Bohr) -> label``.  A classifier with attribute
+    ``uses_state = True`` is called with the final state as second argument (−1 = no window).  A mapping is turned into
     :func:`distance_rule_classifier`.  By default only finished trajectories are classified.
     Ratios are fractions of classified trajectories; bounds from ``scipy.stats.bootstrap``.
     """
@@ -1042,6 +1072,16 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
     if not callable(classifier):
         raise ValueError("classifier must be a callable or a mapping of distance rules")
     last = tset.last_frame
+    uses_state = bool(getattr(classifier, "uses_state", False))
+    final_state = np.full(tset.ntraj, -1)
+    rows_ok = np.nonzero(last >= 0)[0]
+    if rows_ok.size:
+        e_last = tset.actions[rows_ok, last[rows_ok]]
+        if tset.options.method == "ehrenfest":
+            final_state[rows_ok] = np.argmax(e_last, axis=1)
+        else:
+            from .windows import window_assignment
+            final_state[rows_ok] = window_assignment(e_last, tset.options)
     labels_per: list[str] = []
     excluded = []
     for j in range(tset.ntraj):
@@ -1054,9 +1094,10 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
         if tset.positions is not None:
             from ase import Atoms
             atoms = Atoms(symbols=list(tset.symbols), positions=tset.positions[j, last[j]] * _BOHR_ANGSTROM)
-            lab = classifier(atoms)
+            lab = classifier(atoms, final_state[j]) if uses_state else classifier(atoms)
         elif tset.coordinates is not None:
-            lab = classifier(tset.coordinates[j, last[j]].copy())
+            coords = tset.coordinates[j, last[j]].copy()
+            lab = classifier(coords, final_state[j]) if uses_state else classifier(coords)
         else:
             raise ValueError("classify_products needs positions or model coordinates in the trajectory set")
         labels_per.append(str(lab))
@@ -1330,3 +1371,71 @@ def settings_from_table(table: Mapping[str, Any] | None, *, folder: str | None =
     if "energy_tolerance_hartree" in table:
         kw["energy_tolerance"] = float(table["energy_tolerance_hartree"])
     return kw
+
+
+# ----------------------------------------------------------------------------------------------
+# study folders
+# ----------------------------------------------------------------------------------------------
+def load_study(folder: str) -> TrajectorySet:
+    """Recorded results of a finished or partial study folder as a :class:`TrajectorySet`.
+
+    (Results loader; not to be confused with :func:`mapdyn.config.load_study`, which reads an
+    input file.)  Uses the folder reader of :mod:`mapdyn.study` (status, failure reasons and
+    frames all derived from the files); raises :class:`mapdyn.study.StudyError` when nothing has
+    been recorded yet.
+    """
+    from .study import Study, load_trajectory_set
+
+    return load_trajectory_set(Study(folder))
+
+
+def study_spectrum(folder: str, fwhm_ev: float = 0.15) -> Any:
+    """Absorption spectrum of the sampled geometries (an
+    :class:`mapdyn.initial_excitation.AbsorptionSpectrum`, Gaussian FWHM ``fwhm_ev`` eV) when the
+    study's ``initial_conditions.h5`` holds excitation energies and oscillator strengths; else None."""
+    import os
+    from .checkpoint import CheckpointError, read_h5
+    from .initial_excitation import absorption_spectrum
+
+    path = os.path.join(folder, "initial_conditions.h5")
+    if not os.path.exists(path):
+        return None
+    try:
+        arrays, _ = read_h5(path, ["excitation_energies_hartree", "oscillator_strengths"])
+    except CheckpointError:
+        return None
+    return absorption_spectrum(arrays["excitation_energies_hartree"], arrays["oscillator_strengths"], fwhm_ev=fwhm_ev)
+
+
+def analyze_study(folder: Any, **overrides) -> AnalysisResults:
+    """Load a study folder (or :class:`mapdyn.study.Study`), read its ``[analysis]`` table, add the
+    spectrum when present and run :func:`analyze`; ``overrides`` replace keyword arguments.
+
+    Fragment potentials with ``potential.scan`` are computed with a closed-shell ground-state
+    PySCF backend (RHF, or RKS with the study's functional) in the study's basis on the isolated
+    fragment, cached in ``<folder>/fragments/``.
+    """
+    from .study import Study, load_trajectory_set
+
+    study = folder if isinstance(folder, Study) else Study(folder)
+    tset = load_trajectory_set(study)
+    cfg = study.config
+    symbols = None if getattr(cfg, "molecule", None) is None else tuple(cfg.molecule.symbols)
+
+    def fragment_backend(frag_symbols):
+        from .initial_pyscf import PySCFGroundState
+
+        e = cfg.electronic
+        if not e.basis:
+            raise ValueError("fragment potential scan: the study has no basis set (model or callback backend); "
+                             "give potential.curve or potential.morse instead")
+        xc = e.options.get("xc") if e.backend == "tddft" else None
+        return PySCFGroundState(list(frag_symbols), e.basis, xc=xc)
+
+    kw = settings_from_table(getattr(cfg, "analysis", None) or {}, folder=study.folder,
+                             backend_factory=fragment_backend, symbols=symbols)
+    spec = study_spectrum(study.folder)
+    if spec is not None:
+        kw["spectrum"] = spec
+    kw.update(overrides)
+    return analyze(tset, **kw)

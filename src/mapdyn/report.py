@@ -233,7 +233,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     states, counts = np.unique(ts.initial_states, return_counts=True)
     L.append("- initial states: " + ", ".join(f"{s}: {c}" for s, c in zip(states, counts)))
     for k, v in ts.metadata.items():
-        L.append(f"- {k}: {v}")
+        if k != "method":
+            L.append(f"- {k}: {v}")
     st = res.settings
     if st:
         L.append(f"- analysis: {int(round(100 * st.get('confidence_level', 0.95)))} % bootstrap intervals, "
@@ -279,6 +280,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
             aic = f"{d['aic']:.4g}" if "aic" in d else "n/a"
             sup = "yes" if f.supported else "no: " + "; ".join(f.reasons)
             L.append(f"| {name} | {', '.join(parts)} | {rc} | {aic} | {sup} |")
+        L.append("")
         meth = {f.diagnostics.get("uncertainty_method") for f in life.fits.values() if f.diagnostics.get("converged")}
         L.append("Uncertainties (1σ): " + ", ".join(sorted(m for m in meth if m)) + ".")
         L.append("")
