@@ -153,12 +153,14 @@ class MappingDynamics(MolecularDynamics):
     Parameters
     ----------
     atoms : ase.Atoms (or a file name ase.io reads) with positions (Å), momenta (ASE units) and
-        masses (amu; set isotopes with ``atoms.set_masses``).  The driver owns the state; ``atoms`` is updated after every step.
+        masses (amu; set isotopes with ``atoms.set_masses``).  The driver owns the state; ``atoms``
+        is updated after every step.
     backend : object with ``nstates`` and ``compute(positions_bohr, guess, need_gradients)``
         (:mod:`mapdyn.electronic`).
     timestep : ASE time units (``0.5 * ase.units.fs``; a.u. → ``dt_au * ase.units.AUT``).
     initial_state : adiabatic state index the trajectory starts in (0 = ground state).
-    options : :class:`MethodOptions`; ``zero_point="fixed"`` is refused on this path (DESIGN §5a).
+    options : :class:`MethodOptions`; ``zero_point="fixed"`` is refused on this path (DESIGN §5a);
+        ``"adjusted"`` takes γ_k = e_k(0) − δ_{k,initial_state} in the adiabatic basis at t = 0.
     rng : the trajectory's generator, positioned after the nuclear draws; the mapping variables are
         drawn from it with :func:`sample_mapping_variables` (actions, then angles).
     mapping_variables : (x, p), each (F,), in the adiabatic basis at t = 0, instead of ``rng``.
@@ -189,7 +191,7 @@ class MappingDynamics(MolecularDynamics):
     (eV) and the force (eV/Å), so ASE observers and loggers work.
     """
 
-    def __init__(self, atoms: Atoms, backend: Any, timestep: float, initial_state: int = 0,
+    def __init__(self, atoms: Atoms | str | os.PathLike, backend: Any, timestep: float, initial_state: int = 0,
                  options: MethodOptions | None = None, *, rng: np.random.Generator | None = None,
                  mapping_variables: tuple[np.ndarray, np.ndarray] | None = None,
                  electronic_propagation: str = "auto", substeps: int = 20, velocity_floor: float = 1e-5,
