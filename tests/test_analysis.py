@@ -175,7 +175,7 @@ def test_lifetime_from_trajectory_ensemble_end_to_end():
     assign = np.where(times[None, :] < hop[:, None], 1, 0)
     ts = make_set(assign)
     ts.times = times
-    res = A.analyze(ts, n_resamples=299)
+    res = A.analyze(ts, n_resamples=299, lifetime_resamples=40)
     life = res.lifetimes
     assert life.preferred == "mono", life.reasons
     tau_fit, err = life.fits["mono"].parameters["tau"], life.fits["mono"].uncertainties["tau"]
@@ -357,7 +357,7 @@ def test_report_files_exist_and_csvs_equal_memory(tmp_path):
     res = A.analyze(ts, observables=["distance 0 2", "angle 1 0 2"], first_entry=[(0, "distance 0 2")],
                     classifier={"H2 + He": [{"distance": [0, 2], "above": 4.0}]},
                     vibrational=[FragmentAnalysis((0, 1), morse.potential(), name="H2")], spectrum=spec,
-                    n_resamples=199)
+                    n_resamples=199, lifetime_resamples=20)
     rep = R.write_report(res, tmp_path / "report")
     expected = {"populations", "initial_population", "observable_distance_0_2", "observable_angle_1_0_2",
                 "first_entry_state0_distance_0_2", "energy_drift", "branching", "vibrational_H2", "spectrum"}
