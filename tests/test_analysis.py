@@ -548,3 +548,16 @@ def test_rule_classifier_coordinates_states_and_mismatch():
         clf(Atoms("H2", positions=[[0, 0, 0], [0, 0, 1]]), 1)
     with pytest.raises(ValueError, match="each condition"):
         A.distance_rule_classifier({"x": [{"distance": [0, 1]}]})
+
+
+def test_study_spectrum_from_initial_conditions(tmp_path):
+    from mapdyn.checkpoint import write_h5
+    from mapdyn.initial_excitation import absorption_spectrum
+
+    assert A.study_spectrum(str(tmp_path)) is None
+    rng = np.random.default_rng(2)
+    exc, osc = 0.2 + 0.01 * rng.standard_normal((10, 2)), rng.random((10, 2)) * 0.2
+    write_h5(tmp_path / "initial_conditions.h5", {"excitation_energies_hartree": exc, "oscillator_strengths": osc})
+    spec = A.study_spectrum(str(tmp_path), fwhm_ev=0.2)
+    ref = absorption_spectrum(exc, osc, fwhm_ev=0.2)
+    np.testing.assert_array_equal(spec.cross_section_angstrom2, ref.cross_section_angstrom2)

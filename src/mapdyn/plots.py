@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import os
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 
