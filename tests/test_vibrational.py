@@ -251,3 +251,25 @@ def test_fragment_analysis_from_trajectory_set_and_report(tmp_path):
     assert "Morse" in open(rep.summary, encoding="utf-8").read()
     with open(rep.figures["vibrational_H2"], "rb") as fh:
         assert fh.read(4) == b"\x89PNG"
+
+
+def test_fragment_restricted_to_a_product():
+    rng = np.random.default_rng(10)
+    n = 20
+    E = MORSE.levels(MU)[np.zeros(n, int)]
+    r = np.array([rng.uniform(*morse_turning_points(e)) for e in E])
+    pos, mom, masses = cartesian_pair(r, np.sqrt(np.clip(2 * MU * (E - MORSE(r)), 0, None)), rng)
+    pos3 = np.concatenate([pos, np.zeros((n, 1, 3))], axis=1)
+    pos3[:, 2, 0] = np.where(np.arange(n) < 7, 20.0, 3.0)           # He far away in 7 trajectories
+    mom3 = np.concatenate([mom, np.zeros((n, 1, 3))], axis=1)
+    e = np.zeros((n, 1, 2))
+    e[..., 0], e[..., 1] = 1 + SQUARE_GAMMA, SQUARE_GAMMA
+    ts = A.TrajectorySet(times=[0.0], actions=e, options=MethodOptions(), initial_states=np.zeros(n, int),
+                         positions=pos3[:, None], momenta=mom3[:, None], symbols=("H", "H", "He"))
+    frag = V.FragmentAnalysis((0, 1), MORSE.potential(), name="H2", product="H2 + He")
+    with pytest.raises(ValueError, match="product classifier"):
+        V.analyze_fragment(ts, frag)
+    br = A.classify_products(ts, {"H2 + He": [{"distance": [0, 2], "above": 5.0}]}, n_resamples=99)
+    d = V.analyze_fragment(ts, frag, product_labels=br.per_trajectory, n_resamples=99)
+    assert d.v_continuous.size == 7 and d.fragment == "H2 (H2 + He)"
+    assert np.all(np.abs(d.v_continuous) < 1e-6)

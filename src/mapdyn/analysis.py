@@ -533,8 +533,10 @@ class ExponentialFit:
 
     model : "mono" — P(t) = P∞ + (P0 − P∞) exp(−t'/τ);
             "bi"   — P(t) = P∞ + (P0 − P∞) [a exp(−t'/τ1) + (1 − a) exp(−t'/τ2)];
-            t' = max(t − t_d, 0) (t_d = delay, fixed to 0 without ``delay``), P0 = P(t_first) fixed.
-    parameters / uncertainties : name → value, 1σ from the covariance (times in a.u.).
+            t' = max(t − t_first − t_d, 0) (t_d = delay after the first time point, 0 without delay),
+            P0 = P(t_first) fixed.
+    parameters / uncertainties : name → value, 1σ (trajectory bootstrap of the fit when replicas are
+        given, else the covariance; see ``diagnostics["uncertainty_method"]``), times in a.u.
     covariance : parameter covariance (order of ``names``); curve : (T,) fitted population.
     diagnostics : chi2, dof, reduced_chi2, r2, rms_residual, aic, converged, message.
     supported : whether the data support this fit's time constants (see :data:`LIFETIME_RULE`);
@@ -696,8 +698,6 @@ def _fit_one(model: str, t: np.ndarray, y: np.ndarray, s: np.ndarray, P0: float,
             "bootstrap_samples": samples}
     params = {nm: float(v) for nm, v in zip(names, popt)}
     uncs = {nm: float(v) for nm, v in zip(names, err)}
-    if "delay" in params:
-        params["delay"] += 0.0  # delay measured from the first fitted time point
     reasons = []
     if not np.all(np.isfinite(pcov)):
         reasons.append("covariance not finite (parameters not determined by the data)")
@@ -1252,7 +1252,8 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     vib = []
     for frag in vibrational:
         from .vibrational import analyze_fragment
-        vib.append(analyze_fragment(tset, frag, **kw))
+        vib.append(analyze_fragment(tset, frag, **kw,
+                                    product_labels=None if branching is None else branching.per_trajectory))
     settings = {"confidence_level": confidence_level, "n_resamples": n_resamples, "bootstrap_seed": seed,
                 "energy_tolerance_hartree": energy_tolerance, "lifetime_delay": lifetime_delay,
                 "lifetime_asymptote": lifetime_asymptote, "lifetime_resamples": lifetime_resamples}
@@ -1264,7 +1265,7 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
 # ----------------------------------------------------------------------------------------------
 _ANALYSIS_KEYS = ("observables", "first_entry", "products", "fragments", "confidence_level", "n_resamples",
                   "seed", "energy_tolerance_hartree", "lifetime_delay", "lifetime_asymptote", "lifetime_resamples")
-_FRAGMENT_KEYS = ("atoms", "name", "window_half_width", "include_unfinished", "potential")
+_FRAGMENT_KEYS = ("atoms", "name", "window_half_width", "include_unfinished", "potential", "product")
 _POTENTIAL_KEYS = ("curve", "morse", "scan")
 
 
@@ -1283,6 +1284,7 @@ def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
         atoms = [0, 1]          # atom indices (0-based)
         name = "H2"             # optional
         window_half_width = 0.366   # optional (default (√3 − 1)/2)
+        product = "H2 + X"      # optional: only trajectories classified as this product
         potential.curve = "h2_curve.csv"   # two columns r/Bohr, V/Eh (relative to the study folder), or
         potential.morse = {D = 0.1745, a = 1.028, r_e = 1.401}   # Eh, 1/Bohr, Bohr, or
         potential.scan = {r_min = 0.8, r_max = 8.0, points = 40, state = 0}   # with the study's backend
@@ -1325,7 +1327,8 @@ def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
         potential = vib.scan_fragment_potential(backend_factory(frag_symbols), grid, state=int(spec.get("state", 0)),
                                                 cache_path=cache)
     return vib.FragmentAnalysis(atoms, potential, name, float(table.get("window_half_width", vib.SQUARE_GAMMA)),
-                                bool(table.get("include_unfinished", False)))
+                                bool(table.get("include_unfinished", False)),
+                                None if table.get("product") is None else str(table["product"]))
 
 
 def _slug_name(text: str) -> str:

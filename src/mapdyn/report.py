@@ -314,7 +314,9 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     for dist in res.vibrational:
         L.append(f"## Vibrational levels of {dist.fragment}")
         L.append(f"- potential: {dist.potential_source}")
-        L.append(f"- {dist.n_bound} bound, {dist.n_unbound} unbound; windowed binning: {dist.n_outside_windows} "
+        rng_note = (f" ({dist.n_outside_range} with r outside the potential's range)"
+                    if getattr(dist, "n_outside_range", 0) else "")
+        L.append(f"- {dist.n_bound} bound, {dist.n_unbound} unbound{rng_note}; windowed binning: {dist.n_outside_windows} "
                  f"bound fragments in no window (half-width {dist.window_half_width:.4g})")
         L.append(f"- normalisation: {dist.normalisation}")
         L.append("")

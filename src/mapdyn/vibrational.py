@@ -298,7 +298,8 @@ class VibrationalDistribution:
 
     levels (K,) v = 0 … K−1; histogram, windowed and their *_low/*_high bounds : (K,) fractions;
     v_continuous (m,) (NaN = unbound); internal_energy (m,) Eh; angular_momentum (m,) ħ;
-    indices (m,) trajectory indices; counts: n_bound, n_unbound, n_quasibound, n_outside_windows.
+    indices (m,) trajectory indices; counts: n_bound, n_unbound (incl. n_outside_range: r outside the
+    potential's range), n_quasibound, n_outside_windows.
     """
 
     fragment: str
@@ -321,6 +322,7 @@ class VibrationalDistribution:
     confidence_level: float
     potential_source: str
     normalisation: str
+    n_outside_range: int = 0
 
 
 def vibrational_distribution(v_continuous: np.ndarray, *, window_half_width: float = SQUARE_GAMMA,
@@ -380,7 +382,8 @@ class FragmentAnalysis:
 
     potential : :class:`FragmentPotential` (from a curve, a callable, or a backend scan);
     name : label in reports (default "A(i)–B(j)"); window_half_width : symmetric-window w.
-    Only finished trajectories are used unless ``include_unfinished``.
+    Only finished trajectories are used unless ``include_unfinished``; with ``product`` only those
+    whose final geometry was classified as that product (needs a product classifier).
     """
 
     atoms: tuple[int, int]
@@ -388,11 +391,16 @@ class FragmentAnalysis:
     name: str = ""
     window_half_width: float = SQUARE_GAMMA
     include_unfinished: bool = False
+    product: str | None = None
 
 
 def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: float = 0.95,
-                     n_resamples: int = 999, seed: int = 0) -> VibrationalDistribution:
+                     n_resamples: int = 999, seed: int = 0,
+                     product_labels: Sequence[str] | None = None) -> VibrationalDistribution:
     """Vibrational distribution of ``frag`` from each trajectory's last frame of a TrajectorySet.
+
+    ``product_labels`` (one per trajectory, from :func:`mapdyn.analysis.classify_products`) is
+    needed when ``frag.product`` is set.
 
     Masses: ``tset.masses`` (electron masses) or the ASE standard masses of ``tset.symbols``
     (amu × ase.units._amu/_me).
@@ -411,6 +419,10 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
     keep = np.array([last[j] >= 0 and (tset.status[j] == "finished" or
                                        (frag.include_unfinished and tset.status[j] != "failed"))
                      for j in range(tset.ntraj)], dtype=bool)
+    if frag.product is not None:
+        if product_labels is None:
+            raise ValueError(f"fragment {frag.name or frag.atoms}: product={frag.product!r} needs a product classifier")
+        keep &= np.array([lab == frag.product for lab in product_labels], dtype=bool)
     rows = np.nonzero(keep)[0]
     pos = tset.positions[rows, last[rows]]
     mom = tset.momenta[rows, last[rows]]
@@ -418,7 +430,13 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
     name = frag.name or (f"{tset.symbols[a]}{a}-{tset.symbols[b]}{b}")
     phase = fragment_phase_points(pos, mom, masses, frag.atoms)
     v, E, quasi = vibrational_quantum_numbers(frag.potential, phase)
-    return vibrational_distribution(v, window_half_width=frag.window_half_width, fragment=name, internal_energy=E,
+    lo, hi = frag.potential.r_range
+    outside = int(np.sum(~((phase.r > lo) & (phase.r < hi))))
+    if frag.product is not None:
+        name += f" ({frag.product})"
+    dist = vibrational_distribution(v, window_half_width=frag.window_half_width, fragment=name, internal_energy=E,
                                     angular_momentum=phase.L, indices=tset.indices[rows], quasibound=quasi,
                                     potential_source=frag.potential.source, confidence_level=confidence_level,
                                     n_resamples=n_resamples, seed=seed)
+    dist.n_outside_range = outside
+    return dist
