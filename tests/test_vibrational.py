@@ -265,7 +265,8 @@ def test_fragment_restricted_to_a_product():
     e = np.zeros((n, 1, 2))
     e[..., 0], e[..., 1] = 1 + SQUARE_GAMMA, SQUARE_GAMMA
     ts = A.TrajectorySet(times=[0.0], actions=e, options=MethodOptions(), initial_states=np.zeros(n, int),
-                         positions=pos3[:, None], momenta=mom3[:, None], symbols=("H", "H", "He"))
+                         positions=pos3[:, None], momenta=mom3[:, None], symbols=("H", "H", "He"),
+                         masses=np.array([M_H, M_H, 4 * M_H]))
     frag = V.FragmentAnalysis((0, 1), MORSE.potential(), name="H2", product="H2 + He")
     with pytest.raises(ValueError, match="product classifier"):
         V.analyze_fragment(ts, frag)
