@@ -25,6 +25,7 @@ __all__ = [
     "plot_energy_drift",
     "plot_branching",
     "plot_vibrational_distribution",
+    "plot_spectrum",
 ]
 
 #: Our state palette: ink blue, ember, moss, plum, ochre, slate, rose, teal.
@@ -300,4 +301,26 @@ def plot_vibrational_distribution(dist: Any, path: str | os.PathLike, *, title: 
         b.set_xlabel("continuous v (Bohr–Sommerfeld)")
         b.set_ylabel("fragments")
         b.set_title("Continuous quantum number")
+        return save_figure(fig, path)
+
+
+def plot_spectrum(spectrum: Any, path: str | os.PathLike, *, title: str | None = None) -> str:
+    """Nuclear-ensemble absorption cross section (Å²) vs photon energy (eV), total and per state."""
+    e = spectrum.energy_ev
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        per = spectrum.per_state_cross_section_angstrom2
+        peak = max(float(np.max(spectrum.cross_section_angstrom2)), 1e-300)
+        for k, sk in enumerate(per if per.shape[0] > 1 else []):
+            if np.max(sk) > 1e-3 * peak:
+                ax.plot(e, sk, lw=1.1, ls="--", color=STATE_COLOURS[(k + 1) % len(STATE_COLOURS)], label=f"S{k + 1}")
+        ax.fill_between(e, 0, spectrum.cross_section_angstrom2, color=STATE_COLOURS[0], alpha=0.12, lw=0)
+        ax.plot(e, spectrum.cross_section_angstrom2, color=STATE_COLOURS[0], label="total")
+        ax.set_xlabel("photon energy / eV")
+        ax.set_ylabel("cross section σ / Å²")
+        ax.set_xlim(e[0], e[-1])
+        ax.set_ylim(bottom=0)
+        ax.legend(loc="upper right")
+        ax.set_title(title or f"Absorption spectrum ({spectrum.n_geometries} geometries, {spectrum.line_shape} "
+                              f"FWHM {spectrum.fwhm_ev:g} eV)")
         return save_figure(fig, path)

@@ -207,13 +207,11 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     # spectrum ---------------------------------------------------------------------------------
     spec = results.spectrum
     if spec is not None:
-        from .initial_excitation import plot_absorption_spectrum
-
         cols = ["energy_ev", "cross_section_angstrom2"] + [f"S{k + 1}_angstrom2"
                                                           for k in range(spec.per_state_cross_section_angstrom2.shape[0])]
         tab("spectrum", cols, [spec.energy_ev, spec.cross_section_angstrom2] + list(spec.per_state_cross_section_angstrom2))
-        figs["spectrum"] = plot_absorption_spectrum(spec, os.path.join(folder, "spectrum.png"))
-        notes["spectrum"] = "nuclear-ensemble absorption spectrum (Å²) with per-state contributions"
+        fig("spectrum", plots.plot_spectrum, spec,
+            note="nuclear-ensemble absorption spectrum of the sampled geometries (Å²) with per-state contributions")
 
     summary = _summary(results, figs, tabs, notes, title, tu)
     spath = plots.atomic_write_text(os.path.join(folder, "summary.md"), summary)
