@@ -72,8 +72,10 @@ def fsync_directory(path: str) -> None:
         os.close(fd)
 
 
-def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> str:
-    """Call ``write(tmp_path)``, fsync the temporary file, ``os.replace`` it onto ``path``."""
+def atomic_write(path: str | os.PathLike, write: Callable[[str], None], sync_directory: bool = True) -> str:
+    """Call ``write(tmp_path)``, fsync the temporary file, ``os.replace`` it onto ``path``, fsync
+    the directory (skip that with ``sync_directory=False`` when a later write in the same
+    directory syncs it anyway)."""
     path = os.fspath(path)
     tmp = f"{path}.{os.getpid()}.tmp"  # unique per process: two writers never share a temporary
     try:
@@ -90,7 +92,8 @@ def atomic_write(path: str | os.PathLike, write: Callable[[str], None]) -> str:
         except OSError:
             pass
         raise
-    fsync_directory(os.path.dirname(os.path.abspath(path)))
+    if sync_directory:
+        fsync_directory(os.path.dirname(os.path.abspath(path)))
     return path
 
 
@@ -102,7 +105,8 @@ def _array_bytes(arr: np.ndarray) -> bytes:
     return np.ascontiguousarray(arr).tobytes()
 
 
-def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[str, Any] | None = None) -> str:
+def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[str, Any] | None = None,
+             sync_directory: bool = True) -> str:
     """Write ``arrays`` (name → ndarray or bytes) and JSON ``meta`` atomically to ``path``.
 
     bytes become uint8 datasets (attribute ``kind = "bytes"``).  Each dataset gets a SHA-256
@@ -132,7 +136,7 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
                 ds.attrs["kind"] = kind
             h5.flush()
 
-    return atomic_write(path, write)
+    return atomic_write(path, write, sync_directory)
 
 
 def read_h5(path: str | os.PathLike, names: Sequence[str] | None = None) -> tuple[dict, dict]:
@@ -254,7 +258,8 @@ class TrajectoryStore:
         steps = arrays.get("step", np.zeros(0, dtype=np.int64))
         write_h5(cpath, arrays, {"chunk": chunks_before, "nframes": int(len(frames)),
                                  "first_step": int(steps[0]) if len(steps) else None,
-                                 "last_step": int(steps[-1]) if len(steps) else None})
+                                 "last_step": int(steps[-1]) if len(steps) else None},
+                 sync_directory=False)  # the state write below syncs the directory
         digests = list(chunk_digests) + [file_digest(cpath)]
         payload = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
         full_meta = dict(meta)

@@ -23,7 +23,7 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
     [electronic] backend = "casscf" | "tddft" | "model" | "callback", states, and per backend:
                  casscf:   basis, active_orbitals, active_electrons, density_fitting,
                            coupling_form, spin_purity
-                 tddft:    basis, functional, response, grid_level
+                 tddft:    basis, functional, response, grid_level, gradient_residual_limit
                  model:    model, parameters, engine
                  callback: function
     [initial]    molecules: optimize, normal_modes_from, temperature_kelvin, excitation, state
@@ -83,7 +83,13 @@ class ConfigError(ValueError):
 
     def __init__(self, key: str, message: str):
         self.key = key
-        super().__init__(f"{key}{message if message.startswith((' ', ':')) else ': ' + message}")
+        if message.startswith(("=", "is ", "section ", "applies ", "needs ", "gives ")):
+            text = f"{key} {message}"
+        elif message.startswith((" ", ":")):
+            text = f"{key}{message}"
+        else:
+            text = f"{key}: {message}"
+        super().__init__(text)
 
 
 def _did_you_mean(word: str, allowed) -> str:
@@ -360,7 +366,7 @@ _MOLECULE_KEYS = ("geometry", "atoms", "units", "charge", "spin")
 _ELEC_COMMON = ("backend", "states")
 _ELEC_BY_BACKEND = {
     "casscf": ("basis", "active_orbitals", "active_electrons", "density_fitting", "coupling_form", "spin_purity"),
-    "tddft": ("basis", "functional", "response", "grid_level"),
+    "tddft": ("basis", "functional", "response", "grid_level", "gradient_residual_limit"),
     "model": ("model", "parameters", "engine"),
     "callback": ("function",),
 }
@@ -435,12 +441,16 @@ def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
 
 
 def _check_basis(basis: str, symbols, key: str) -> None:
+    import warnings
+
     try:
         from pyscf import gto
 
-        for s in sorted(set(symbols)):
-            if not gto.basis.load(basis, s):
-                raise KeyError(s)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # PySCF suggests installing extra packages for unknown names
+            for s in sorted(set(symbols)):
+                if not gto.basis.load(basis, s):
+                    raise KeyError(s)
     except Exception:
         raise ConfigError(key, f"= {_show(basis)}: PySCF has no such basis for {', '.join(sorted(set(symbols)))} "
                           f"(e.g. \"sto-3g\", \"6-31g*\", \"cc-pvdz\")") from None
@@ -556,9 +566,13 @@ def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: 
     grid = sec.integer("grid_level", 3, minimum=0, what="a DFT grid level 0..9")
     if grid > 9:
         raise ConfigError("electronic.grid_level", f"= {grid}: must be 0..9")
+    residual = sec.number("gradient_residual_limit", 1e-4,
+                          what="the largest relative Z-vector (CPHF) residual accepted for a gradient, e.g. 1e-4")
+    if not 0 < residual < 1:
+        raise ConfigError("electronic.gradient_residual_limit", f"= {residual}: must lie between 0 and 1")
     options = {"basis": basis, "xc": None if functional.lower() in ("hf", "rhf") else functional,
                "method": "tda" if response == "tda" else "tddft", "nstates": states,
-               "charge": molecule.charge, "grids_level": grid}
+               "charge": molecule.charge, "grids_level": grid, "cphf_residual_tol": residual}
     name = ("CIS" if response == "tda" else "TDHF") if options["xc"] is None else \
         (f"TDA-{functional}" if response == "tda" else f"TD-{functional}")
     return ElectronicConfig("tddft", states, basis, options, level_of_theory=f"{name}/{basis}")
@@ -708,9 +722,10 @@ def _parse_cluster(table: Any) -> dict:
 
 
 def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: str = "", source_text: str = "",
-                default_name: str = "study") -> StudyConfig:
+                default_name: str = "study", check_extras: bool = True) -> StudyConfig:
     """Validate a parsed TOML mapping; relative geometry/callback files are relative to ``base_dir``,
-    a relative ``study.folder`` to the current directory."""
+    a relative ``study.folder`` to the current directory.  ``check_extras=False`` skips checking
+    the [analysis] and [cluster] tables (done once when the study was created)."""
     for k in data:
         if k not in SECTIONS:
             raise ConfigError(k, f" is not a known section{_did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
@@ -742,13 +757,18 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     method = _parse_method(_Section("method", data.get("method", {}), _METHOD_KEYS), elec)
     dynamics = _parse_dynamics(_Section("dynamics", data["dynamics"], _DYNAMICS_KEYS), elec)
     ensemble = _parse_ensemble(_Section("ensemble", data["ensemble"], _ENSEMBLE_KEYS))
-    analysis = _parse_analysis(data.get("analysis", {}))
-    cluster = _parse_cluster(data["cluster"]) if "cluster" in data else None
+    if check_extras:
+        analysis = _parse_analysis(data.get("analysis", {}))
+        cluster = _parse_cluster(data["cluster"]) if "cluster" in data else None
+    else:
+        analysis = dict(data.get("analysis", {}))
+        cluster = dict(data["cluster"]) if "cluster" in data else None
     return StudyConfig(name, description, os.path.abspath(folder), elec, initial, method, dynamics, ensemble,
                        mol, analysis, cluster, source_path, source_text)
 
 
-def load_study(path: str | os.PathLike, *, base_dir: str | None = None) -> StudyConfig:
+def load_study(path: str | os.PathLike, *, base_dir: str | None = None, check_extras: bool = True,
+               default_name: str | None = None) -> StudyConfig:
     """Read and validate a study TOML file (raises :class:`ConfigError`)."""
     path = os.fspath(path)
     if not os.path.isfile(path):
@@ -764,4 +784,4 @@ def load_study(path: str | os.PathLike, *, base_dir: str | None = None) -> Study
         raise ConfigError(path, f"is not valid TOML ({err})") from None
     stem = re.sub(r"[^A-Za-z0-9_.\-]+", "_", os.path.splitext(os.path.basename(path))[0]) or "study"
     return parse_study(data, base_dir=base_dir or os.path.dirname(os.path.abspath(path)), source_path=os.path.abspath(path),
-                       source_text=text, default_name=stem)
+                       source_text=text, default_name=default_name or stem, check_extras=check_extras)

@@ -231,7 +231,8 @@ class Study:
     def config(self) -> StudyConfig:
         """The study's configuration: the stored input plus the manifest's trajectories/duration."""
         if self._config is None:
-            cfg = load_study(os.path.join(self.folder, STUDY_TOML), base_dir=self.manifest.get("base_dir"))
+            cfg = load_study(os.path.join(self.folder, STUDY_TOML), base_dir=self.manifest.get("base_dir"),
+                             check_extras=False, default_name=self.manifest.get("name"))
             cfg = cfg.with_overrides(self.manifest["trajectories"], self.manifest["duration_au"])
             self._config = cfg
         return self._config
