@@ -561,3 +561,40 @@ def test_study_spectrum_from_initial_conditions(tmp_path):
     spec = A.study_spectrum(str(tmp_path), fwhm_ev=0.2)
     ref = absorption_spectrum(exc, osc, fwhm_ev=0.2)
     np.testing.assert_array_equal(spec.cross_section_angstrom2, ref.cross_section_angstrom2)
+
+
+def test_driver_frames_give_the_drivers_own_window_bookkeeping():
+    """Frames of the on-the-fly driver (MappingDynamics) → from_trajectories: the SQC populations
+    equal those built from the per-frame window indicators the driver itself recorded
+    (frame['populations'], its own bookkeeping)."""
+    import warnings
+
+    import ase
+    from ase import units
+    from mapdyn.backends.model_adapter import ModelAdapterBackend
+    from mapdyn.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.models.tully import tully_model
+    from mapdyn.sampling import trajectory_generator
+
+    model = tully_model("tully1")
+    p_ase = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr
+    records, driver_pops = [], []
+    for i in range(6):
+        atoms = ase.Atoms("H", positions=[[-3.0 * units.Bohr, 0, 0]], masses=[model.masses[0] / AMU_IN_ELECTRON_MASSES])
+        atoms.set_momenta([[25.0 / p_ase, 0, 0]])
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            dyn = MappingDynamics(atoms, ModelAdapterBackend(model), 5.0 * units.AUT, 1, SQC,
+                                  rng=trajectory_generator(3, i))
+            dyn.run(40 + 10 * i)
+        records.append(A.frames_to_record(dyn.frames, status="finished", initial_state=1, index=i))
+        driver_pops.append(np.array([f["populations"] for f in dyn.frames]))
+    ts = A.from_trajectories(records, SQC, symbols=("H",))
+    assert ts.positions.shape[2:] == (1, 3) and ts.frame_mask.sum(axis=1).tolist() == [41 + 10 * i for i in range(6)]
+    p = A.populations(ts, bootstrap=False)
+    counts = np.zeros((ts.times.size, 2))
+    for pops in driver_pops:
+        counts[:pops.shape[0]] += pops
+    with np.errstate(invalid="ignore"):
+        np.testing.assert_allclose(p.populations, counts / counts.sum(axis=1)[:, None], atol=1e-15, equal_nan=True)
+    assert p.populations[0].tolist() == [0.0, 1.0] and ts.energies is not None
