@@ -65,7 +65,7 @@ _FIGSIZE = (6.4, 4.0)
 def atomic_write_text(path: str | os.PathLike, text: str) -> str:
     """Write text to ``path`` atomically (``*.tmp``, flush, fsync, os.replace)."""
     path = os.fspath(path)
-    tmp = path + ".tmp"
+    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
     with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
         fh.write(text)
         fh.flush()
@@ -95,7 +95,7 @@ def save_figure(fig, path: str | os.PathLike, dpi: int = 150) -> str:
     if fmt not in ("png", "pdf", "svg"):
         raise ValueError(f"figure path must end in .png, .pdf or .svg, got {path!r}")
     fig.tight_layout()
-    tmp = path + ".tmp"
+    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
     with open(tmp, "wb") as fh:
         fig.savefig(fh, format=fmt, dpi=dpi)
         fh.flush()

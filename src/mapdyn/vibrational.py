@@ -144,7 +144,7 @@ class MorseCurve:
 
 
 def _atomic_savez(path: str, **arrays) -> None:
-    tmp = path + ".tmp"
+    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
     with open(tmp, "wb") as fh:
         np.savez(fh, **arrays)
         fh.flush()
