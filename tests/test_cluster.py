@@ -1,14 +1,13 @@
-"""Dask scale-out: the executor factory, settings validation, worker loss.
+"""Dask scale-out: the executor factory, settings validation, the ensemble runner on Dask, worker loss.
 
 The Dask tests start a LocalCluster bound to 127.0.0.1 (processes, 2 workers, 1 thread each).
-Reference results come from the same task functions run in local processes
-(``concurrent.futures.ProcessPoolExecutor``), so "identical" means bitwise equal arrays.
+Reference results come from the same runner and task functions run in local processes (or in
+this process), so "identical" means bitwise-equal recorded arrays.
 """
 
 from __future__ import annotations
 
 import concurrent.futures as cf
-import multiprocessing
 import os
 import signal
 import sys
@@ -22,44 +21,10 @@ distributed = pytest.importorskip("distributed")
 import cloudpickle  # noqa: E402  (a dependency of distributed)
 
 from mapdyn import cluster  # noqa: E402
-from mapdyn.cluster import (ClusterError, ClusterSettings, DaskExecutor, cluster_executor,  # noqa: E402
-                            cluster_settings, local_cluster_executor)
+from mapdyn.cluster import ClusterError, cluster_executor, cluster_settings, local_cluster_executor  # noqa: E402
 
 # Workers are fresh processes that cannot import this test module by name; ship its functions by value.
 cloudpickle.register_pickle_by_value(sys.modules[__name__])
-
-
-# ---------------------------------------------------------------------------------------------
-# An idempotent trajectory task of the same shape as the runner's model-study task: a chunk of
-# Tully-1 trajectories (own seeded streams), propagated, written atomically, result returned.
-# ---------------------------------------------------------------------------------------------
-
-def model_chunk_task(seed: int, chunk: int, chunk_size: int, nsteps: int, out_dir: str) -> np.ndarray:
-    """Adiabatic SQC populations (T, 2) of trajectories chunk*size … (chunk+1)*size−1 (Tully 1)."""
-    from mapdyn.options import MethodOptions
-    from mapdyn.models.tully import tully_model
-    from mapdyn.propagators import run_diabatic
-    from mapdyn.sampling import gaussian_wavepacket_ensemble
-
-    with open(os.path.join(out_dir, "starts.log"), "a") as log:  # one line per (re-)start of a task
-        log.write(f"{chunk} {os.getpid()}\n")
-    final = os.path.join(out_dir, f"chunk_{chunk:03d}.npy")
-    if os.path.exists(final):  # idempotent: finished work is not redone
-        return np.load(final)
-    model = tully_model("tully1")
-    options = MethodOptions(window="triangle")
-    state = gaussian_wavepacket_ensemble(model, chunk_size, seed, position=-8.0, momentum=15.0,
-                                         position_width=1.0, initial_state=0, options=options,
-                                         first_index=chunk * chunk_size)
-    run = run_diabatic(model, state, options, dt=2.0, nsteps=nsteps, record_every=nsteps // 4)
-    pops, _ = run.populations("adiabatic")
-    tmp = final + ".tmp.npy"
-    with open(tmp, "wb") as fh:
-        np.save(fh, pops)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, final)
-    return pops
 
 
 def _env_and_threads() -> tuple[str, int | None]:
@@ -85,16 +50,6 @@ def dask_executor():
     executor = local_cluster_executor(2)
     yield executor
     executor.shutdown()
-
-
-def _reference(tmp_path, nchunks, **kw):
-    ref_dir = tmp_path / "local"
-    ref_dir.mkdir()
-    ctx = multiprocessing.get_context("spawn")
-    with cf.ProcessPoolExecutor(2, mp_context=ctx) as pool:
-        futs = [pool.submit(model_chunk_task, 11, c, kw["chunk_size"], kw["nsteps"], str(ref_dir))
-                for c in range(nchunks)]
-        return [f.result() for f in futs]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -193,47 +148,130 @@ def test_task_that_raises_once_is_retried(dask_executor, tmp_path):
     assert dask_executor.submit(_raise_once, str(tmp_path / "marker")).result(timeout=60) == 42
 
 
-def test_dask_results_equal_local_processes(dask_executor, tmp_path):
-    kw = dict(chunk_size=64, nsteps=200)
-    ref = _reference(tmp_path, 4, **kw)
-    out = tmp_path / "dask"
-    out.mkdir()
-    futs = [dask_executor.submit(model_chunk_task, 11, c, kw["chunk_size"], kw["nsteps"], str(out)) for c in range(4)]
-    got = [f.result(timeout=120) for f in futs]
-    for a, b in zip(ref, got):
-        assert np.array_equal(a, b)  # bitwise: same seeded streams, same arithmetic
-    assert np.all(np.isfinite(got[0])) and got[0].shape == (5, 2)
+# ---------------------------------------------------------------------------------------------
+# The ensemble runner on Dask: same code path (run_ensemble + run_task), same files
+# ---------------------------------------------------------------------------------------------
+
+from mapdyn.config import load_study  # noqa: E402
+from mapdyn.ensemble import run_ensemble, run_task  # noqa: E402
+from mapdyn.study import Study, load_trajectory_set  # noqa: E402
+
+#: batched model study: Tully model 1 (scenario of our own), 4 chunks of 100 trajectories.
+MODEL_STUDY = """
+[electronic]
+backend = "model"
+model = "tully1"
+[initial]
+position_bohr = -8.0
+momentum_au = 15.0
+width_bohr = 1.0
+state = 0
+[method]
+window = "triangle"
+[dynamics]
+time_step = "2 au"
+duration = "2400 au"
+record_every = 20
+[ensemble]
+trajectories = 400
+seed = 2026
+workers = 2
+batch = 100
+"""
+
+#: on-the-fly model study (model adapter + driver, checkpoints every 20 steps): 4 trajectories.
+OTF_STUDY = """
+[electronic]
+backend = "model"
+model = "tully1"
+engine = "on_the_fly"
+[initial]
+position_bohr = -8.0
+momentum_au = 15.0
+width_bohr = 1.0
+state = 0
+[method]
+window = "triangle"
+[dynamics]
+time_step = "4 au"
+duration = "800 au"
+record_every = 10
+checkpoint_every = 20
+[ensemble]
+trajectories = 4
+seed = 7
+workers = 2
+"""
 
 
-def test_killed_worker_tasks_are_rerun_with_identical_results(tmp_path):
-    kw = dict(chunk_size=200, nsteps=1200)  # ~1 s per chunk, so a worker dies mid-task
-    nchunks = 6
-    ref = _reference(tmp_path, nchunks, **kw)
-    out = tmp_path / "dask"
-    out.mkdir()
-    executor = local_cluster_executor(2)
+def _study(tmp_path, text, name):
+    path = tmp_path / f"{name}.toml"
+    path.write_text(f'[study]\nname = "{name}"\nfolder = "{tmp_path / name}"\n' + text)
+    return Study.create(load_study(path))
+
+
+def _same_results(a, b):
+    assert np.array_equal(a.indices, b.indices)
+    assert a.status == b.status and set(a.status) == {"finished"}
+    for field in ("actions", "energies", "coordinates", "coordinate_momenta"):
+        x, y = getattr(a, field), getattr(b, field)
+        assert np.array_equal(x, y, equal_nan=False), field  # bitwise, no missing frames
+
+
+def test_model_study_on_dask_matches_local_processes(dask_executor, tmp_path):
+    local = _study(tmp_path, MODEL_STUDY, "local")
+    on_dask = _study(tmp_path, MODEL_STUDY, "dask")
+    s_local = run_ensemble(local, workers=2)
+    s_dask = run_ensemble(on_dask, dask_executor)
+    assert (s_local.finished, s_dask.finished, s_dask.failed) == (4, 4, 0)
+    _same_results(load_trajectory_set(local), load_trajectory_set(on_dask))
+    assert run_ensemble(on_dask, dask_executor).skipped == 0  # nothing left to do: no task resubmitted
+    assert on_dask.status().complete
+
+
+def test_killed_worker_mid_run_ensemble_completes_identically(dask_executor, tmp_path):
+    import threading
+
+    reference = _study(tmp_path, OTF_STUDY, "reference")
+    for i in reference.task_ids():  # the same task function, run in this process one by one
+        assert run_task(reference.folder, i).status == "finished"
+    study = _study(tmp_path, OTF_STUDY, "dask")
+    executor = dask_executor  # its nanny restarts the killed worker, so the fixture stays usable
+    outcome = {}
     try:
-        pids = executor.worker_pids()
-        futs = [executor.submit(model_chunk_task, 11, c, kw["chunk_size"], kw["nsteps"], str(out))
-                for c in range(nchunks)]
-        deadline = time.time() + 60
+        pids = set(executor.worker_pids().values())
+        runner = threading.Thread(target=lambda: outcome.update(summary=run_ensemble(study, executor)))
+        runner.start()
         victim = None
-        while victim is None and time.time() < deadline:  # wait until a worker is inside a task
-            busy = [addr for addr, keys in executor.client.processing().items() if keys]
-            log = out / "starts.log"
-            if busy and log.exists() and log.read_text().count("\n") >= 2:
-                victim = busy[0]
-            else:
-                time.sleep(0.05)
-        assert victim is not None
-        os.kill(pids[victim], signal.SIGKILL)  # a worker process this test started
-        got = [f.result(timeout=180) for f in futs]
-        after = executor.worker_pids()
+        deadline = time.time() + 90
+        while victim is None and time.time() < deadline and runner.is_alive():
+            # a trajectory that has checkpointed at least once and is still running in a worker
+            for i in range(study.ntraj):
+                folder = study.trajectory_folder(i)
+                marker = os.path.join(folder, "running.json")
+                if os.path.exists(marker):
+                    from mapdyn.checkpoint import TrajectoryStore
+                    from mapdyn.study import read_json
+
+                    try:
+                        pid = int(read_json(marker)["pid"])
+                    except (OSError, ValueError, KeyError):
+                        continue
+                    meta = TrajectoryStore(folder).read_meta()
+                    if pid in pids and meta and 0 < int(meta.get("step", 0)) < study.nsteps:
+                        victim = (i, pid, int(meta["step"]))
+                        break
+            time.sleep(0.02)
+        assert victim is not None, "no trajectory was caught mid-run"
+        os.kill(victim[1], signal.SIGKILL)  # a worker process of the cluster this test started
+        runner.join(timeout=240)
+        assert not runner.is_alive()
+        after = set(executor.worker_pids().values())
     finally:
-        executor.shutdown()
-    for a, b in zip(ref, got):
-        assert np.array_equal(a, b)
-    assert pids[victim] not in after.values()         # the killed worker really went away
-    starts = [line.split()[0] for line in (out / "starts.log").read_text().splitlines()]
-    assert len(starts) > nchunks                      # at least one task was started twice
-    assert sorted(set(starts)) == [str(c) for c in range(nchunks)]
+        study.request_stop()  # if anything above failed, let the runner thread return
+    study.clear_stop()
+    summary = outcome["summary"]
+    assert (summary.finished, summary.failed, summary.interrupted) == (study.ntraj, 0, 0)
+    assert victim[1] not in after                     # the worker really died (and was replaced)
+    assert 0 < victim[2] < study.nsteps               # ... while its trajectory was half done
+    _same_results(load_trajectory_set(reference), load_trajectory_set(study))

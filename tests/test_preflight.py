@@ -142,3 +142,25 @@ def test_casscf_backend_passes_within_stated_tolerance():
     check = check_backend(backend, pos)
     assert check.passed, "\n".join(map(str, check.lines))
     assert check.coupling_error <= FD_TOLERANCES["CASSCFBackend"].coupling_atol
+
+
+def test_check_command_on_the_tiny_molecular_study(capsys):
+    # `mapdyn check inputs/ethylene_tiny.toml` (CIS/STO-3G ethylene, TDA path without NAC vectors):
+    # gradients and overlap couplings within the TDDFT backend's stated tolerances, and a core-hour
+    # estimate consistent with the formula.
+    pytest.importorskip("pyscf")
+    import os
+
+    from mapdyn.cli import main
+
+    path = os.path.join(os.path.dirname(__file__), os.pardir, "inputs", "ethylene_tiny.toml")
+    code = main(["check", path])
+    out = capsys.readouterr().out.splitlines()
+    assert code == 0, "\n".join(out)
+    tol = FD_TOLERANCES["TDDFTBackend"]
+    grad = next(l for l in out if l.startswith("PASS gradients"))
+    err = float(grad.split("= ")[1].split()[0])
+    assert err <= tol.gradient_atol
+    assert any(l.startswith("PASS couplings") and "overlap couplings consistent" in l for l in out)
+    assert any(l.startswith("INFO core-hours") for l in out)
+    assert not any(l.startswith("FAIL") for l in out)
