@@ -225,7 +225,7 @@ class GridPropagator:
 
     def step(self, psi: np.ndarray, absorbed: np.ndarray) -> np.ndarray:
         """One step: returns the new ψ (F, N); adds the absorbed probability to ``absorbed``
-        (n_channels, F) in place (adiabatic states)."""
+        (n_channels, F) in place (adiabatic states).  The input ``psi`` is overwritten."""
         self._absorb(psi, absorbed)
         psi = _apply_pointwise(self._vhalf, psi)
         axes = tuple(range(1, self.grid.ndim + 1))
