@@ -1414,6 +1414,7 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     """Load a study folder (or :class:`mapdyn.study.Study`), read its ``[analysis]`` table, add the
     spectrum when present and run :func:`analyze`; ``overrides`` replace keyword arguments.
 
+    The energy tolerance defaults to the study's ``dynamics.drift_threshold``.
     Fragment potentials with ``potential.scan`` are computed with a closed-shell ground-state
     PySCF backend (RHF, or RKS with the study's functional) in the study's basis on the isolated
     fragment, cached in ``<folder>/fragments/``.
@@ -1440,5 +1441,8 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     spec = study_spectrum(study.folder)
     if spec is not None:
         kw["spectrum"] = spec
+    drift = getattr(getattr(cfg, "dynamics", None), "drift_threshold_hartree", None)
+    if "energy_tolerance" not in kw and drift:
+        kw["energy_tolerance"] = float(drift)      # the study's own drift threshold flags trajectories
     kw.update(overrides)
     return analyze(tset, **kw)
