@@ -1102,7 +1102,9 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
             raise ValueError("classify_products needs positions or model coordinates in the trajectory set")
         labels_per.append(str(lab))
     classified = [lab for lab in labels_per if lab]
-    labels = tuple(sorted(set(classified)))
+    order = list(getattr(classifier, "rules", {}) or {})       # rule order first, then the rest sorted
+    labels = tuple([lab for lab in order if lab in set(classified)] +
+                   sorted(set(classified) - set(order)))
     L, m = len(labels), len(classified)
     if m == 0:
         z = np.zeros(0)
