@@ -242,24 +242,45 @@ def test_bad_input_is_rejected():
         exact_scattering(m, 10.0, -12.0, 1.0, interaction_region=(3.0, -3.0))
 
 
-def test_stored_reference_data_match_a_fresh_run():
-    """src/mapdyn/data/exact_scattering.npz (tests/reference/make_exact_scattering.py) is reproducible:
-    one stored case recomputed with the recorded packet and grid parameters agrees to 1e-8."""
+def _stored_reference():
     import json
     from importlib import resources
     with resources.files("mapdyn").joinpath("data/exact_scattering.npz").open("rb") as fh:
         data = dict(np.load(fh))
-    meta = json.loads(str(data["metadata"]))
-    assert set(data["model"]) == {"tully1", "tully2", "tully3", "wide_crossing"}
-    assert np.all(data["convergence_deviation"] < 1e-3)
-    i = int(np.nonzero((data["model"] == "tully1") & (data["momentum"] == 20.0))[0][0])
+    return data, json.loads(str(data["metadata"]))
+
+
+def _recompute_stored_case(data, meta, i):
+    from mapdyn.models.tully import tully_model
     n = int(data["grid_npoints"][i])
     spacing = (data["grid_upper"][i] - data["grid_lower"][i]) / n
     settings = ExactSettings(spacing=float(spacing), dt=float(data["dt"][i]), margin=meta["margin"],
                              absorber=Absorber(meta["absorber"]["length"], meta["absorber"]["strength"]),
                              tolerance=meta["tolerance"])
-    res = exact_scattering(SimpleAvoidedCrossing(), float(data["momentum"][i]), float(data["position"][i]),
-                           float(data["position_width"][i]), int(data["initial_state"][i]), None, settings)
+    res = exact_scattering(tully_model(str(data["model"][i])), float(data["momentum"][i]), float(data["position"][i]),
+                           float(data["position_width"][i]), initial_state=int(data["initial_state"][i]), settings=settings)
     assert res.details["grid"].npoints[0] == n
+    return res
+
+
+def test_stored_reference_data_match_a_fresh_run():
+    """src/mapdyn/data/exact_scattering.npz (tests/reference/make_exact_scattering.py) is reproducible:
+    one stored case recomputed with the recorded packet and grid parameters agrees to 1e-8."""
+    data, meta = _stored_reference()
+    assert set(data["model"]) == {"tully1", "tully2", "tully3", "wide_crossing"}
+    assert np.all(data["convergence_deviation"] < 1e-3)
+    wide = data["model"] == "wide_crossing"
+    assert np.all(np.abs(data["transmission"][wide, 1] - data["landau_zener"][wide]) < 1e-3)
+    i = int(np.nonzero((data["model"] == "tully1") & (data["momentum"] == 20.0))[0][0])
+    res = _recompute_stored_case(data, meta, i)
     assert np.max(np.abs(res.transmission - data["transmission"][i])) < 1e-8
     assert np.max(np.abs(res.reflection - data["reflection"][i])) < 1e-8
+
+
+@pytest.mark.slow
+def test_every_stored_case_reproduces():
+    data, meta = _stored_reference()
+    for i in range(data["model"].size):
+        res = _recompute_stored_case(data, meta, i)
+        assert np.max(np.abs(res.transmission - data["transmission"][i])) < 1e-8
+        assert np.max(np.abs(res.reflection - data["reflection"][i])) < 1e-8

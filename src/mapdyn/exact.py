@@ -31,11 +31,15 @@ from __future__ import annotations
 import dataclasses
 import math
 import warnings
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
 
 from .models.base import DiabaticModel
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .scattering import ScatteringResult
 
 __all__ = [
     "Grid",
@@ -374,11 +378,11 @@ def _region_from_model(model, interaction_region):
     return a, b
 
 
-def exact_scattering(model: DiabaticModel, momentum: float, position: float, position_width: float,
+def exact_scattering(model: DiabaticModel, momentum: float, position: float, position_width: float, *,
                      initial_state: int = 0, interaction_region: tuple | None = None,
-                     settings: ExactSettings = ExactSettings(), record_every: int = 0):
+                     settings: ExactSettings = ExactSettings(), record_every: int = 0) -> "ScatteringResult":
     """Exact channel-resolved scattering probabilities for a 1D model (same arguments as
-    :func:`mapdyn.scattering.run_scattering`).
+    :func:`mapdyn.scattering.run_scattering`, which are keywords here after the packet).
 
     The packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] (``position`` x0 Bohr, ``momentum`` k a.u.,
     ``position_width`` σ Bohr) starts on adiabatic state ``initial_state`` and is propagated until
@@ -480,12 +484,13 @@ class ConvergenceReport:
         return max(self.deviations.values())
 
 
-def check_convergence(model: DiabaticModel, momentum: float, position: float, position_width: float,
+def check_convergence(model: DiabaticModel, momentum: float, position: float, position_width: float, *,
                       initial_state: int = 0, interaction_region: tuple | None = None,
                       settings: ExactSettings = ExactSettings()) -> ConvergenceReport:
     """Re-run :func:`exact_scattering` with a 1.5× finer grid, a larger box with 1.5× longer absorbers
     and half the time step, and report how much the channel probabilities move."""
-    base = exact_scattering(model, momentum, position, position_width, initial_state, interaction_region, settings)
+    base = exact_scattering(model, momentum, position, position_width, initial_state=initial_state,
+                            interaction_region=interaction_region, settings=settings)
     g, dt = base.details["grid"], base.details["dt"]
     refined = {
         "grid": dataclasses.replace(settings, spacing=float(g.spacing[0]) / 1.5, dt=dt),
@@ -495,7 +500,8 @@ def check_convergence(model: DiabaticModel, momentum: float, position: float, po
     }
     variants, devs = {}, {}
     for name, s in refined.items():
-        r = exact_scattering(model, momentum, position, position_width, initial_state, interaction_region, s)
+        r = exact_scattering(model, momentum, position, position_width, initial_state=initial_state,
+                             interaction_region=interaction_region, settings=s)
         variants[name] = r
         devs[name] = float(max(np.max(np.abs(r.transmission - base.transmission)),
                                np.max(np.abs(r.reflection - base.reflection))))

@@ -211,11 +211,13 @@ def run_scattering(model: DiabaticModel, momentum: float, position: float, posit
 
 def compare_scattering(model: DiabaticModel, momentum: float, position: float, position_width: float,
                        options: MethodOptions = MethodOptions(), ntraj: int = 2000, seed: int = 0,
-                       initial_state: int = 0, interaction_region: tuple | None = None, dt: float = 2.0):
+                       initial_state: int = 0, interaction_region: tuple | None = None,
+                       dt: float = 2.0) -> tuple[ScatteringResult, ScatteringResult]:
     """(mapping result, exact result) for the same packet and model; see :func:`run_scattering` and
     :func:`mapdyn.exact.exact_scattering`."""
     from .exact import exact_scattering
     mapped = run_scattering(model, momentum, position, position_width, options, ntraj, seed, initial_state,
                             interaction_region, dt)
-    exact = exact_scattering(model, momentum, position, position_width, initial_state, interaction_region)
+    exact = exact_scattering(model, momentum, position, position_width, initial_state=initial_state,
+                             interaction_region=interaction_region)
     return mapped, exact

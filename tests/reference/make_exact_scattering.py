@@ -72,7 +72,7 @@ def main() -> int:
     rows = []
     for name, k, x0, sigma in cases():
         t0 = time.time()
-        rep = check_convergence(tully_model(name), k, x0, sigma, 0, None, settings)
+        rep = check_convergence(tully_model(name), k, x0, sigma, initial_state=0, settings=settings)
         r = rep.base
         g = r.details["grid"]
         lz = landau_zener_average(k, sigma) if name == "wide_crossing" else math.nan
