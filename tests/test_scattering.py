@@ -18,7 +18,7 @@ import pytest
 from mapdyn.exact import exact_scattering
 from mapdyn.models.tully import tully_model
 from mapdyn.options import MethodOptions
-from mapdyn.scattering import default_interaction_region, run_scattering
+from mapdyn.scattering import compare_scattering, default_interaction_region, run_scattering
 
 NTRAJ, SEED, DT = 2000, 20261202, 4.0
 START = {"tully1": -12.0, "tully2": -16.0, "tully3": -15.0}
@@ -143,3 +143,12 @@ def test_bad_input_is_rejected():
         run_scattering(m, 10.0, -12.0, 1.0, interaction_region=(1.0, 1.0))
     with pytest.raises(ValueError, match="dt"):
         run_scattering(m, 10.0, -12.0, 1.0, dt=-1.0)
+
+
+def test_compare_scattering_runs_both_engines_on_the_same_packet():
+    m = tully_model("tully1")
+    mapped_r, exact_r = compare_scattering(m, 20.0, -12.0, 1.0, METHODS["triangle"], ntraj=60, seed=5, dt=DT)
+    alone = run_scattering(m, 20.0, -12.0, 1.0, METHODS["triangle"], ntraj=60, seed=5, dt=DT)
+    np.testing.assert_array_equal(mapped_r.transmission, alone.transmission)
+    assert exact_r.method == "exact"
+    np.testing.assert_array_equal(exact_r.transmission, exact_scattering(m, 20.0, -12.0, 1.0).transmission)
