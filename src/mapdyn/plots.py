@@ -104,6 +104,12 @@ def save_figure(fig, path: str | os.PathLike, dpi: int = 150) -> str:
     return path
 
 
+def _integer_counts(ax) -> None:
+    from matplotlib.ticker import MaxNLocator
+
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+
+
 def _time(times_au: np.ndarray, time_unit: str) -> tuple[np.ndarray, str]:
     from .analysis import AU_TIME_FS
 
@@ -217,6 +223,7 @@ def plot_first_entry(entry: Any, path: str | os.PathLike, *, time_unit: str = "f
             ax.text(0.5, 0.5, "no trajectory entered this state", transform=ax.transAxes, ha="center")
         ax.set_xlabel(xlabel)
         ax.set_ylabel("trajectories")
+        _integer_counts(ax)
         if data.size:
             ax.legend(loc="best")
         ax.set_title(title or f"At first entry into state {entry.state}")
@@ -244,6 +251,7 @@ def plot_energy_drift(energy: Any, path: str | os.PathLike, *, bins: int = 30, t
             off = f"; tolerance ±{tol:.3g} meV off scale"
         ax.set_xlabel("energy drift E(end) − E(0) / meV")
         ax.set_ylabel("trajectories")
+        _integer_counts(ax)
         ax.legend(loc="best")
         if lo <= -tol or tol <= hi:
             off = ""
@@ -298,8 +306,13 @@ def plot_vibrational_distribution(dist: Any, path: str | os.PathLike, *, title: 
             b.hist(cont, bins=edges, color=STATE_COLOURS[5], alpha=0.85, edgecolor="white",
                    label=f"{cont.size} bound, {dist.n_unbound} unbound")
             b.legend(loc="upper right", fontsize=7.5)
+        else:
+            for axis, text in ((a, "no bound fragment in the selected trajectories"), (b, "none")):
+                axis.text(0.5, 0.5, text, transform=axis.transAxes, ha="center", va="center", fontsize=8.5,
+                          color="#c0392b")
         b.set_xlabel("continuous v (Bohr–Sommerfeld)")
         b.set_ylabel("fragments")
+        _integer_counts(b)
         b.set_title("Continuous quantum number")
         return save_figure(fig, path)
 
