@@ -1,0 +1,224 @@
+"""The method's accuracy table on built-in benchmarks with stored exact references.
+
+Cases (each compares one number of the mapping method with its exact reference):
+
+* Tully models 1–3 at several momenta and the wide linear crossing — exact split-operator
+  wavepacket results stored in ``data/exact_scattering.npz`` (written by
+  ``tests/reference/make_exact_scattering.py``; models from J. C. Tully, J. Chem. Phys. 93, 1061
+  (1990), wide crossing and Landau–Zener from VALIDATION.md).  Observable per model: transmission on
+  the upper adiabat (model 1, wide crossing), transmission on the lower adiabat (model 2),
+  reflection on the lower adiabat (model 3).  Tolerance: 0.07 (models 1, 2, wide crossing) and 0.1
+  (model 3), the accuracy expected of SQC on these models (VALIDATION.md, measured during planning).
+* Spin-boson (symmetric and biased Debye bath) — HEOM ⟨σz⟩(t) stored in ``data/heom_*.npz``
+  (Tanimura & Kubo, J. Phys. Soc. Jpn. 58, 101 (1989), QuTiP implementation); the number compared
+  is the largest |Δ⟨σz⟩| over the stored window; tolerance 0.1 (VALIDATION.md).
+* The real-diatomic case (SA-CASSCF potentials, ``data/diatomic_grid.npz``) when its cached grid and
+  comparison module are present.
+
+A case passes when |method − exact| ≤ tolerance; the standard error is printed beside it (the
+tolerances are ≥ 5 standard errors at the default ensemble sizes, so the statistical noise alone
+does not decide a case).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import time
+from importlib import resources
+from typing import Callable
+
+import numpy as np
+
+from .models.tully import tully_model
+from .options import MethodOptions
+from .scattering import run_scattering
+
+__all__ = ["ValidationCase", "CaseResult", "builtin_cases", "run_validation", "format_table"]
+
+SCATTERING_TOLERANCE = {"tully1": 0.07, "tully2": 0.07, "tully3": 0.10, "wide_crossing": 0.07}
+#: (channel, adiabatic state) compared per model
+SCATTERING_OBSERVABLE = {"tully1": ("transmission", 1), "tully2": ("transmission", 0),
+                         "tully3": ("reflection", 0), "wide_crossing": ("transmission", 1)}
+HEOM_TOLERANCE = 0.1
+QUICK_MOMENTUM = {"tully1": 20.0, "tully2": 30.0, "tully3": 10.0}
+
+
+@dataclasses.dataclass
+class CaseResult:
+    """One row of the table: exact and method values (dimensionless probabilities or ⟨σz⟩)."""
+
+    case: str
+    exact: float
+    method: float
+    difference: float
+    standard_error: float
+    tolerance: float
+    seconds: float
+
+    @property
+    def passed(self) -> bool:
+        return bool(np.isfinite(self.difference) and self.difference <= self.tolerance)
+
+
+@dataclasses.dataclass
+class ValidationCase:
+    """A named benchmark: ``run(options, ntraj, seed) -> (exact, method, difference, stderr)``."""
+
+    name: str
+    run: Callable[[MethodOptions, int, int], tuple[float, float, float, float]]
+    tolerance: float
+    quick: bool = False
+
+
+def _data_path(name: str):
+    return resources.files("mapdyn") / "data" / name
+
+
+def _load_npz(name: str) -> dict | None:
+    path = _data_path(name)
+    if not path.is_file():
+        return None
+    with resources.as_file(path) as p, np.load(p, allow_pickle=False) as data:
+        return {k: data[k] for k in data.files}
+
+
+def _scattering_case(ref: dict, i: int) -> ValidationCase:
+    model_name = str(ref["model"][i])
+    channel, state = SCATTERING_OBSERVABLE[model_name]
+    k = float(ref["momentum"][i])
+    exact = float(ref[channel][i, state])
+    region = tuple(float(v) for v in ref["interaction_region"][i])
+
+    def run(options: MethodOptions, ntraj: int, seed: int):
+        model = tully_model(model_name)
+        res = run_scattering(model, k, float(ref["position"][i]), float(ref["position_width"][i]), options,
+                             ntraj=ntraj, seed=seed, initial_state=int(ref["initial_state"][i]),
+                             interaction_region=region)
+        value = float(getattr(res, channel)[state])
+        err = float(getattr(res, channel + "_error")[state])
+        return exact, value, abs(value - exact), err
+
+    label = f"{model_name} k={k:g} {channel[0].upper()}{state}"
+    return ValidationCase(label, run, SCATTERING_TOLERANCE[model_name], quick=False)
+
+
+def _heom_case(name: str) -> ValidationCase | None:
+    if _load_npz(f"heom_{name}.npz") is None:
+        return None
+
+    def run(options: MethodOptions, ntraj: int, seed: int):
+        from .heom_cases import load_reference, spin_boson_mapping
+        ref = load_reference(name)
+        res = spin_boson_mapping(name, options, ntraj=ntraj, seed=seed)
+        diff = np.abs(res.sigma_z() - ref["sigma_z"])
+        j = int(np.nanargmax(diff))
+        err = res.sigma_z_error[j] if res.sigma_z_error is not None else np.nan
+        return float(ref["sigma_z"][j]), float(res.sigma_z()[j]), float(diff[j]), float(err)
+
+    return ValidationCase(f"{name} max|d<sz>|", run, HEOM_TOLERANCE, quick=(name == "spin_boson_biased"))
+
+
+def _diatomic_case() -> ValidationCase | None:
+    try:
+        from . import diatomic
+    except ImportError:
+        return None
+    if _load_npz("diatomic_grid.npz") is None or not hasattr(diatomic, "validation_case"):
+        return None
+    name, tolerance, run = diatomic.validation_case()
+    return ValidationCase(name, run, tolerance, quick=False)
+
+
+def builtin_cases() -> list[ValidationCase]:
+    """All built-in cases whose reference data are present."""
+    cases: list[ValidationCase] = []
+    ref = _load_npz("exact_scattering.npz")
+    if ref is not None:
+        models = [str(m) for m in ref["model"]]
+        for i, name in enumerate(models):
+            case = _scattering_case(ref, i)
+            # --quick keeps one momentum per model: the one nearest QUICK_MOMENTUM (or the first)
+            same = [j for j, m in enumerate(models) if m == name]
+            target = QUICK_MOMENTUM.get(name, float(ref["momentum"][same[0]]))
+            case.quick = i == min(same, key=lambda j: abs(float(ref["momentum"][j]) - target))
+            cases.append(case)
+    for name in ("spin_boson_symmetric", "spin_boson_biased"):
+        c = _heom_case(name)
+        if c is not None:
+            cases.append(c)
+    c = _diatomic_case()
+    if c is not None:
+        cases.append(c)
+    return cases
+
+
+def run_validation(options: MethodOptions, quick: bool = False, ntraj: int | None = None, seed: int = 2024,
+                   progress: Callable[[str], None] | None = None) -> list[CaseResult]:
+    """Run the built-in cases (``quick``: one case per model, fewer trajectories) with ``options``."""
+    if ntraj is None:
+        ntraj = 600 if quick else 2000
+    if isinstance(ntraj, bool) or not isinstance(ntraj, (int, np.integer)) or ntraj < 10:
+        raise ValueError(f"ntraj={ntraj!r} is not allowed; use an integer of at least 10")
+    cases = [c for c in builtin_cases() if c.quick or not quick]
+    if not cases:
+        raise RuntimeError("no reference data found in mapdyn/data; reinstall the package")
+    results = []
+    for c in cases:
+        t0 = time.perf_counter()
+        exact, value, diff, err = c.run(options, ntraj, seed)
+        results.append(CaseResult(c.name, exact, value, diff, err, c.tolerance, time.perf_counter() - t0))
+        if progress is not None:
+            progress(f"  {c.name}: {'pass' if results[-1].passed else 'FAIL'} ({results[-1].seconds:.1f} s)")
+    return results
+
+
+def format_table(results: list[CaseResult], options: MethodOptions) -> str:
+    """Fixed-width table; the last line reads ``validate: N passed, M failed``."""
+    head = f"{'case':<30} {'exact':>8} {'method':>8} {'|diff|':>8} {'std.err':>8} {'tol':>6}  result"
+    lines = [f"method: {options.describe()}", head, "-" * len(head)]
+    for r in results:
+        lines.append(f"{r.case:<30} {r.exact:8.4f} {r.method:8.4f} {r.difference:8.4f} "
+                     f"{r.standard_error:8.4f} {r.tolerance:6.3f}  {'pass' if r.passed else 'FAIL'}")
+    npass = sum(r.passed for r in results)
+    lines.append(f"validate: {npass} passed, {len(results) - npass} failed")
+    return "\n".join(lines)
+
+
+def results_as_json(results: list[CaseResult]) -> str:
+    return json.dumps([dataclasses.asdict(r) | {"passed": r.passed} for r in results], indent=1)
+
+
+def add_arguments(parser) -> None:
+    """Options of ``mapdyn validate`` (shared with the command line)."""
+    parser.add_argument("--method", default="sqc", help="sqc or ehrenfest (default sqc)")
+    parser.add_argument("--window", default="triangle", help="square or triangle (default triangle)")
+    parser.add_argument("--zero-point", dest="zero_point", default="symmetrized",
+                        help="symmetrized, adjusted or fixed (default symmetrized)")
+    parser.add_argument("--quick", action="store_true", help="one case per model, 600 trajectories (< 1 minute)")
+    parser.add_argument("--trajectories", type=int, default=None, help="trajectories per case (default 2000, quick 600)")
+    parser.add_argument("--seed", type=int, default=2024, help="ensemble seed (default 2024)")
+    parser.add_argument("--json", dest="json_path", default=None, help="also write the rows to this JSON file")
+
+
+def main_from_args(args) -> int:
+    """Run ``mapdyn validate``; exit code 0 when every case passes, 1 otherwise, 2 on bad options."""
+    import os
+    import sys
+    try:
+        options = MethodOptions(args.method, args.window, args.zero_point)
+        print(f"mapdyn validate: {options.describe()}{' (quick)' if args.quick else ''}", flush=True)
+        results = run_validation(options, quick=args.quick, ntraj=args.trajectories, seed=args.seed,
+                                 progress=lambda s: print(s, flush=True))
+    except ValueError as exc:
+        print(f"mapdyn validate: error: {exc}", file=sys.stderr)
+        return 2
+    print(format_table(results, options))
+    if args.json_path:
+        tmp = f"{args.json_path}.{os.getpid()}.tmp"
+        with open(tmp, "w") as fh:
+            fh.write(results_as_json(results))
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, args.json_path)
+    return 0 if all(r.passed for r in results) else 1
