@@ -1,0 +1,62 @@
+"""`mapdyn validate`: the table equals the underlying functions, and a broken option fails."""
+
+import numpy as np
+import pytest
+
+import mapdyn.windows
+from mapdyn import validate
+from mapdyn.models.tully import tully_model
+from mapdyn.options import MethodOptions
+from mapdyn.scattering import run_scattering
+
+TRIANGLE = MethodOptions("sqc", "triangle")
+
+
+def _case(prefix):
+    return next(c for c in validate.builtin_cases() if c.name.startswith(prefix))
+
+
+def test_builtin_cases_cover_the_benchmark_set():
+    names = [c.name for c in validate.builtin_cases()]
+    for model in ("tully1", "tully2", "tully3", "wide_crossing", "spin_boson_symmetric", "spin_boson_biased"):
+        assert any(n.startswith(model) for n in names), model
+    quick = [c.name.split()[0] for c in validate.builtin_cases() if c.quick]
+    assert len(quick) == len(set(quick))  # one quick case per model
+
+
+def test_table_numbers_equal_the_underlying_functions():
+    """The row of Tully 1 at k = 20 is run_scattering's own upper-state transmission for the same seed,
+    and its exact column is the stored split-operator value."""
+    case = _case("tully1 k=20")
+    exact, value, diff, err = case.run(TRIANGLE, 300, 5)
+    ref = validate._load_npz("exact_scattering.npz")
+    i = [j for j, m in enumerate(ref["model"]) if m == "tully1" and ref["momentum"][j] == 20.0][0]
+    direct = run_scattering(tully_model("tully1"), 20.0, float(ref["position"][i]), float(ref["position_width"][i]),
+                            TRIANGLE, ntraj=300, seed=5, interaction_region=tuple(ref["interaction_region"][i]))
+    assert exact == ref["transmission"][i, 1]
+    assert value == direct.transmission[1] and err == direct.transmission_error[1]
+    assert diff == abs(value - exact)
+
+
+def test_table_format_and_closing_line():
+    rows = [validate.CaseResult("a", 0.5, 0.52, 0.02, 0.01, 0.07, 1.0),
+            validate.CaseResult("b", 0.1, 0.3, 0.2, 0.01, 0.1, 1.0)]
+    text = validate.format_table(rows, TRIANGLE)
+    assert text.splitlines()[-1] == "validate: 1 passed, 1 failed"
+    assert "FAIL" in text.splitlines()[-2]
+
+
+def test_swapped_windows_make_cases_fail(monkeypatch):
+    """Deliberately broken binning (each window read as the other state's) must fail the check."""
+    case = _case("tully2 k=30")
+    _, _, good, _ = case.run(TRIANGLE, 400, 1)
+    monkeypatch.setattr("mapdyn.scattering.window_assignment",
+                        lambda e, options: np.where(mapdyn.windows.window_assignment(e, options) >= 0,
+                                                    1 - mapdyn.windows.window_assignment(e, options), -1))
+    _, _, bad, _ = case.run(TRIANGLE, 400, 1)
+    assert good <= case.tolerance < bad
+
+
+def test_bad_trajectory_count():
+    with pytest.raises(ValueError, match="ntraj"):
+        validate.run_validation(TRIANGLE, quick=True, ntraj=3)
