@@ -275,3 +275,21 @@ def test_killed_worker_mid_run_ensemble_completes_identically(dask_executor, tmp
     assert victim[1] not in after                     # the worker really died (and was replaced)
     assert 0 < victim[2] < study.nsteps               # ... while its trajectory was half done
     _same_results(load_trajectory_set(reference), load_trajectory_set(study))
+
+
+def test_run_command_with_scheduler_address(dask_executor, tmp_path):
+    # `mapdyn run STUDY.toml --scheduler tcp://…` connects to a running scheduler (here the
+    # LocalCluster of the fixture), runs every task there and leaves the cluster running.
+    from mapdyn.cli import main
+
+    path = tmp_path / "cli.toml"
+    path.write_text(f'[study]\nname = "cli"\nfolder = "{tmp_path / "cli"}"\n' + MODEL_STUDY)
+    address = dask_executor.client.scheduler.address
+    assert main(["run", str(path), "--scheduler", address, "--quiet", "--no-analysis"]) == 0
+    study = Study(str(tmp_path / "cli"))
+    assert study.status().complete
+    local = _study(tmp_path, MODEL_STUDY, "local_ref")
+    for i in local.task_ids():  # reference: the same task function in this process
+        assert run_task(local.folder, i).status == "finished"
+    _same_results(load_trajectory_set(local), load_trajectory_set(study))
+    assert dask_executor.submit(pow, 3, 2).result(timeout=60) == 9  # the cluster outlives the command
