@@ -333,8 +333,8 @@ def synthetic_molecular_set(seed=0):
         r = rng.uniform(morse.r_e - np.log1p(s) / morse.a, morse.r_e - np.log1p(-s) / morse.a)
         pr = np.sqrt(max(2 * mu * (E - morse(r)), 0.0))
         pos[j, :, 1, 2] = r
-        mom[j, :, 1, 2] = pr / 2.0
-        mom[j, :, 0, 2] = -pr / 2.0
+        mom[j, :, 1, 2] = pr            # centre-of-mass frame: P_b = −P_a = p_r
+        mom[j, :, 0, 2] = -pr
         pos[j, :, 2, 0] = 3.0 + times * (0.002 if j % 3 else 0.0)
     energies = -1.0 + 1e-5 * rng.standard_normal((n, T)).cumsum(axis=1)
     status = ["finished"] * n
@@ -396,6 +396,7 @@ def test_report_files_exist_and_csvs_equal_memory(tmp_path):
     same(c["ratio"], res.branching.ratios)
     c = R.read_csv(rep.tables["vibrational_H2"])
     same(c["histogram"], res.vibrational[0].histogram)
+    np.testing.assert_allclose(res.vibrational[0].v_continuous, np.round(res.vibrational[0].v_continuous), atol=1e-6)
     same(c["windowed"], res.vibrational[0].windowed)
     c = R.read_csv(rep.tables["spectrum"])
     same(c["cross_section_angstrom2"], spec.cross_section_angstrom2)
