@@ -82,7 +82,7 @@ def test_settings_and_command_line_override():
                           "walltime": "12:00:00", "queue": "short", "job_directives": ["--exclusive"]})
     assert (s.system, s.workers, s.workers_per_job, s.memory_per_worker) == ("slurm", 8, 4, 1_500_000_000)
     assert s.job_directives == ("--exclusive",)
-    over = cluster_settings({"system": "local", "workers": 3}, scheduler="tcp://10.0.0.5:8786")
+    over = cluster_settings({"system": "slurm", "workers": 4, "walltime": "1:00:00"}, scheduler="tcp://10.0.0.5:8786")
     assert over.scheduler == "tcp://10.0.0.5:8786" and over.system is None
     with pytest.raises(ValueError, match="--scheduler"):
         cluster_settings(None, scheduler="10.0.0.5:8786")

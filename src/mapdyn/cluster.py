@@ -173,9 +173,10 @@ def cluster_settings(section: Mapping[str, Any] | None = None, *, scheduler: str
         if key not in CLUSTER_KEYS:
             raise ValueError(f"cluster.{key} is not a known key{_did_you_mean(key, CLUSTER_KEYS)}; "
                              f"allowed: {', '.join(CLUSTER_KEYS)}")
-    if scheduler is not None:
-        section.pop("scheduler_file", None)
-        section.pop("system", None)
+    if scheduler is not None:  # --scheduler wins: drop what only a started cluster would use
+        for key in ("scheduler_file", "system", "workers_per_job", "walltime", "queue", "account",
+                    "job_directives", "python"):
+            section.pop(key, None)
         section["scheduler"] = scheduler
     given = [k for k in ("scheduler", "scheduler_file", "system") if section.get(k) is not None]
     if len(given) != 1:
