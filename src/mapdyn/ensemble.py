@@ -39,12 +39,19 @@ from .checkpoint import TrajectoryStore, write_h5
 from .study import CHUNKS, Study, StudyError, initial_row, make_backend, make_model, write_json, write_marker
 
 __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "run_task", "local_executor",
+           "SerialExecutor",
            "run_ensemble", "Progress", "SINGLE_THREAD_ENV"]
 
 SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 _PARENT_PID: int | None = None
 _STUDY_CACHE: dict = {}
+#: in-process runs (:class:`SerialExecutor`): the runner's stop callable, checked at checkpoints.
+_LOCAL_STOP: Callable[[], bool] | None = None
+
+
+def _stop_requested(study: "Study") -> bool:
+    return os.path.exists(study.stop_path) or (_LOCAL_STOP is not None and _LOCAL_STOP())
 
 
 @dataclasses.dataclass
@@ -202,7 +209,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
                 dyn = _restored_driver(study, point.state)
                 chunks, digests = point.chunks, list(meta.get("chunk_sha256", []))
             while dyn.state.step < target and not dyn.state.stopped:
-                if os.path.exists(study.stop_path):
+                if _stop_requested(study):
                     return TaskResult("trajectory", index, "interrupted", steps_done, time.perf_counter() - t0)
                 before = dyn.state.step
                 dyn.run(min(K, target - before))
@@ -310,6 +317,22 @@ def local_executor(workers: int) -> cf.ProcessPoolExecutor:
                                   initializer=_worker_init)
 
 
+class SerialExecutor(cf.Executor):
+    """Runs each task at once in this process (``workers = 1``: no process start-up cost)."""
+
+    max_workers = 1
+
+    def submit(self, fn, /, *args, **kwargs) -> cf.Future:
+        fut: cf.Future = cf.Future()
+        try:
+            fut.set_result(fn(*args, **kwargs))
+        except BaseException as err:  # noqa: BLE001 - handed to the caller through the future
+            if isinstance(err, KeyboardInterrupt):
+                raise
+            fut.set_exception(err)
+        return fut
+
+
 @dataclasses.dataclass
 class Progress:
     """A progress snapshot: trajectories done/failed/total, steps done/total, steps per second, ETA (s)."""
@@ -391,10 +414,13 @@ def run_ensemble(study: Study, executor: cf.Executor | None = None, workers: int
     failed = sum(ntraj_of[i] for i in ids if status[i].status == "failed" and i not in todo)
     total_steps = study.nsteps * total
     steps_before = sum(min(status[i].step, study.nsteps) * ntraj_of[i] for i in ids)
+    global _LOCAL_STOP
     own = executor is None
     if own:
         workers = int(workers or study.config.ensemble.workers)
-        executor = local_executor(workers)
+        executor = SerialExecutor() if workers == 1 else local_executor(workers)
+    if isinstance(executor, SerialExecutor):
+        _LOCAL_STOP = stop
     capacity = int(workers or getattr(executor, "max_workers", None) or getattr(executor, "_max_workers", 1) or 1)
     results: list[TaskResult] = []
     in_flight: dict = {}
@@ -456,6 +482,7 @@ def run_ensemble(study: Study, executor: cf.Executor | None = None, workers: int
                 pass
         raise
     finally:
+        _LOCAL_STOP = None
         if own:
             executor.shutdown(wait=True, cancel_futures=True)
         if progress is not None:

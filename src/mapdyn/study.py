@@ -85,6 +85,12 @@ def _pid_alive(pid: int) -> bool:
         return True
     except (OSError, ValueError):
         return False
+    try:  # a killed process whose parent died too may linger as a zombie until reaped
+        with open(f"/proc/{int(pid)}/stat") as fh:
+            if fh.read().rsplit(")", 1)[1].split()[0] in ("Z", "X"):
+                return False
+    except (OSError, IndexError):
+        pass
     return True
 
 

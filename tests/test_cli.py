@@ -1,0 +1,318 @@
+"""The ``mapdyn`` command end to end: run, status, kill -9 + resume, extend, on model and
+molecular studies.
+
+Equality checks on the model backends are bitwise (np.array_equal): the batched engine and the
+model adapter are deterministic functions of the seeded initial conditions, so any difference
+would be a restart bug.  Method combinations: sqc/triangle/symmetrized (batched and on-the-fly
+model studies), sqc/square/symmetrized (molecular).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+from mapdyn.checkpoint import TrajectoryStore, read_h5
+from mapdyn.cli import main
+from mapdyn.study import Study
+
+ENV = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1")
+
+
+def model_toml(trajectories=120, batch=40, duration="1000 au", engine="batched", checkpoint_every=20,
+               workers=2, record_every=5) -> str:
+    engine_line = f'engine = "{engine}"\n' if engine != "batched" else ""
+    return f"""
+[study]
+name = "tully1_test"
+description = "scenario of our own: Tully model 1 test ensemble"
+[electronic]
+backend = "model"
+model = "tully1"
+{engine_line}[initial]
+position_bohr = -8.0
+momentum_au = 15.0
+width_bohr = 1.0
+state = 0
+[method]
+window = "triangle"
+[dynamics]
+time_step = "2 au"
+duration = "{duration}"
+record_every = {record_every}
+checkpoint_every = {checkpoint_every}
+[ensemble]
+trajectories = {trajectories}
+seed = 11
+workers = {workers}
+batch = {batch}
+[analysis]
+n_resamples = 99
+lifetime_resamples = 0
+"""
+
+
+def write(tmp_path, name, text):
+    path = tmp_path / name
+    path.write_text(text)
+    return str(path)
+
+
+def mapdyn(*args, cwd, check=True, timeout=600):
+    proc = subprocess.run([sys.executable, "-m", "mapdyn", *args], cwd=cwd, env=ENV, capture_output=True,
+                          text=True, timeout=timeout)
+    if check:
+        assert proc.returncode == 0, proc.stderr[-3000:]
+    return proc
+
+
+def chunk_arrays(folder):
+    study = Study(folder)
+    out = {}
+    for c, _, _ in study.chunks():
+        segs = [read_h5(p)[0] for p, _ in study.chunk_segments(c)]
+        out[c] = {k: np.concatenate([s[k] for s in segs]) if segs[0][k].ndim else segs[-1][k]
+                  for k in ("times", "actions_adiabatic", "actions_diabatic", "energy", "R", "P")}
+        out[c].update({k: segs[-1][k] for k in ("final_R", "final_P", "final_x", "final_p")})
+    return out
+
+
+def traj_frames(folder):
+    study = Study(folder)
+    return {i: TrajectoryStore(study.trajectory_folder(i)).read_frames() for i in range(study.ntraj)}
+
+
+def assert_equal_dicts(a, b):
+    assert a.keys() == b.keys()
+    for k in a:
+        if isinstance(a[k], dict):
+            assert_equal_dicts(a[k], b[k])
+        else:
+            assert np.array_equal(a[k], b[k], equal_nan=True), k
+
+
+def file_ids(paths):
+    return {p: (os.stat(p).st_ino, os.stat(p).st_mtime_ns) for p in paths}
+
+
+def test_model_study_end_to_end(tmp_path, capsys, monkeypatch):
+    """run → chunks equal to run_diabatic on the same rows; report written; status; rerun is a no-op."""
+    from mapdyn.models.tully import tully_model
+    from mapdyn.options import MethodOptions
+    from mapdyn.propagators import run_diabatic
+    from mapdyn.sampling import gaussian_wavepacket_ensemble
+
+    toml = write(tmp_path, "m.toml", model_toml(trajectories=80))
+    proc = mapdyn("run", toml, cwd=tmp_path)
+    assert "finished 80, failed 0" in proc.stderr
+    folder = tmp_path / "runs" / "tully1_test"
+    for name in ("populations.png", "populations.csv", "summary.md"):
+        assert (folder / "report" / name).is_file()
+    assert main(["status", str(folder), "--json"]) == 0
+    status = json.loads(capsys.readouterr().out)
+    assert status["counts"] == {"finished": 80, "running": 0, "failed": 0, "pending": 0}
+    # chunk 1 = trajectories 40..79, compared with the engine called directly
+    opts = MethodOptions(window="triangle")
+    model = tully_model("tully1")
+    state = gaussian_wavepacket_ensemble(model, 40, 11, -8.0, 15.0, 1.0, 0, opts, first_index=40)
+    run = run_diabatic(model, state, opts, 2.0, 500, record_every=5, record_nuclei=True)
+    got = chunk_arrays(folder)[1]
+    assert np.array_equal(got["actions_adiabatic"], run.actions_adiabatic)
+    assert np.array_equal(got["R"], run.R)
+    monkeypatch.chdir(tmp_path)
+    assert main(["run", toml, "--no-analysis", "--quiet"]) == 0
+    assert "(0 steps computed" in capsys.readouterr().err
+
+
+def _kill_when(proc, condition, timeout=300):
+    t0 = time.time()
+    while time.time() - t0 < timeout:
+        if condition():
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+            return True
+        if proc.poll() is not None:
+            return False
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGKILL)
+    return False
+
+
+def test_kill_and_resume_batched_model_is_bitwise(tmp_path):
+    toml = write(tmp_path, "m.toml", model_toml(trajectories=240, batch=30, duration="1200 au", workers=1))
+    ref = str(tmp_path / "ref")
+    assert main(["run", toml, "--output", ref, "--no-analysis", "--quiet", "--workers", "2"]) == 0
+    folder = tmp_path / "killed"
+    chunks = folder / "chunks"
+    proc = subprocess.Popen([sys.executable, "-m", "mapdyn", "run", toml, "--output", str(folder), "--no-analysis"],
+                            cwd=tmp_path, env=ENV, start_new_session=True, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    killed = _kill_when(proc, lambda: chunks.is_dir() and len([f for f in os.listdir(chunks) if f.endswith(".h5")]) >= 2)
+    assert killed, "the run ended before it could be killed"
+    before = sorted(str(chunks / f) for f in os.listdir(chunks) if f.endswith(".h5"))
+    ids = file_ids(before)
+    n_before = len(before)
+    assert 2 <= n_before < 8
+    status = Study(folder).status().counts()
+    assert status["finished"] == 30 * n_before and status["running"] == 0  # dead markers are ignored
+    res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
+    steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
+    assert steps == (8 - n_before) * 30 * 600  # only the missing chunks were computed
+    assert file_ids(before) == ids  # finished chunks untouched
+    assert_equal_dicts(chunk_arrays(folder), chunk_arrays(ref))
+
+
+def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
+    toml = write(tmp_path, "o.toml", model_toml(trajectories=3, duration="600 au", engine="on_the_fly",
+                                                checkpoint_every=20, workers=1, record_every=1))
+    ref = str(tmp_path / "ref")
+    assert main(["run", toml, "--output", ref, "--no-analysis", "--quiet", "--workers", "2"]) == 0
+    folder = tmp_path / "killed"
+    t0 = folder / "trajectories" / "traj_000000"
+    t1 = folder / "trajectories" / "traj_000001"
+
+    def progressed():
+        m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()
+        return m0 is not None and m0["step"] == 300 and m1 is not None and m1["step"] >= 40
+
+    proc = subprocess.Popen([sys.executable, "-m", "mapdyn", "run", toml, "--output", str(folder), "--no-analysis"],
+                            cwd=tmp_path, env=ENV, start_new_session=True, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    assert _kill_when(proc, progressed), "the run ended before it could be killed"
+    m1 = TrajectoryStore(t1).read_meta()
+    done_steps = 300 + m1["step"]
+    finished_files = [str(t0 / f) for f in os.listdir(t0)]
+    partial_chunks = [str(TrajectoryStore(t1).chunk_path(c)) for c in range(m1["chunks"])]
+    ids = file_ids(finished_files + partial_chunks)
+    st = {e.index: e.status for e in Study(folder).status().entries}
+    assert st == {0: "finished", 1: "pending", 2: "pending"}
+    res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
+    steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
+    assert steps == 3 * 300 - done_steps  # nothing already checkpointed was recomputed
+    assert file_ids(finished_files + partial_chunks) == ids
+    assert_equal_dicts(traj_frames(folder), traj_frames(ref))
+    for i in range(3):
+        a = TrajectoryStore(Study(folder).trajectory_folder(i)).restart_point().state
+        b = TrajectoryStore(Study(ref).trajectory_folder(i)).restart_point().state
+        assert np.array_equal(a.positions, b.positions) and np.array_equal(a.x, b.x) and np.array_equal(a.p, b.p)
+
+
+def test_extend_trajectories_and_duration(tmp_path):
+    short = write(tmp_path, "s.toml", model_toml(trajectories=60, batch=40, duration="400 au"))
+    long = write(tmp_path, "l.toml", model_toml(trajectories=100, batch=40, duration="800 au"))
+    a, b = str(tmp_path / "a"), str(tmp_path / "b")
+    assert main(["run", short, "--output", a, "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    first = sorted(str(p) for p in (tmp_path / "a" / "chunks").iterdir())
+    ids = file_ids(first)
+    assert main(["extend", a, "--trajectories", "100", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert file_ids(first) == ids
+    assert main(["extend", a, "--duration", "800 au", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert file_ids(first) == ids
+    assert main(["run", long, "--output", b, "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    # the chunk layout differs (40 + 20 | 40 per extension) from the fresh run (40 + 40 + 20):
+    # compare per trajectory
+    def per_traj(folder):
+        study = Study(folder)
+        rows = {}
+        for c, first_i, count in study.chunks():
+            arr = chunk_arrays(folder)[c]
+            for j in range(count):
+                rows[first_i + j] = (arr["actions_adiabatic"][:, j], arr["R"][:, j])
+        return rows
+
+    ra, rb = per_traj(a), per_traj(b)
+    assert sorted(ra) == sorted(rb) == list(range(100))
+    for i in range(100):
+        assert np.array_equal(ra[i][0], rb[i][0]) and np.array_equal(ra[i][1], rb[i][1])
+    # on the fly: a later end time continues each trajectory from its final state
+    s2 = write(tmp_path, "s2.toml", model_toml(trajectories=2, duration="200 au", engine="on_the_fly", record_every=1))
+    l2 = write(tmp_path, "l2.toml", model_toml(trajectories=2, duration="400 au", engine="on_the_fly", record_every=1))
+    c, d = str(tmp_path / "c"), str(tmp_path / "d")
+    assert main(["run", s2, "--output", c, "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert main(["extend", c, "--duration", "400 au", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert main(["run", l2, "--output", d, "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert_equal_dicts(traj_frames(c), traj_frames(d))
+    # refusals: fewer trajectories, an earlier end time
+    assert main(["extend", c, "--trajectories", "1"]) == 2
+    assert main(["extend", c, "--duration", "100 au"]) == 2
+
+
+H2 = """
+[study]
+name = "h2_test"
+description = "scenario of our own: H2 after excitation, SA2-CASSCF(2,2)/STO-3G"
+[molecule]
+atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
+[electronic]
+backend = "casscf"
+basis = "sto-3g"
+active_orbitals = 2
+active_electrons = 2
+states = 2
+[initial]
+state = 1
+[method]
+window = "square"
+[dynamics]
+time_step = "0.5 fs"
+duration = "{duration}"
+checkpoint_every = 2
+drift_threshold = "5e-3 Eh"
+[ensemble]
+trajectories = 2
+seed = 5
+workers = 2
+[analysis]
+observables = ["distance 0 1"]
+n_resamples = 99
+lifetime_resamples = 0
+"""
+
+
+def test_molecular_study_end_to_end_and_continuation(tmp_path):
+    """Optimise, Hessian, Wigner, SA-CASSCF dynamics, report; a continuation (extend to a later
+    end time, i.e. restart from the saved state) agrees with an uninterrupted run."""
+    long = write(tmp_path, "l.toml", H2.format(duration="3 fs"))
+    short = write(tmp_path, "s.toml", H2.format(duration="1.5 fs"))
+    proc = mapdyn("run", long, "--output", "full", cwd=tmp_path)
+    assert "finished 2, failed 0" in proc.stderr
+    for name in ("populations.png", "observable_distance_0_1.csv", "summary.md"):
+        assert (tmp_path / "full" / "report" / name).is_file()
+    assert (tmp_path / "full" / "initial_conditions.h5").is_file()
+    mapdyn("run", short, "--output", "part", "--no-analysis", cwd=tmp_path)
+    mapdyn("extend", "part", "--duration", "3 fs", "--no-analysis", cwd=tmp_path)
+    fa, fb = traj_frames(str(tmp_path / "full")), traj_frames(str(tmp_path / "part"))
+    for i in range(2):
+        assert np.array_equal(fa[i]["step"], np.arange(7)) and np.array_equal(fb[i]["step"], np.arange(7))
+        # same initial conditions and the same first half (computed identically)
+        assert np.array_equal(fa[i]["positions_bohr"][:4], fb[i]["positions_bohr"][:4])
+        # after the restart: PySCF iterations restart from the saved guess; the measured
+        # difference is at round-off level (< 1e-9 Bohr); 1e-6 Bohr is far below any physical scale
+        assert np.max(np.abs(fa[i]["positions_bohr"] - fb[i]["positions_bohr"])) < 1e-6
+        assert np.max(np.abs(fa[i]["actions"] - fb[i]["actions"])) < 1e-6
+
+
+@pytest.mark.slow
+def test_shipped_tiny_molecular_study(tmp_path):
+    here = os.path.join(os.path.dirname(__file__), "..", "inputs", "ethylene_tiny.toml")
+    proc = mapdyn("run", os.path.abspath(here), "--output", "tiny", cwd=tmp_path, timeout=3600)
+    assert "failed 0" in proc.stderr
+    assert (tmp_path / "tiny" / "report" / "populations.png").is_file()
+
+
+def test_help_and_usage_errors(tmp_path, capsys):
+    with pytest.raises(SystemExit) as e:
+        main(["--help"])
+    assert e.value.code == 0
+    out = capsys.readouterr().out
+    for word in ("run", "resume", "status", "extend", "analyze", "Ctrl-C"):
+        assert word in out
+    assert main(["status", str(tmp_path)]) == 2
+    assert "not a study folder" in capsys.readouterr().err
