@@ -145,22 +145,28 @@ def test_casscf_backend_passes_within_stated_tolerance():
 
 
 def test_check_command_on_the_tiny_molecular_study(capsys):
-    # `mapdyn check inputs/ethylene_tiny.toml` (CIS/STO-3G ethylene, TDA path without NAC vectors):
-    # gradients and overlap couplings within the TDDFT backend's stated tolerances, and a core-hour
-    # estimate consistent with the formula.
+    # `mapdyn check inputs/ethylene_tiny.toml`: gradients and couplings (analytic NAC vectors vs
+    # overlap finite differences for SA-CASSCF; overlap-coupling consistency on the TDA path) within
+    # the backend's stated tolerances, and a core-hour line.
     pytest.importorskip("pyscf")
     import os
 
     from mapdyn.cli import main
+    from mapdyn.config import load_study
 
     path = os.path.join(os.path.dirname(__file__), os.pardir, "inputs", "ethylene_tiny.toml")
+    backend = load_study(path).electronic.backend
     code = main(["check", path])
     out = capsys.readouterr().out.splitlines()
     assert code == 0, "\n".join(out)
-    tol = FD_TOLERANCES["TDDFTBackend"]
+    tol = FD_TOLERANCES["CASSCFBackend" if backend == "casscf" else "TDDFTBackend"]
     grad = next(l for l in out if l.startswith("PASS gradients"))
-    err = float(grad.split("= ")[1].split()[0])
-    assert err <= tol.gradient_atol
-    assert any(l.startswith("PASS couplings") and "overlap couplings consistent" in l for l in out)
+    assert float(grad.split("= ")[1].split()[0]) <= tol.gradient_atol
+    coup = next(l for l in out if l.startswith("PASS couplings"))
+    if backend == "casscf":
+        assert "d_analytic − d_FD(overlaps)" in coup
+        assert float(coup.split("= ")[1].split()[0]) <= tol.coupling_atol + tol.coupling_rtol
+    else:
+        assert "overlap couplings consistent" in coup
     assert any(l.startswith("INFO core-hours") for l in out)
     assert not any(l.startswith("FAIL") for l in out)
