@@ -48,6 +48,7 @@ and two force contractions (one of each for ``averaged=False``), all O(n·D·F²
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg.blas import dgemm as _dgemm
 
 from .mapping import effective_density, mapping_energy
 from .models.base import DiabaticModel
@@ -271,12 +272,10 @@ class HarmonicBathIntegrator:
         R *= c["C"]
         np.multiply(P, c["Sm"], out=buf[1])
         R += buf[1]
-        np.matmul(rs, c["BR"], out=buf[1])
-        R -= buf[1]
+        _subtract_product(R, rs, c["BR"], buf[1])
         P *= c["C"]
         P -= buf[0]
-        np.matmul(rs, c["BP"], out=buf[1])
-        P -= buf[1]
+        _subtract_product(P, rs, c["BP"], buf[1])
         Hp = HR[:, F2:] + HP[:, F2:] + rs @ c["Mgs2"] + c["A"]
         z = propagate_amplitudes(z, Hp.reshape(n, F, F), half)
         state.x, state.p = z.real.copy(), z.imag.copy()
@@ -330,12 +329,10 @@ class HarmonicBathIntegrator:
         R *= c["C"]
         np.multiply(P, c["Sm"], out=buf[1])
         R += buf[1]
-        np.matmul(rs, c["BR"], out=buf[1])
-        R -= buf[1]
+        _subtract_product(R, rs, c["BR"], buf[1])
         P *= c["C"]
         P -= buf[0]
-        np.matmul(rs, c["BP"], out=buf[1])
-        P -= buf[1]
+        _subtract_product(P, rs, c["BP"], buf[1])
         Hp = HR[:, 4:] + HP[:, 4:] + rs @ c["Mgs2"] + c["A"]
         x0, x1, p0, p1 = self._two_state_propagate(x0, x1, p0, p1, Hp, half)
         state.x = np.stack([x0, x1], axis=1)
@@ -347,6 +344,20 @@ class HarmonicBathIntegrator:
             self._buf = (np.empty(shape), np.empty(shape))
             self._buf_shape = shape
         return self._buf
+
+
+def _subtract_product(target: np.ndarray, a: np.ndarray, b: np.ndarray, scratch: np.ndarray) -> None:
+    """target −= a @ b in place; one fused BLAS call (dgemm with β = 1 on the transposed, Fortran-
+    ordered views) when the arrays are C-contiguous float64, else matmul into ``scratch``."""
+    if target.flags.c_contiguous and a.flags.c_contiguous and b.flags.c_contiguous \
+            and target.dtype == a.dtype == b.dtype == np.float64:
+        out = _dgemm(-1.0, b.T, a.T, 1.0, target.T, overwrite_c=1)
+        if np.shares_memory(out, target):
+            return
+        target[...] = out.T
+        return
+    np.matmul(a, b, out=scratch)
+    target -= scratch
 
 
 def _fourth_integral(omega2, t, W):
