@@ -293,10 +293,11 @@ def test_molecular_study_end_to_end_and_continuation(tmp_path):
         assert np.array_equal(fa[i]["step"], np.arange(7)) and np.array_equal(fb[i]["step"], np.arange(7))
         # same initial conditions and the same first half (computed identically)
         assert np.array_equal(fa[i]["positions_bohr"][:4], fb[i]["positions_bohr"][:4])
-        # after the restart: PySCF iterations restart from the saved guess; the measured
-        # difference is at round-off level (< 1e-9 Bohr); 1e-6 Bohr is far below any physical scale
-        assert np.max(np.abs(fa[i]["positions_bohr"] - fb[i]["positions_bohr"])) < 1e-6
-        assert np.max(np.abs(fa[i]["actions"] - fb[i]["actions"])) < 1e-6
+        # after the restart: the backend is a pure function of (positions, guess) and the guess
+        # (orbitals, CI vectors) is restored bit for bit, so on one thread the continuation is
+        # identical (measured: 0 difference, tests/bench/bench_checkpoint_cost.py)
+        for key in ("positions_bohr", "momenta_au", "actions", "total_energy_Eh"):
+            assert np.array_equal(fa[i][key], fb[i][key]), key
 
 
 @pytest.mark.slow
