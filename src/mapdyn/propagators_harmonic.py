@@ -229,6 +229,12 @@ class HarmonicBathIntegrator:
     def _step_averaged(self, state: EnsembleState) -> None:
         """E(h/2; R̄⁻) A(h) E(h/2; R̄⁺) of the module docstring (linear system coupling)."""
         model, half = self.model, 0.5 * self.dt
+        if self._fast is not None and model.nstates == 2 and not (
+                self.options.method == "sqc" and self.options.zero_point == "fixed"):
+            r0 = self._two_state_density(state.x[:, 0], state.x[:, 1], state.p[:, 0], state.p[:, 1], state)
+            if np.all(np.abs(r0[:, 0] + r0[:, 3] - 1.0) < 1e-12):
+                self._step_two_state_unit_trace(state, r0.reshape(-1, 2, 2))
+                return
         rho0 = self.density(state)
         tr = np.trace(rho0, axis1=1, axis2=2)
         if self._fast is not None and np.all(np.abs(tr - 1.0) < 1e-12):
