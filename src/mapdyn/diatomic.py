@@ -71,6 +71,7 @@ __all__ = [
     "kcl_scan_distances",
     "packaged_grid_path",
     "load_packaged_grid",
+    "load_packaged_reference",
     "harmonic_ground_state",
     "PhotoexcitationScenario",
     "photoexcitation_scenario",
@@ -569,3 +570,19 @@ def run_mapping_photoexcitation(model: DiabaticModel, scenario: PhotoexcitationS
                              {"ntraj": ntraj, "seed": seed, "dt": dt, "n_unassigned": n_none,
                               "max_energy_drift": float(drift), "R": run.R[:, :, 0], "P": run.P[:, :, 0],
                               "actions_adiabatic": e})
+
+
+def load_packaged_reference() -> dict:
+    """The stored exact reference of the shipped KCl scenario (``mapdyn/data/diatomic_reference.json``).
+
+    Keys: ``scenario`` (position, position_width Bohr; initial_state; momentum a.u.; t_final,
+    record_interval a.u.), ``table_times`` (a.u.), ``exact_upper_population`` (upper-adiabat
+    population at those times), ``exact_convergence`` (max |ΔP| between two exact grids), the
+    measured mapping results of the comparison run (``mapping``: method → populations and standard
+    errors at the table times, ntraj, seed, dt).  Written by tests/reference/make_diatomic_comparison.py.
+    """
+    path = str(resources.files("mapdyn") / "data" / "diatomic_reference.json")
+    if not os.path.exists(path):
+        raise FileNotFoundError(f"{path}: the diatomic exact reference is not installed")
+    with open(path) as fh:
+        return json.load(fh)

@@ -63,7 +63,7 @@ def main(argv=None) -> int:
     from mapdyn.dynamics import MappingDynamics
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--study", default=os.path.join(ROOT, "studies", "diatomic_kcl"))
+    ap.add_argument("--study", default=os.path.join(ROOT, "study_diatomic_kcl"))
     ap.add_argument("--ntraj", type=int, default=5)
     ap.add_argument("--nsteps", type=int, default=400)
     ap.add_argument("--dt", type=float, default=20.0, help="time step in a.u.")

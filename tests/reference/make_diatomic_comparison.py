@@ -77,7 +77,7 @@ def get_grid(study: str, rescan: bool) -> tuple[DiatomicGrid, float]:
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--study", default=os.path.join(ROOT, "studies", "diatomic_kcl"))
+    ap.add_argument("--study", default=os.path.join(ROOT, "study_diatomic_kcl"))
     ap.add_argument("--rescan", action="store_true")
     ap.add_argument("--ntraj", type=int, default=2000)
     ap.add_argument("--seed", type=int, default=20261202)
@@ -120,6 +120,19 @@ def main(argv=None) -> int:
             p, e = runs[name].populations[i, 1], runs[name].errors[i, 1]
             row.append(f"{p:.3f} ± {e:.3f} ({p - exact.populations[i, 1]:+.3f})")
         lines.append("| " + " | ".join(row) + " |")
+    # first-pass transition probability: population moved to the ground adiabat once the packet has
+    # crossed outward, before the bound part returns (t = 30000 a.u., exact P2 flat from 14000 to 48000)
+    i1 = int(np.argmin(np.abs(times - 30000.0)))
+    hop = {"exact": 1.0 - exact.populations[i1, 1]}
+    lines.append("")
+    lines.append("| first outward pass (t = 30000 a.u.) | exact | SQC square | SQC triangle | Ehrenfest |")
+    lines.append("|---|---:|---:|---:|---:|")
+    row = [f"{hop['exact']:.3f}"]
+    for name in METHODS:
+        p, e = 1.0 - runs[name].populations[i1, 1], runs[name].errors[i1, 1]
+        hop[name] = p
+        row.append(f"{p:.3f} ± {e:.3f} ({p - hop['exact']:+.3f})")
+    lines.append("| transition probability to the ground adiabat | " + " | ".join(row) + " |")
     summary = {}
     for name in METHODS:
         d = runs[name].populations[:, 1] - exact.populations[:, 1]
@@ -148,8 +161,13 @@ def main(argv=None) -> int:
     ref = {"scenario": {"position": sc.position, "position_width": sc.position_width,
                         "initial_state": sc.initial_state, "momentum": sc.momentum, "t_final": sc.t_final,
                         "record_interval": sc.record_interval},
+           "first_pass_time": 30000.0, "exact_first_pass_transition": float(hop["exact"]),
            "table_times": table_times, "exact_upper_population": [float(exact.populations[i, 1]) for i in idx],
            "exact_convergence": conv, "mapping_dt": 10.0,
+           "mapping": {name: {"options": METHODS[name].describe(), "ntraj": args.ntraj, "seed": args.seed,
+                              "upper_population": [float(runs[name].populations[i, 1]) for i in idx],
+                              "standard_error": [float(runs[name].errors[i, 1]) for i in idx]}
+                       for name in METHODS},
            "source": "tests/reference/make_diatomic_comparison.py"}
     if args.update_package_data:
         shutil.copyfile(os.path.join(args.study, "diatomic_grid.npz"), packaged_grid_path() + ".tmp")
