@@ -317,3 +317,20 @@ def test_help_and_usage_errors(tmp_path, capsys):
         assert word in out
     assert main(["status", str(tmp_path)]) == 2
     assert "not a study folder" in capsys.readouterr().err
+
+
+def test_molecular_extend_adds_trajectories_with_the_same_initial_conditions(tmp_path, monkeypatch):
+    """Rows appended by ``extend`` equal those of a study created with more trajectories at once."""
+    monkeypatch.chdir(tmp_path)
+    one = write(tmp_path, "one.toml", H2.format(duration="1 fs").replace("trajectories = 2", "trajectories = 1"))
+    two = write(tmp_path, "two.toml", H2.format(duration="1 fs"))
+    assert main(["run", one, "--output", "a", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    first = file_ids([str(tmp_path / "a" / "trajectories" / "traj_000000" / f)
+                      for f in os.listdir(tmp_path / "a" / "trajectories" / "traj_000000")])
+    assert main(["extend", "a", "--trajectories", "2", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert main(["run", two, "--output", "b", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    assert file_ids(list(first)) == first
+    ia, _ = read_h5(tmp_path / "a" / "initial_conditions.h5", ["positions_bohr", "momenta_au", "rng_states_json"])
+    ib, _ = read_h5(tmp_path / "b" / "initial_conditions.h5", ["positions_bohr", "momenta_au", "rng_states_json"])
+    assert np.array_equal(ia["positions_bohr"], ib["positions_bohr"]) and ia["rng_states_json"] == ib["rng_states_json"]
+    assert_equal_dicts(traj_frames(str(tmp_path / "a")), traj_frames(str(tmp_path / "b")))
