@@ -165,6 +165,8 @@ def test_kill_and_resume_batched_model_is_bitwise(tmp_path):
     res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
     steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
     assert steps == (8 - n_before) * 30 * 600  # only the missing chunks were computed
+    print(f"batched: killed with {n_before}/8 chunks written; resume computed {steps} trajectory-steps "
+          f"= {8 - n_before} chunks x 30 x 600")
     assert file_ids(before) == ids  # finished chunks untouched
     assert_equal_dicts(chunk_arrays(folder), chunk_arrays(ref))
 
@@ -196,6 +198,7 @@ def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
     res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
     steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
     assert steps == 3 * 300 - done_steps  # nothing already checkpointed was recomputed
+    print(f"on the fly: killed at traj0 300/300, traj1 {m1['step']}/300, traj2 0/300; resume computed {steps} steps")
     assert file_ids(finished_files + partial_chunks) == ids
     assert_equal_dicts(traj_frames(folder), traj_frames(ref))
     for i in range(3):
@@ -334,3 +337,31 @@ def test_molecular_extend_adds_trajectories_with_the_same_initial_conditions(tmp
     ib, _ = read_h5(tmp_path / "b" / "initial_conditions.h5", ["positions_bohr", "momenta_au", "rng_states_json"])
     assert np.array_equal(ia["positions_bohr"], ib["positions_bohr"]) and ia["rng_states_json"] == ib["rng_states_json"]
     assert_equal_dicts(traj_frames(str(tmp_path / "a")), traj_frames(str(tmp_path / "b")))
+
+
+def test_kill_and_resume_molecular_is_bitwise(tmp_path):
+    """kill -9 of ``mapdyn run`` on an SA-CASSCF study, then ``resume``: identical to an
+    uninterrupted run (the saved guess makes every restarted backend call take the same branch)."""
+    toml = write(tmp_path, "h2.toml", H2.format(duration="8 fs").replace("workers = 2", "workers = 1"))
+    ref = str(tmp_path / "ref")
+    mapdyn("run", toml, "--output", ref, "--no-analysis", "--workers", "2", cwd=tmp_path)
+    folder = tmp_path / "killed"
+    t0, t1 = (folder / "trajectories" / f"traj_00000{i}" for i in (0, 1))
+
+    def progressed():
+        m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()
+        return m0 is not None and m0["step"] == 16 and m1 is not None and m1["step"] >= 4
+
+    proc = subprocess.Popen([sys.executable, "-m", "mapdyn", "run", toml, "--output", str(folder), "--no-analysis"],
+                            cwd=tmp_path, env=ENV, start_new_session=True, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    assert _kill_when(proc, progressed), "the run ended before it could be killed"
+    m1 = TrajectoryStore(t1).read_meta()
+    kept = [str(t0 / f) for f in os.listdir(t0)] + [TrajectoryStore(t1).chunk_path(c) for c in range(m1["chunks"])]
+    ids = file_ids(kept)
+    res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
+    steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
+    assert steps == 16 - m1["step"]
+    print(f"SA-CASSCF: killed at traj0 16/16, traj1 {m1['step']}/16; resume computed {steps} steps")
+    assert file_ids(kept) == ids
+    assert_equal_dicts(traj_frames(str(folder)), traj_frames(ref))
