@@ -19,14 +19,11 @@ square windows and t < 0.5/Δ the allowance is therefore 0.12 + 3σ.
 """
 from __future__ import annotations
 
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent / "reference"))
-import sqc_vs_heom as cmp  # noqa: E402
+import mapdyn.heom_cases as cmp  # noqa: E402
 
 from mapdyn.options import MethodOptions  # noqa: E402
 

@@ -41,6 +41,7 @@ SCATTERING_TOLERANCE = {"tully1": 0.07, "tully2": 0.07, "tully3": 0.10, "wide_cr
 SCATTERING_OBSERVABLE = {"tully1": ("transmission", 1), "tully2": ("transmission", 0),
                          "tully3": ("reflection", 0), "wide_crossing": ("transmission", 1)}
 HEOM_TOLERANCE = 0.1
+HEOM_MIN_TRAJECTORIES = 10000
 QUICK_MOMENTUM = {"tully1": 20.0, "tully2": 30.0, "tully3": 10.0}
 
 
@@ -110,11 +111,13 @@ def _heom_case(name: str) -> ValidationCase | None:
     def run(options: MethodOptions, ntraj: int, seed: int):
         from .heom_cases import load_reference, spin_boson_mapping
         ref = load_reference(name)
-        res = spin_boson_mapping(name, options, ntraj=ntraj, seed=seed)
-        diff = np.abs(res.sigma_z() - ref["sigma_z"])
+        # the compared number is a maximum over 241 times, so its noise is ~3 standard errors:
+        # use at least 10000 trajectories (σ ≈ 0.01) to keep it well inside the 0.1 tolerance
+        res = spin_boson_mapping(name, options, ntraj=max(ntraj, HEOM_MIN_TRAJECTORIES), seed=seed)
+        diff = np.abs(res.sigma_z - ref["sigma_z"])
         j = int(np.nanargmax(diff))
         err = res.sigma_z_error[j] if res.sigma_z_error is not None else np.nan
-        return float(ref["sigma_z"][j]), float(res.sigma_z()[j]), float(diff[j]), float(err)
+        return float(ref["sigma_z"][j]), float(res.sigma_z[j]), float(diff[j]), float(err)
 
     return ValidationCase(f"{name} max|d<sz>|", run, HEOM_TOLERANCE, quick=(name == "spin_boson_biased"))
 

@@ -1,7 +1,7 @@
 """README figures: exact HEOM vs SQC (square and triangle windows) vs Ehrenfest on the stored cases.
 
 HEOM reference: Y. Tanimura & R. Kubo, J. Phys. Soc. Jpn. 58, 101 (1989), computed with QuTiP by
-``make_heom_reference.py``.  Mapping runs: ``sqc_vs_heom.py`` (symmetrized zero point, thermal
+``make_heom_reference.py``.  Mapping runs: ``mapdyn.heom_cases`` (symmetrized zero point, thermal
 Wigner Debye bath, fixed seeds).  Regenerate (a few minutes on one core)::
 
     OMP_NUM_THREADS=1 python tests/reference/make_heom_figures.py
@@ -16,8 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-import sqc_vs_heom as cmp  # noqa: E402
+import mapdyn.heom_cases as cmp  # noqa: E402
 
 from mapdyn.options import MethodOptions  # noqa: E402
 from mapdyn.plots import STATE_COLOURS, new_figure, save_figure  # noqa: E402

@@ -1,4 +1,4 @@
-"""Mapping-trajectory runs on the stored HEOM validation cases (shared by the validation test and
+"""Mapping-trajectory runs on the stored HEOM validation cases (shared by `mapdyn validate`, the tests and
 the figure script).
 
 The models are built from the parameters stored in ``src/mapdyn/data/heom_<case>.npz`` (written by
@@ -14,10 +14,10 @@ from importlib import resources
 
 import numpy as np
 
-from mapdyn.models.spin_boson import ExcitonTransferModel, SpinBoson, thermal_bath_ensemble
-from mapdyn.options import MethodOptions
-from mapdyn.propagators import run_diabatic
-from mapdyn.propagators_harmonic import HarmonicBathIntegrator
+from .models.spin_boson import ExcitonTransferModel, SpinBoson, thermal_bath_ensemble
+from .options import MethodOptions
+from .propagators import run_diabatic
+from .propagators_harmonic import HarmonicBathIntegrator
 
 
 def load_reference(name: str) -> dict:
