@@ -21,7 +21,7 @@ def test_builtin_cases_cover_the_benchmark_set():
     for model in ("tully1", "tully2", "tully3", "wide_crossing", "spin_boson_symmetric", "spin_boson_biased"):
         assert any(n.startswith(model) for n in names), model
     quick = [c.name.split()[0] for c in validate.builtin_cases() if c.quick]
-    assert len(quick) == len(set(quick))  # one quick case per model
+    assert len(quick) == len(set(quick)) == 6  # one quick case per model
 
 
 def test_table_numbers_equal_the_underlying_functions():

@@ -23,6 +23,8 @@ examples:
   mapdyn resume runs/model_tully1            continue after Ctrl-C, a crash or a reboot
   mapdyn extend runs/model_tully1 --trajectories 400 --duration "3000 au"
   mapdyn analyze runs/model_tully1           (re)write the report folder
+  mapdyn check inputs/ethylene_tiny.toml     preflight: finite-difference checks and core-hours
+  mapdyn validate --quick                    the method's accuracy on built-in exact benchmarks
 
 A study folder holds everything: the input, initial conditions, checkpoints of every
 trajectory and the report.  Work is never repeated: run, resume and extend only compute
@@ -93,6 +95,13 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Run the electronic backend once at the first geometry, compare gradients and "
                                    "couplings with finite differences and estimate the core-hours of the study.")
     c.add_argument("study", metavar="STUDY.toml", help="study input file")
+
+    v = sub.add_parser("validate", help="accuracy table of the method on the built-in exact benchmarks",
+                       description="Run Tully models 1-3, the Landau-Zener crossing, two spin-boson cases (HEOM) "
+                                   "and, when cached, the real-diatomic case; print exact vs method with "
+                                   "standard errors and tolerances. Exit code 0 only if every case passes.")
+    from .validate import add_arguments
+    add_arguments(v)
     return p
 
 
@@ -294,6 +303,11 @@ def _cmd_check(args) -> int:
     return 0 if report.passed else 1
 
 
+def _cmd_validate(args) -> int:
+    from .validate import main_from_args
+    return main_from_args(args)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``mapdyn`` console script; returns the exit code."""
     parser = build_parser()
@@ -302,7 +316,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help()
         return 2
     handler = {"run": _cmd_run, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
-               "analyze": _cmd_analyze, "check": _cmd_check}[args.command]
+               "analyze": _cmd_analyze, "check": _cmd_check, "validate": _cmd_validate}[args.command]
     return handler(args)
 
 

@@ -701,12 +701,6 @@ def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None
     except ImportError:
         log("analysis modules not available; skipping the report")
         return None
-    tset = load_trajectory_set(study)
-    cfg = study.config
-    kw = {}
-    if cfg.analysis and hasattr(analysis, "settings_from_table"):
-        kw = analysis.settings_from_table(cfg.analysis, folder=study.folder,
-                                          symbols=None if cfg.molecule is None else cfg.molecule.symbols)
-    results = analysis.analyze(tset, **kw)
+    results = analysis.analyze_study(study)
     out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
     return out.folder

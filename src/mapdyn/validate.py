@@ -119,7 +119,7 @@ def _heom_case(name: str) -> ValidationCase | None:
         err = res.sigma_z_error[j] if res.sigma_z_error is not None else np.nan
         return float(ref["sigma_z"][j]), float(res.sigma_z[j]), float(diff[j]), float(err)
 
-    return ValidationCase(f"{name} max|d<sz>|", run, HEOM_TOLERANCE, quick=(name == "spin_boson_biased"))
+    return ValidationCase(f"{name} max|d<sz>|", run, HEOM_TOLERANCE, quick=True)
 
 
 def _diatomic_case() -> ValidationCase | None:
@@ -160,7 +160,7 @@ def run_validation(options: MethodOptions, quick: bool = False, ntraj: int | Non
                    progress: Callable[[str], None] | None = None) -> list[CaseResult]:
     """Run the built-in cases (``quick``: one case per model, fewer trajectories) with ``options``."""
     if ntraj is None:
-        ntraj = 600 if quick else 2000
+        ntraj = 1500 if quick else 2000
     if isinstance(ntraj, bool) or not isinstance(ntraj, (int, np.integer)) or ntraj < 10:
         raise ValueError(f"ntraj={ntraj!r} is not allowed; use an integer of at least 10")
     cases = [c for c in builtin_cases() if c.quick or not quick]
@@ -198,8 +198,8 @@ def add_arguments(parser) -> None:
     parser.add_argument("--window", default="triangle", help="square or triangle (default triangle)")
     parser.add_argument("--zero-point", dest="zero_point", default="symmetrized",
                         help="symmetrized, adjusted or fixed (default symmetrized)")
-    parser.add_argument("--quick", action="store_true", help="one case per model, 600 trajectories (< 1 minute)")
-    parser.add_argument("--trajectories", type=int, default=None, help="trajectories per case (default 2000, quick 600)")
+    parser.add_argument("--quick", action="store_true", help="one case per model, 1500 trajectories (< 1 minute)")
+    parser.add_argument("--trajectories", type=int, default=None, help="trajectories per case (default 2000, quick 1500)")
     parser.add_argument("--seed", type=int, default=2024, help="ensemble seed (default 2024)")
     parser.add_argument("--json", dest="json_path", default=None, help="also write the rows to this JSON file")
 
