@@ -14,6 +14,8 @@ import sys
 import time
 from typing import Sequence
 
+from .cluster import ClusterError
+
 __all__ = ["main", "build_parser"]
 
 _EPILOG = """\
@@ -153,7 +155,10 @@ def _execute(study, args) -> int:
         if stopper.requested:
             _log(f"stopped before the dynamics; continue with: mapdyn resume {study.folder}")
             return 130
-        executor = _executor(args, cfg)
+        try:
+            executor = _executor(args, cfg)
+        except (ClusterError, ValueError) as err:
+            return _error(str(err), 1)
         kind = "chunks of model trajectories" if study.batched else "trajectories"
         workers = args.workers or cfg.ensemble.workers
         _log(f"running {study.ntraj} trajectories ({kind}) of {study.nsteps} steps on "

@@ -83,6 +83,7 @@ class ConfigError(ValueError):
 
     def __init__(self, key: str, message: str):
         self.key = key
+        self.message = message
         if message.startswith(("=", "is ", "section ", "applies ", "needs ", "gives ")):
             text = f"{key} {message}"
         elif message.startswith((" ", ":")):
@@ -90,6 +91,9 @@ class ConfigError(ValueError):
         else:
             text = f"{key}: {message}"
         super().__init__(text)
+
+    def __reduce__(self):
+        return (type(self), (self.key, self.message))
 
 
 def _did_you_mean(word: str, allowed) -> str:
