@@ -21,6 +21,18 @@ conserved energy Σ P²/2M + Σ_k ρ_kk E_k.  One step (velocity-Verlet shape, o
    H_eff = diag E − i V·d interpolated between the two ends;
 4. F(t+Δt);  P ← P + F Δt/2.
 
+Force averaging (``force_averaging=True``, the default; own scheme, DESIGN §5b): the coherences
+ρ_kl (k ≠ l) rotate as e^{−i(E_k − E_l)t}, so when ΔE·Δt is not small, kicks with ρ(t) sample the
+off-diagonal force at a nearly fixed phase and the energy drifts.  Each half kick instead uses ρ̄, the
+mean of ρ over the adjacent electronic half step with frozen energies (the opening kick over
+[t, t+Δt/2] with E(t), the closing kick over [t+Δt/2, t+Δt] with E(t+Δt), closed form
+ρ̄_kl = ½ Re(z_k z_l* e^{∓iω_kl Δt/4}) sinc(ω_kl Δt/4), ω_kl = E_k − E_l).  The two kicks then give
+the nuclei Δt·(mean ρ over the step), the same energy the oscillators exchange; the scheme is
+symmetric under time reversal (P → −P, z → z*), reduces to the plain kicks as Δt → 0 (second order
+is kept) and costs no backend call.  A one-time warning, recorded in :attr:`MappingDynamics.metadata`,
+reports when max ΔE_kl·Δt > ``GAP_PHASE_LIMIT`` (1 rad) between states with |V·d_kl|·Δt >
+``GAP_COUPLING_FLOOR`` (1e-3): the step does not resolve the electronic gap.
+
 No coupling vectors (TDA/TDDFT-like backends, DESIGN §5b): σ(t+Δt/2) = (S − Sᵀ)/(2Δt)
 (Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994)), the force uses the velocity-projected
 coupling d_kl ≈ σ_kl V/|V|² with σ and V at the force time extrapolated linearly from the last two
@@ -52,12 +64,19 @@ from .options import MethodOptions
 from .windows import sample_mapping_variables, window_assignment, window_indicators
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum", "AMU_IN_ELECTRON_MASSES",
-           "PROJECTION_WARNING"]
+           "PROJECTION_WARNING", "GAP_WARNING"]
 
 #: 1 amu in electron masses (ase.units).
 AMU_IN_ELECTRON_MASSES = units._amu / units._me
 #: ASE momentum unit (amu·Å/ASE time) in atomic units of momentum.
 _ASE_MOMENTUM_IN_AU = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr
+
+#: Prefix of the once-per-run warning that the step does not resolve the electronic gap.
+GAP_WARNING = "time step does not resolve the electronic gap"
+#: ΔE·Δt (rad) above which the gap warning is issued (one electronic period = 2π rad).
+GAP_PHASE_LIMIT = 1.0
+#: |V·d_kl|·Δt below which a pair counts as uncoupled for the gap warning.
+GAP_COUPLING_FLOOR = 1e-3
 
 PROJECTION_WARNING = ("no coupling vectors from the backend: the off-diagonal force uses the "
                       "velocity-projected coupling d ≈ σ V/|V|², which misses the force component "
@@ -179,6 +198,8 @@ class MappingDynamics(MolecularDynamics):
     on_backend_error : "raise" (default) or "stop" (the trajectory stops, reason recorded).
     restart_state : a :class:`DriverState` to continue from instead of starting anew (no backend
         call, no random draws).
+    force_averaging : half kicks with ρ averaged over the adjacent electronic half step (default,
+        see the module docstring); False gives the plain velocity-Verlet kicks with ρ(t).
 
     Records: :attr:`frames` is a list of dicts, one per recorded step, with ``step``, ``time_au``,
     ``positions_bohr`` (N, 3), ``momenta_au`` (N, 3), ``energies_Eh`` (F,), ``actions`` (F,),
@@ -199,7 +220,7 @@ class MappingDynamics(MolecularDynamics):
                  stop_on_drift: bool = False, record_interval: int = 1, geometry_file: str | None = None,
                  zero_linear_momentum: bool = False, zero_angular_momentum: bool = False,
                  on_backend_error: str = "raise", restart_state: DriverState | None = None,
-                 logfile: Any = None, loginterval: int = 1):
+                 logfile: Any = None, loginterval: int = 1, force_averaging: bool = True):
         options = MethodOptions() if options is None else options
         if not isinstance(options, MethodOptions):
             raise ValueError(f"options must be a MethodOptions, got {type(options).__name__}")
@@ -244,6 +265,9 @@ class MappingDynamics(MolecularDynamics):
         self.record_interval = int(record_interval)
         self.geometry_file = None if geometry_file is None else os.fspath(geometry_file)
         self.on_backend_error = on_backend_error
+        if not isinstance(force_averaging, (bool, np.bool_)):
+            raise ValueError(f"force_averaging={force_averaging!r} is not allowed; it must be True or False")
+        self.force_averaging = bool(force_averaging)
         self.masses_au = atoms.get_masses() * AMU_IN_ELECTRON_MASSES  # (N,) electron masses
         if np.any(self.masses_au <= 0):
             raise ValueError("atoms have non-positive masses; set them with atoms.set_masses (amu)")
@@ -254,7 +278,8 @@ class MappingDynamics(MolecularDynamics):
         self._settings = {"timestep_au": self.dt_au, "nstates": self.nstates, "natoms": len(atoms),
                           "options": dataclasses.asdict(options), "initial_state": self.initial_state,
                           "electronic_propagation": electronic_propagation, "substeps": self.substeps,
-                          "velocity_floor": self.velocity_floor, "probe_fraction": self.probe_fraction}
+                          "velocity_floor": self.velocity_floor, "probe_fraction": self.probe_fraction,
+                          "force_averaging": self.force_averaging}
         if restart_state is not None:
             self.set_state(restart_state)
             return
@@ -328,9 +353,40 @@ class MappingDynamics(MolecularDynamics):
         w = (t - tb) / (tb - ta)
         return sb + w * (sb - sa), vb + w * (vb - va)
 
-    def _force(self, result: ElectronicResult, x, p, gamma, t: float, history: list) -> np.ndarray:
-        """F = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr, (N, 3)), §7.5; projected d on the no-NAC path."""
+    def averaged_density(self, x: np.ndarray, p: np.ndarray, gamma: np.ndarray | None, energies: np.ndarray,
+                         window: float) -> np.ndarray:
+        """ρ̄ (F, F): ρ averaged over the free electronic motion during ``window`` (a.u. time, signed).
+
+        With frozen energies z_k(τ) = z_k e^{−iE_k τ}, so ρ_kl(τ) = ½ Re(z_k z_l* e^{−iω_kl τ}),
+        ω_kl = E_k − E_l (Eh), and the mean over τ ∈ [0, h] (h < 0: [h, 0]) is
+
+            ρ̄_kl = ½ Re(z_k z_l* e^{−iω_kl h/2}) sinc(ω_kl h/2),   sinc(u) = sin(u)/u,
+
+        (own derivation, elementary integral).  The diagonal (ω = 0) is unchanged, so the
+        zero-point treatment is untouched; ρ̄ → ρ as h → 0.
+        """
         rho = self.density(x, p, gamma)
+        E = np.asarray(energies, dtype=float)
+        omega = E[:, None] - E[None, :]
+        u = 0.5 * omega * window
+        z = x + 1j * p
+        coherence = 0.5 * np.real(z[:, None] * z[None, :].conj() * np.exp(-1j * u)) * np.sinc(u / np.pi)
+        idx = np.arange(rho.shape[0])
+        off = idx[:, None] != idx[None, :]
+        rho[off] = coherence[off]
+        return rho
+
+    def _force(self, result: ElectronicResult, x, p, gamma, t: float, history: list,
+               window: float = 0.0) -> np.ndarray:
+        """F = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr, (N, 3)), §7.5; projected d on the no-NAC path.
+
+        ``window`` (a.u. time, signed): with force averaging on, the off-diagonal ρ is the mean
+        over the adjacent electronic half step (:meth:`averaged_density`); 0 gives ρ(t).
+        """
+        if self.force_averaging and window != 0.0:
+            rho = self.averaged_density(x, p, gamma, result.energies, window)
+        else:
+            rho = self.density(x, p, gamma)
         E = np.asarray(result.energies)
         G = np.asarray(result.gradients)
         F = -np.einsum("k,kna->na", np.diag(rho).copy(), G)
@@ -344,6 +400,24 @@ class MappingDynamics(MolecularDynamics):
             if np.sqrt(v2) > self.velocity_floor:
                 F -= np.sum(weight * sigma) * V / v2
         return F
+
+    def _check_gap_resolution(self, st: DriverState, energies: np.ndarray, sigma: np.ndarray) -> None:
+        """Warn once (recorded in the state) when max ΔE_kl·Δt > GAP_PHASE_LIMIT over pairs with
+        |σ_kl|·Δt > GAP_COUPLING_FLOOR (σ_kl = V·d_kl at mid-step)."""
+        if any(w.startswith(GAP_WARNING) for w in st.warnings):
+            return
+        E = np.asarray(energies, dtype=float)
+        phase = np.abs(E[:, None] - E[None, :]) * self.dt_au
+        coupled = np.abs(np.asarray(sigma)) * self.dt_au > GAP_COUPLING_FLOOR
+        np.fill_diagonal(coupled, False)
+        if np.any(coupled) and phase[coupled].max() > GAP_PHASE_LIMIT:
+            k, l = np.unravel_index(np.argmax(np.where(coupled, phase, -1.0)), phase.shape)
+            msg = (f"{GAP_WARNING}: max ΔE·Δt = {phase[k, l]:.2f} rad > {GAP_PHASE_LIMIT} between coupled states "
+                   f"{min(k, l)} and {max(k, l)} (|V·d|·Δt = {abs(sigma[k, l]) * self.dt_au:.1e}) at step {st.step}"
+                   + ("; forces are averaged over the electronic half steps" if self.force_averaging else
+                      "; force_averaging is off, expect energy drift"))
+            st.warnings.append(msg)
+            warnings.warn(msg, stacklevel=4)
 
     def _total_energy(self, state: DriverState) -> float:
         """Σ P²/2M + Σ_k ρ_kk E_k (Eh)."""
@@ -395,7 +469,11 @@ class MappingDynamics(MolecularDynamics):
             return
         t_start = _time.perf_counter()
         dt = self.dt_au
-        P_half = st.momenta + 0.5 * dt * st.force
+        if self.force_averaging:  # opening kick: ρ averaged over the first electronic half step
+            F_open = self._force(st.result, st.x, st.p, st.gamma_adjusted, st.time, st.sigma_history, 0.5 * dt)
+        else:
+            F_open = st.force
+        P_half = st.momenta + 0.5 * dt * F_open
         V = P_half / self._M
         R_new = st.positions + dt * V
         try:
@@ -413,7 +491,8 @@ class MappingDynamics(MolecularDynamics):
         if new.couplings is None:
             history = (history + [(st.time + 0.5 * dt, sigma_mid, V.copy())])[-2:]
         x, p = z.real.copy(), z.imag.copy()
-        F_new = self._force(new, x, p, st.gamma_adjusted, t_new, history)
+        F_new = self._force(new, x, p, st.gamma_adjusted, t_new, history, -0.5 * dt)  # closing kick
+        self._check_gap_resolution(st, new.energies, sigma_mid)
         st.momenta = P_half + 0.5 * dt * F_new
         st.positions, st.x, st.p, st.result, st.force = R_new, x, p, new, F_new
         st.sigma_history = history
