@@ -359,3 +359,65 @@ def test_doublet_cation_states_gradients_and_nacs():
         assert np.max(np.abs(ref.gradients[:, atom, xyz] - de)) <= 1e-4
         d = ref.couplings[0, 1, atom, xyz]
         assert abs(ds[0, 1] - d) <= 0.02 * abs(d) and abs(ds[1, 0] + d) <= 0.02 * abs(d)
+
+
+ETHYLENE_POS = np.array([[0.0, 0.0, 0.6695], [0.0, 0.0, -0.6695], [0.0, 0.9289, 1.2321], [0.0, -0.9289, 1.2321],
+                         [0.0, 0.9289, -1.2321], [0.0, -0.9289, -1.2321]]) / 0.52917721092  # Angstrom -> Bohr
+
+
+def _ethylene_path(backend, n_steps=3, step=0.01):
+    """Cold start at planar ethylene, then warm steps of ``step`` Bohr along a fixed random direction."""
+    rng = np.random.default_rng(1)
+    direction = rng.normal(size=ETHYLENE_POS.shape)
+    direction *= step / np.linalg.norm(direction)
+    results = [backend.compute(ETHYLENE_POS, need_gradients=False)]
+    for i in range(1, n_steps + 1):
+        results.append(backend.compute(ETHYLENE_POS + i * direction, guess=results[-1].guess, need_gradients=False))
+    return results
+
+
+@pytest.mark.filterwarnings("ignore:active space changed")
+def test_cold_start_saddle_is_left_and_path_stays_on_one_solution():
+    # Ethylene SA2-CAS(2,2)/STO-3G at the planar geometry of inputs/ethylene_tiny.toml.  From RHF
+    # orbitals the SA-CASSCF converges to the pi/pi* stationary point, a saddle of the state-averaged
+    # energy: 0.01 Bohr off the planar geometry the warm start slides to the sigma/pi* solution,
+    # 8.9 mEh lower in SA energy (measured), S1 drops by ~60 mEh and the state overlap is ~0.01.
+    old = CASSCFBackend(["C", "C", "H", "H", "H", "H"], ncas=2, nelecas=2, nstates=2,
+                        cold_start_alternatives=0, stability_kicks=0, overlap_retry=0.0)
+    old_path = _ethylene_path(old, n_steps=1)
+    assert old_path[1].diagnostics["min_overlap"] < 0.5
+    assert abs(old_path[1].energies[1] - old_path[0].energies[1]) > 0.03
+    # With the stability search the cold start lands on the lower solution and the warm steps
+    # follow it.  Thresholds: min overlap 0.9 (a smooth step keeps overlaps > 0.99, measured); energy
+    # change per step < 5 mEh (|dE| <= |grad E| * 0.004 Bohr with |grad E| ~ 0.1 Eh/Bohr gives
+    # < 1 mEh; the jump is 60 mEh).  The path stops at 0.012 Bohr: near 0.02 Bohr along this
+    # direction the sigma(CC)/pi* solution ends and the warm start passes to the sigma(CH)/pi* one
+    # (2.6 mEh, overlap 0.33, measured), a crossing of CASSCF solutions that no start can avoid.
+    new = CASSCFBackend(["C", "C", "H", "H", "H", "H"], ncas=2, nelecas=2, nstates=2)
+    path = _ethylene_path(new, n_steps=3, step=0.004)
+    assert np.mean(path[0].energies) < np.mean(old_path[0].energies) - 5e-3
+    for prev, cur in zip(path[:-1], path[1:]):
+        assert cur.diagnostics["min_overlap"] > 0.9
+        assert cur.diagnostics["active_overlap_min_singular"] > 0.9
+        assert np.max(np.abs(cur.energies - prev.energies)) < 5e-3
+        assert "overlap_retry" not in cur.diagnostics
+    assert any(a["what"].startswith("stability search") for a in path[0].diagnostics["attempts"])
+    # the search is deterministic: a second cold start gives the same solution
+    again = new.compute(ETHYLENE_POS, need_gradients=False)
+    assert np.allclose(again.energies, path[0].energies, atol=1e-9)
+
+
+@pytest.mark.filterwarnings("ignore:active space changed")
+def test_overlap_retry_is_recorded_and_keeps_lowest_sa_energy():
+    # Without the cold-start search the first step jumps off the saddle (min overlap ~0.01); the
+    # retry (damped warm start, cold start with the search) cannot bring back a saddle, so it keeps
+    # the lowest SA energy among equally poor overlaps and records every candidate.
+    backend = CASSCFBackend(["C", "C", "H", "H", "H", "H"], ncas=2, nelecas=2, nstates=2,
+                            cold_start_alternatives=0, stability_kicks=0)
+    path = _ethylene_path(backend, n_steps=1)
+    retry = path[1].diagnostics["overlap_retry"]
+    assert len(retry["candidates"]) == 3
+    kept = [c for c in retry["candidates"] if c["what"] == retry["kept"]][0]
+    assert kept["sa_energy"] == pytest.approx(np.mean(path[1].energies), abs=1e-9)
+    assert kept["sa_energy"] <= min(c["sa_energy"] for c in retry["candidates"]
+                                    if c["min_overlap"] >= kept["min_overlap"] - 0.1) + 1e-12

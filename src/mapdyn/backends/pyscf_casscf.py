@@ -189,6 +189,20 @@ class CASSCFBackend:
     gradient_method : ``"one_pass"`` (default: all gradients and NACs with one shared pass over the
         derivative integrals, :mod:`mapdyn.backends.casscf_response`; identical results) or
         ``"plain"`` (one PySCF call per gradient/NAC).  With density fitting the plain path is used.
+    cold_start_alternatives : stability search of every cold start: besides the default (or
+        ``cas_orbitals``) choice, re-converge with the lowest active orbital swapped for each of the
+        next this-many lower SCF orbitals and the highest one for each of the next this-many higher
+        ones, and keep the lowest state-averaged energy.  0 disables the swaps.
+    stability_kicks : after the swaps, re-converge this many times from the best orbitals rotated by
+        a fixed pseudo-random unitary exp(K) (max|K| = ``stability_kick_size`` rad, fixed seeds, so the
+        search is deterministic); a lower state-averaged energy is kept.  A plain SA-CASSCF cold start
+        from SCF orbitals can converge to a saddle point of the state-averaged energy (ethylene
+        SA2-CAS(2,2)/STO-3G at a planar geometry: the π/π* solution, 9 mEh above the σ/π*
+        minimum), which the next warm-started step leaves: a jump of 50–70 mEh in S1.
+    overlap_retry : when the smallest matched state overlap with the previous step falls below this,
+        the step is re-solved with a damped warm start and with a cold start (with the stability
+        search); the candidate with the largest smallest overlap is kept, near-ties (within 0.1) go
+        to the lower state-averaged energy.  All candidates are in ``diagnostics["overlap_retry"]``.
     """
 
     def __init__(self, symbols: Sequence[str], basis: str = "sto-3g", ncas: int = 2,
@@ -197,7 +211,9 @@ class CASSCFBackend:
                  nac_form: str = "full", spin_purity: str = "shift", spin_shift: float = 1.0,
                  spin_tolerance: float = 1e-3, conv_tol: float = 1e-10, conv_tol_grad: float = 1e-6,
                  max_cycle_macro: int = 50, active_space_warning: float = 0.9,
-                 gradient_method: str = "one_pass", auxbasis: str | None = None):
+                 gradient_method: str = "one_pass", auxbasis: str | None = None,
+                 cold_start_alternatives: int = 3, stability_kicks: int = 2, stability_kick_size: float = 0.1,
+                 overlap_retry: float = 0.5):
         self.symbols = [str(s) for s in symbols]
         if not self.symbols:
             raise ValueError("symbols: need at least one atom")
@@ -244,6 +260,16 @@ class CASSCFBackend:
         if gradient_method not in ("plain", "one_pass"):
             raise ValueError(f"gradient_method must be 'plain' or 'one_pass', got {gradient_method!r}")
         self.gradient_method = gradient_method
+        if int(cold_start_alternatives) < 0 or int(stability_kicks) < 0:
+            raise ValueError("cold_start_alternatives and stability_kicks must be >= 0")
+        self.cold_start_alternatives = int(cold_start_alternatives)
+        self.stability_kicks = int(stability_kicks)
+        if not 0.0 < float(stability_kick_size) <= 1.0:
+            raise ValueError(f"stability_kick_size must be in (0, 1] rad, got {stability_kick_size}")
+        self.stability_kick_size = float(stability_kick_size)
+        if not 0.0 <= float(overlap_retry) < 1.0:
+            raise ValueError(f"overlap_retry must be in [0, 1), got {overlap_retry}")
+        self.overlap_retry = float(overlap_retry)
         s = self.spin / 2.0
         self.target_spin_squared = s * (s + 1.0)
         # Fail early on an impossible electron count.
@@ -341,6 +367,129 @@ class CASSCFBackend:
             mc.kernel(mo_start, ci0=ci_start)
         return {"macro_iterations": count["macro"]}
 
+    def _converged_trial(self, mf, mo0: np.ndarray, ci0, damped: bool, record: dict):
+        """One CASSCF solve from (mo0, ci0); BackendError unless converged and spin-pure."""
+        trial = self._make_mc(mf)
+        record.update(self._solve_casscf(trial, mo0, ci0, damped=damped))
+        if not trial.converged:
+            raise BackendError(f"CASSCF not converged in {self.max_cycle_macro} macro-iterations")
+        ss = self._spin_squares(trial.ci)
+        if np.any(np.abs(ss - self.target_spin_squared) > self.spin_tolerance):
+            raise BackendError(f"spin contamination: <S^2> = {np.round(ss, 4).tolist()} "
+                               f"(target {self.target_spin_squared})")
+        return trial
+
+    @staticmethod
+    def _sa_energy(mc) -> float:
+        """State-averaged (equal-weight) energy, Eh."""
+        return float(np.mean(mc.e_states))
+
+    def _sorted_states(self, mc) -> tuple[np.ndarray, list[np.ndarray]]:
+        """Energies (Eh, ascending) and CI vectors of a converged solver; ``mc.ci`` put in the same order."""
+        energies = np.asarray(mc.e_states, dtype=float).copy()
+        ci_raw = [np.asarray(c).copy() for c in mc.ci]
+        if np.any(np.diff(energies) < -1e-12):  # roots come back sorted; keep the contract anyway
+            order = np.argsort(energies, kind="stable")
+            energies = energies[order]
+            ci_raw = [ci_raw[i] for i in order]
+            mc.ci = [mc.ci[i] for i in order]
+        return energies, ci_raw
+
+    def _stability_search(self, mf, mc, mo_start: np.ndarray, attempts: list) -> Any:
+        """Keep the lowest state-averaged solution among re-convergences from nearby starts.
+
+        A converged SA-CASSCF is only a stationary point of the state-averaged energy; from SCF
+        orbitals it can be a saddle (the next warm start slides off it).  Candidates: the lowest
+        active orbital of the start swapped with each of the next ``cold_start_alternatives`` lower
+        orbitals, the highest with each of the next higher ones, then ``stability_kicks`` re-solves
+        from the best orbitals times exp(K) (K antisymmetric, fixed seeds; deterministic).  A
+        candidate replaces the best one when it is lower by more than 1e-6 Eh (the CASSCF energy
+        noise is ~1e-10 Eh at conv_tol = 1e-10).  ``mc`` may be None (the first solve did not
+        converge); None is returned when no candidate converges.  Every candidate is recorded in
+        ``attempts``.
+        """
+        import scipy.linalg
+
+        best, best_e = mc, (np.inf if mc is None else self._sa_energy(mc))
+        nmo = mo_start.shape[1]
+        lo, hi = self.ncore, self.ncore + self.ncas - 1
+        starts: list[tuple[str, np.ndarray]] = []
+        for k in range(1, self.cold_start_alternatives + 1):
+            for slot, other in ((lo, lo - k), (hi, hi + k)):
+                if 0 <= other < nmo:
+                    mo = mo_start.copy()
+                    mo[:, [slot, other]] = mo[:, [other, slot]]
+                    starts.append((f"stability search: start orbital {slot} swapped with {other}", mo))
+        kicks = [(f"stability search: kick {i} (max|K| {self.stability_kick_size} rad)", i)
+                 for i in range(self.stability_kicks)]
+        for what, item in starts + kicks:
+            ta = time.perf_counter()
+            record: dict[str, Any] = {"what": what}
+            if isinstance(item, int):
+                rng = np.random.default_rng(1_000_003 + item)
+                k_mat = rng.normal(size=(nmo, nmo))
+                k_mat = k_mat - k_mat.T
+                k_mat *= self.stability_kick_size / np.abs(k_mat).max()
+                mo0 = np.asarray(mo_start if best is None else best.mo_coeff) @ scipy.linalg.expm(k_mat)
+            else:
+                mo0 = item
+            try:
+                trial = self._converged_trial(mf, mo0, None, False, record)
+                e_sa = self._sa_energy(trial)
+                record["sa_energy"] = e_sa
+                if best is None or e_sa < best_e - 1e-6:
+                    best, best_e = trial, e_sa
+                    record["outcome"] = "converged, lower: kept"
+                else:
+                    record["outcome"] = "converged, not lower"
+            except (BackendError, np.linalg.LinAlgError, RuntimeError, ArithmeticError) as exc:
+                record["outcome"] = f"failed: {getattr(exc, 'reason', exc)}"
+            record["seconds"] = time.perf_counter() - ta
+            attempts.append(record)
+        return best
+
+    def _overlap_retry(self, mol, mc, raw, match, warm_orbitals, cold_orbitals, overlap_with_prev,
+                       attempts: list):
+        """Re-solve a step whose states barely overlap the previous ones (min |S| < overlap_retry).
+
+        Candidates: the first solution, a damped warm start (small orbital steps stay near the
+        previous solution) and a cold start with the stability search.  Kept: the largest smallest
+        matched overlap; candidates within 0.1 of it are ranked by state-averaged energy.
+        """
+        cands = [{"what": "first solution", "mc": mc, "raw": raw, "match": match}]
+        starts = [("warm start, damped (overlap retry)", warm_orbitals, True),
+                  ("cold start with stability search (overlap retry)", lambda: cold_orbitals(False), False)]
+        for what, start, damped in starts:
+            ta = time.perf_counter()
+            record: dict[str, Any] = {"what": what}
+            try:
+                mf, mo0, ci0 = start()
+                if ci0 is None:
+                    try:
+                        trial = self._converged_trial(mf, mo0, ci0, damped, record)
+                    except BackendError:
+                        trial = None
+                    trial = self._stability_search(mf, trial, mo0, attempts)
+                    if trial is None:
+                        raise BackendError("no start of the stability search converged")
+                else:
+                    trial = self._converged_trial(mf, mo0, ci0, damped, record)
+                _, ci_t = self._sorted_states(trial)
+                raw_t = overlap_with_prev(np.asarray(trial.mo_coeff), ci_t)
+                cands.append({"what": what, "mc": trial, "raw": raw_t, "match": match_states(raw_t)})
+                record["outcome"] = "converged"
+            except (BackendError, np.linalg.LinAlgError, RuntimeError, ArithmeticError) as exc:
+                record["outcome"] = f"failed: {getattr(exc, 'reason', exc)}"
+            record["seconds"] = time.perf_counter() - ta
+            attempts.append(record)
+        top = max(c["match"].min_overlap for c in cands)
+        near = [c for c in cands if c["match"].min_overlap >= top - 0.1]
+        kept = min(near, key=lambda c: self._sa_energy(c["mc"]))
+        retry = {"kept": kept["what"],
+                 "candidates": [{"what": c["what"], "min_overlap": c["match"].min_overlap,
+                                 "sa_energy": self._sa_energy(c["mc"])} for c in cands]}
+        return kept["mc"], kept["raw"], kept["match"], retry
+
     def _check_guess(self, guess: Any, mol) -> CASSCFGuess:
         if not isinstance(guess, CASSCFGuess):
             raise ValueError(f"guess must be a CASSCFGuess from this backend or None, got {type(guess).__name__}")
@@ -423,21 +572,24 @@ class CASSCFBackend:
                 mf, mo0, ci0 = start()
                 if "mo" not in mf_cache and ci0 is None:
                     mf_cache["mo"] = mo0
-                trial = self._make_mc(mf)
-                info = self._solve_casscf(trial, mo0, ci0, damped=damped)
-                record.update(info)
-                if not trial.converged:
-                    raise BackendError(f"CASSCF not converged in {self.max_cycle_macro} macro-iterations")
-                ss = self._spin_squares(trial.ci)
-                bad = np.abs(ss - self.target_spin_squared) > self.spin_tolerance
-                if np.any(bad):
-                    raise BackendError(f"spin contamination: <S^2> = {np.round(ss, 4).tolist()} "
-                                       f"(target {self.target_spin_squared})")
-                record["outcome"] = "converged"
+                search = ci0 is None and not damped  # stability search on the plain cold starts
+                try:
+                    trial = self._converged_trial(mf, mo0, ci0, damped, record)
+                    record["outcome"] = "converged"
+                except BackendError as exc:
+                    if not search:
+                        raise
+                    record["outcome"] = f"failed: {exc.reason}"
+                    trial = None
                 record["seconds"] = time.perf_counter() - ta
                 attempts.append(record)
-                mc = trial
-                break
+                if search:
+                    # also a fallback: a start near a saddle may creep without converging
+                    trial = self._stability_search(mf, trial, mo0, attempts)
+                if trial is not None:
+                    mc = trial
+                    solved_what, solved_macro = what, record.get("macro_iterations")
+                    break
             except BackendError as exc:
                 record["outcome"] = f"failed: {exc.reason}"
                 record["seconds"] = time.perf_counter() - ta
@@ -452,18 +604,10 @@ class CASSCFBackend:
         if mc is None:
             raise BackendError("SA-CASSCF failed after the whole fallback ladder", attempts)
 
-        energies = np.asarray(mc.e_states, dtype=float).copy()
-        ci_raw = [np.asarray(c).copy() for c in mc.ci]
-        if np.any(np.diff(energies) < -1e-12):  # roots come back sorted; keep the contract anyway
-            order = np.argsort(energies, kind="stable")
-            energies = energies[order]
-            ci_raw = [ci_raw[i] for i in order]
-            mc.ci = [mc.ci[i] for i in order]
-        spin_sq = self._spin_squares(ci_raw)
+        energies, ci_raw = self._sorted_states(mc)
         mo = np.asarray(mc.mo_coeff)
-
-        diagnostics: dict[str, Any] = {"attempts": attempts, "macro_iterations": attempts[-1].get("macro_iterations"),
-                                       "warm_start": prev is not None and attempts[-1]["what"].startswith("warm")}
+        diagnostics: dict[str, Any] = {"attempts": attempts, "macro_iterations": solved_macro,
+                                       "warm_start": prev is not None and solved_what.startswith("warm")}
 
         # --- overlaps with the previous step, sign alignment
         t0 = time.perf_counter()
@@ -474,9 +618,21 @@ class CASSCFBackend:
             from pyscf import gto
 
             s_cross = gto.intor_cross("int1e_ovlp", prev_mol, mol)
-            raw = ci_overlap_matrix(prev.mo_coeff, prev.ci, mo, ci_raw, s_cross, self.ncore, self.ncas,
-                                    self.nelecas)
+
+            def overlap_with_prev(mo_new, ci_new):
+                return ci_overlap_matrix(prev.mo_coeff, prev.ci, mo_new, ci_new, s_cross, self.ncore, self.ncas,
+                                         self.nelecas)
+
+            raw = overlap_with_prev(mo, ci_raw)
             match = match_states(raw)
+            if match.min_overlap < self.overlap_retry:
+                mc, raw, match, retry = self._overlap_retry(mol, mc, raw, match, warm_orbitals, cold_orbitals,
+                                                           overlap_with_prev, attempts)
+                diagnostics["overlap_retry"] = retry
+                energies, ci_raw = self._sorted_states(mc)
+                mo = np.asarray(mc.mo_coeff)
+                if retry["kept"] != "first solution":
+                    diagnostics["warm_start"] = retry["kept"].startswith("warm")
             signs = match.signs
             overlap = match.overlap
             diagnostics.update(match.as_diagnostics())
@@ -488,6 +644,8 @@ class CASSCFBackend:
                 warnings.warn(f"active space changed between steps: smallest active-orbital overlap singular "
                               f"value {smin:.3f} < {self.active_space_warning}", RuntimeWarning, stacklevel=2)
         timings["overlap"] = time.perf_counter() - t0
+
+        spin_sq = self._spin_squares(ci_raw)
 
         # --- transition dipoles
         t0 = time.perf_counter()
