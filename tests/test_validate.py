@@ -18,7 +18,7 @@ def _case(prefix):
 
 def test_builtin_cases_cover_the_benchmark_set():
     names = [c.name for c in validate.builtin_cases()]
-    for model in ("tully1", "tully2", "tully3", "wide_crossing", "spin_boson_symmetric", "spin_boson_biased"):
+    for model in ("tully1", "tully2", "tully3", "wide_crossing", "spin_boson_symmetric", "spin_boson_biased", "KCl"):
         assert any(n.startswith(model) for n in names), model
     quick = [c.name.split()[0] for c in validate.builtin_cases() if c.quick]
     assert len(quick) == len(set(quick)) == 6  # one quick case per model
