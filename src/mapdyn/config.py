@@ -106,24 +106,29 @@ def _show(value: Any) -> str:
     return text if len(text) <= 60 else text[:57] + "..."
 
 
-def parse_duration(text: Any, key: str = "duration") -> float:
-    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time."""
+def _number_with_unit(text: Any, key: str, what: str, example: str, unit_pattern: str) -> tuple[float, str]:
+    """Split "<number> <unit>" → (value, unit as written); one-line ConfigError naming ``key`` otherwise."""
     if isinstance(text, bool) or not isinstance(text, str):
-        raise ConfigError(key, f"= {_show(text)}: give a duration with a unit as a string, e.g. \"0.5 fs\" or \"20 au\"")
-    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*([A-Za-z.]+)\s*", text)
+        raise ConfigError(key, f"= {_show(text)}: give {what} with a unit as a string, e.g. {example}")
+    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*(" + unit_pattern + r")\s*", text)
     if not m:
-        raise ConfigError(key, f"= {_show(text)}: cannot read a duration; write a number and a unit (fs, as, ps, au), e.g. \"0.5 fs\"")
+        raise ConfigError(key, f"= {_show(text)}: cannot read {what}; write a number and a unit, e.g. {example}")
     try:
-        value = float(m.group(1))
+        return float(m.group(1)), m.group(2)
     except ValueError:
         raise ConfigError(key, f"= {_show(text)}: {m.group(1)!r} is not a number") from None
-    unit = m.group(2).lower().replace(".", "")
+
+
+def parse_duration(text: Any, key: str = "duration") -> float:
+    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time."""
+    value, written = _number_with_unit(text, key, "a duration", '"0.5 fs" or "20 au" (fs, as, ps, au)', r"[A-Za-z.]+")
+    unit = written.lower().replace(".", "")
     if unit in _TIME_UNITS_FS:
         au = value * _TIME_UNITS_FS[unit] * _units().fs / _units().AUT if math.isfinite(value) else value
     elif unit in ("au", "aut"):
         au = value
     else:
-        raise ConfigError(key, f"= {_show(text)}: unknown time unit {m.group(2)!r}; use fs, as, ps or au{_did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
+        raise ConfigError(key, f"= {_show(text)}: unknown time unit {written!r}; use fs, as, ps or au{_did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
     if not math.isfinite(au) or au <= 0:
         raise ConfigError(key, f"= {_show(text)}: must be a positive duration, e.g. \"0.5 fs\"")
     return float(au)
@@ -131,18 +136,10 @@ def parse_duration(text: Any, key: str = "duration") -> float:
 
 def parse_energy(text: Any, key: str) -> float:
     """An energy string ("1e-3 Eh", "0.03 eV") → Eh (positive)."""
-    if isinstance(text, bool) or not isinstance(text, str):
-        raise ConfigError(key, f"= {_show(text)}: give an energy with a unit as a string, e.g. \"1e-3 Eh\" or \"0.03 eV\"")
-    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*([A-Za-z]+)\s*", text)
-    if not m:
-        raise ConfigError(key, f"= {_show(text)}: cannot read an energy; write a number and a unit (Eh, eV), e.g. \"1e-3 Eh\"")
-    try:
-        value = float(m.group(1))
-    except ValueError:
-        raise ConfigError(key, f"= {_show(text)}: {m.group(1)!r} is not a number") from None
-    unit = m.group(2).lower()
+    value, written = _number_with_unit(text, key, "an energy", '"1e-3 Eh" or "0.03 eV" (Eh, eV)', r"[A-Za-z]+")
+    unit = written.lower()
     if unit not in _ENERGY_UNITS:
-        raise ConfigError(key, f"= {_show(text)}: unknown energy unit {m.group(2)!r}; use Eh or eV")
+        raise ConfigError(key, f"= {_show(text)}: unknown energy unit {written!r}; use Eh or eV")
     eh = value / _units().Hartree if unit == "ev" else value
     if not math.isfinite(eh) or eh <= 0:
         raise ConfigError(key, f"= {_show(text)}: must be a positive energy, e.g. \"1e-3 Eh\"")
