@@ -9,9 +9,9 @@ prints the final adiabatic populations for three momenta and each method.  Runs 
 import numpy as np
 
 from mapdyn.models.tully import SimpleAvoidedCrossing
-from mapdyn.options import MethodOptions
-from mapdyn.propagators import run_diabatic
-from mapdyn.sampling import gaussian_wavepacket_ensemble
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import run_diabatic
+from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 
 
 def main() -> None:

@@ -15,12 +15,12 @@ import os
 import numpy as np
 from ase import Atoms, units
 
-from mapdyn.backends.pyscf_casscf import CASSCFBackend
-from mapdyn.dynamics import MappingDynamics
-from mapdyn.initial import compute_hessian, draw_wigner, normal_modes, optimize_ground_state
-from mapdyn.initial_pyscf import PySCFGroundState
-from mapdyn.options import MethodOptions
-from mapdyn.sampling import trajectory_generator
+from mapdyn.backends.pyscf.casscf import CASSCFBackend
+from mapdyn.driver.dynamics import MappingDynamics
+from mapdyn.initial.sampling import compute_hessian, draw_wigner, normal_modes, optimize_ground_state
+from mapdyn.backends.pyscf.ground_state import PySCFGroundState
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.sampling import trajectory_generator
 
 BOHR = units.Bohr  # Å per Bohr
 

@@ -7,9 +7,9 @@ import os
 import numpy as np
 import pytest
 
-from mapdyn import analysis as A
-from mapdyn import report as R
-from mapdyn.options import SQUARE_GAMMA, MethodOptions
+from mapdyn.analysis import core_tmp as A
+from mapdyn.analysis import report as R
+from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 
 SQC = MethodOptions()
 TRI = MethodOptions(window="triangle")
@@ -28,7 +28,7 @@ def square_actions(assign: np.ndarray, F: int = 2) -> np.ndarray:
 
 
 def test_square_actions_helper_is_consistent_with_windows():
-    from mapdyn.windows import window_assignment
+    from mapdyn.core.windows import window_assignment
     a = np.array([0, 1, -1, 2])
     assert np.array_equal(window_assignment(square_actions(a, 3), SQC), a)
 
@@ -59,7 +59,7 @@ def test_sqc_populations_windowed_normalisation_and_no_window_counts():
     # t = 0: every resample gives P = (0, 1) → interval collapses onto the estimate
     assert p.low[0].tolist() == [0.0, 1.0] and p.high[0].tolist() == [0.0, 1.0]
     # agrees with the core estimator time by time
-    from mapdyn.windows import window_populations
+    from mapdyn.core.windows import window_populations
     for t in range(3):
         pops, none = window_populations(ts.actions[:, t], SQC)
         np.testing.assert_allclose(p.populations[t], pops, atol=1e-15)
@@ -111,8 +111,8 @@ def test_initial_state_population_follows_each_trajectorys_own_state():
 
 def test_from_diabatic_run_matches_core_populations():
     from mapdyn.models.tully import tully_model
-    from mapdyn.propagators import run_diabatic
-    from mapdyn.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.core.propagators import run_diabatic
+    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 
     model = tully_model("tully1")
     state = gaussian_wavepacket_ensemble(model, 64, 7, position=-5.0, momentum=15.0, position_width=1.0,
@@ -314,7 +314,7 @@ def test_trajectory_set_validation():
 # --- report folder ------------------------------------------------------------------------------------
 def synthetic_molecular_set(seed=0):
     """A 3-atom set: atoms 0–1 a bound diatomic on a Morse curve, atom 2 leaves; SQC decay 1 → 0."""
-    from mapdyn.vibrational import MorseCurve
+    from mapdyn.analysis.vibrational import MorseCurve
     rng = np.random.default_rng(seed)
     n, T = 60, 41
     times = np.linspace(0.0, 4000.0, T)
@@ -348,8 +348,8 @@ def synthetic_molecular_set(seed=0):
 
 
 def test_report_files_exist_and_csvs_equal_memory(tmp_path):
-    from mapdyn.initial_excitation import absorption_spectrum
-    from mapdyn.vibrational import FragmentAnalysis
+    from mapdyn.initial.excitation import absorption_spectrum
+    from mapdyn.analysis.vibrational import FragmentAnalysis
 
     ts, morse = synthetic_molecular_set()
     rng = np.random.default_rng(0)
@@ -504,8 +504,8 @@ products = {"transmitted on 1" = [{coordinate = 0, above = 0.0}, {state = 1}], "
 def test_study_folder_load_analyze_and_cli(tmp_path):
     from mapdyn.cli import main
     from mapdyn.models.tully import tully_model
-    from mapdyn.propagators import run_diabatic
-    from mapdyn.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.core.propagators import run_diabatic
+    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 
     toml = tmp_path / "tiny.toml"
     toml.write_text(STUDY_TOML)
@@ -525,7 +525,7 @@ def test_study_folder_load_analyze_and_cli(tmp_path):
     br = res.branching
     assert br is not None and sum(br.counts) == 40
     final = run.final.R[:, 0]
-    from mapdyn.windows import window_assignment
+    from mapdyn.core.windows import window_assignment
     w = window_assignment(run.actions_adiabatic[-1], SQC)
     assert br.counts[br.labels.index("transmitted on 0")] == int(np.sum((final > 0) & (w == 0)))
     # `mapdyn analyze DIR` writes the report folder
@@ -552,8 +552,8 @@ def test_rule_classifier_coordinates_states_and_mismatch():
 
 
 def test_study_spectrum_from_initial_conditions(tmp_path):
-    from mapdyn.checkpoint import write_h5
-    from mapdyn.initial_excitation import absorption_spectrum
+    from mapdyn.study.checkpoint import write_h5
+    from mapdyn.initial.excitation import absorption_spectrum
 
     assert A.study_spectrum(str(tmp_path)) is None
     rng = np.random.default_rng(2)
@@ -573,9 +573,9 @@ def test_driver_frames_give_the_drivers_own_window_bookkeeping():
     import ase
     from ase import units
     from mapdyn.backends.model_adapter import ModelAdapterBackend
-    from mapdyn.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
     from mapdyn.models.tully import tully_model
-    from mapdyn.sampling import trajectory_generator
+    from mapdyn.core.sampling import trajectory_generator
 
     model = tully_model("tully1")
     p_ase = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr

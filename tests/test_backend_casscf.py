@@ -17,7 +17,7 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from mapdyn.backends.pyscf_casscf import (  # noqa: E402
+from mapdyn.backends.pyscf.casscf import (  # noqa: E402
     ORTHONORMALITY_TOL,
     CASSCFBackend,
     CASSCFGuess,
@@ -25,7 +25,7 @@ from mapdyn.backends.pyscf_casscf import (  # noqa: E402
     lowdin_orthonormalize,
     orthonormality_error,
 )
-from mapdyn.electronic import BackendError  # noqa: E402
+from mapdyn.backends.contract import BackendError  # noqa: E402
 
 # Distorted geometries, Bohr.
 LIH_POS = np.array([[0.0, 0.0, 0.0], [1.9, 1.3, 1.1]])
@@ -291,7 +291,7 @@ def test_one_pass_equals_plain_pyscf_calls(spin_purity, nac_form):
     # Source: PySCF's own per-state calls (nuc_grad_method().kernel(state=k),
     # nac_method().kernel(state=(a, b))) on the same converged SA-CASSCF; the one-pass path only
     # reorders when the derivative integrals are evaluated, so agreement is to round-off (1e-8).
-    from mapdyn.backends.casscf_response import one_pass_gradients_and_couplings
+    from mapdyn.backends.pyscf.casscf_one_pass import one_pass_gradients_and_couplings
 
     backend = h2o_backend(spin_purity=spin_purity, nac_form=nac_form, gradient_method="plain")
     mol = backend._build_mol(H2O_POS)
@@ -328,7 +328,7 @@ def test_density_fitted_gradients_match_finite_differences():
 
 
 def test_active_space_change_is_detected_and_cas_orbitals_option():
-    from mapdyn.backends.pyscf_casscf import active_overlap_min_singular
+    from mapdyn.backends.pyscf.casscf import active_overlap_min_singular
 
     backend = h2o_backend()
     res = backend.compute(H2O_POS, need_gradients=False)

@@ -14,8 +14,8 @@ import pytest
 
 from mapdyn.backends.callback import CallbackBackend
 from mapdyn.backends.model_adapter import ModelAdapterBackend, ModelGuess
-from mapdyn.electronic import Backend, BackendError, ElectronicResult, match_states
-from mapdyn.models.base import DiabaticModel, as_positions
+from mapdyn.backends.contract import Backend, BackendError, ElectronicResult, match_states
+from mapdyn.core.model import DiabaticModel, as_positions
 from mapdyn.models.tully import SimpleAvoidedCrossing, tully_model
 
 
@@ -123,7 +123,7 @@ def test_coordinate_map_and_masses():
     np.testing.assert_array_equal(backend.atom_masses(), [1500.0, 1500.0])
     np.testing.assert_array_equal(backend.positions_from_model([0.4, -0.3])[0, :2], [0.4, -0.3])
     atoms = backend.make_atoms([0.4, -0.3], [12.0, -3.0])
-    from mapdyn.dynamics import MappingDynamics
+    from mapdyn.driver.dynamics import MappingDynamics
 
     dyn = MappingDynamics(atoms, backend, 1.0, 0, mapping_variables=(np.ones(3), np.zeros(3)))
     np.testing.assert_allclose(dyn.state.positions[0, :2], [0.4, -0.3], rtol=1e-14)

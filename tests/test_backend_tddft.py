@@ -1,4 +1,4 @@
-"""Tests of the PySCF TDA/TDDFT backend (mapdyn.backends.pyscf_tddft).
+"""Tests of the PySCF TDA/TDDFT backend (mapdyn.backends.pyscf.tddft).
 
 All quantities in Hartree atomic units.  Run with OMP_NUM_THREADS=1.
 """
@@ -13,14 +13,14 @@ import pytest
 
 pyscf = pytest.importorskip("pyscf")
 
-from mapdyn.backends.pyscf_tddft import (  # noqa: E402
+from mapdyn.backends.pyscf.tddft import (  # noqa: E402
     TDDFTBackend,
     TDDFTGuess,
     determinant_state_overlaps,
     normalise_cis_amplitudes,
     time_derivative_couplings,
 )
-from mapdyn.electronic import BackendError  # noqa: E402
+from mapdyn.backends.contract import BackendError  # noqa: E402
 
 # Distorted (C1) water, Bohr: no symmetry, so every coupling is allowed.
 WATER = np.array([[0.05, -0.03, 0.10],

@@ -17,11 +17,11 @@ import pytest
 from ase import units
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
-from mapdyn.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
+from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
 from mapdyn.models.tully import tully_model
-from mapdyn.options import MethodOptions
-from mapdyn.sampling import trajectory_generator
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.sampling import trajectory_generator
 
 pytestmark = pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning")
 

@@ -21,7 +21,7 @@ distributed = pytest.importorskip("distributed")
 import cloudpickle  # noqa: E402  (a dependency of distributed)
 
 from mapdyn import cluster  # noqa: E402
-from mapdyn.cluster import ClusterError, cluster_executor, cluster_settings, local_cluster_executor  # noqa: E402
+from mapdyn.study.cluster import ClusterError, cluster_executor, cluster_settings, local_cluster_executor  # noqa: E402
 
 # Workers are fresh processes that cannot import this test module by name; ship its functions by value.
 cloudpickle.register_pickle_by_value(sys.modules[__name__])
@@ -152,9 +152,9 @@ def test_task_that_raises_once_is_retried(dask_executor, tmp_path):
 # The ensemble runner on Dask: same code path (run_ensemble + run_task), same files
 # ---------------------------------------------------------------------------------------------
 
-from mapdyn.config import load_study  # noqa: E402
-from mapdyn.ensemble import run_ensemble, run_task  # noqa: E402
-from mapdyn.study import Study, load_trajectory_set  # noqa: E402
+from mapdyn.study.config import load_study  # noqa: E402
+from mapdyn.study.runner import run_ensemble, run_task  # noqa: E402
+from mapdyn.study.folder import Study, load_trajectory_set  # noqa: E402
 
 #: batched model study: Tully model 1 (scenario of our own), 4 chunks of 100 trajectories.
 MODEL_STUDY = """
@@ -250,8 +250,8 @@ def test_killed_worker_mid_run_ensemble_completes_identically(dask_executor, tmp
                 folder = study.trajectory_folder(i)
                 marker = os.path.join(folder, "running.json")
                 if os.path.exists(marker):
-                    from mapdyn.checkpoint import TrajectoryStore
-                    from mapdyn.study import read_json
+                    from mapdyn.study.checkpoint import TrajectoryStore
+                    from mapdyn.study.folder import read_json
 
                     try:
                         pid = int(read_json(marker)["pid"])

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from mapdyn.cli import main
-from mapdyn.config import ConfigError, load_study, parse_duration
+from mapdyn.study.config import ConfigError, load_study, parse_duration
 
 MODEL = """
 [study]

@@ -5,13 +5,13 @@ import pytest
 import scipy.linalg
 from scipy.integrate import solve_ivp
 
-from mapdyn.mapping import actions, effective_density, mapping_energy
-from mapdyn.models.base import DiabaticModel
+from mapdyn.core.mapping import actions, effective_density, mapping_energy
+from mapdyn.core.model import DiabaticModel
 from mapdyn.models.tully import SimpleAvoidedCrossing, DualAvoidedCrossing
-from mapdyn.options import MethodOptions, SQUARE_GAMMA
-from mapdyn.propagators import DiabaticIntegrator, propagate_amplitudes, run_diabatic
-from mapdyn.sampling import EnsembleState, gaussian_wavepacket_ensemble, trajectory_generator
-from mapdyn.windows import (sample_actions, sample_mapping_variables, window_assignment,
+from mapdyn.core.options import MethodOptions, SQUARE_GAMMA
+from mapdyn.core.propagators import DiabaticIntegrator, propagate_amplitudes, run_diabatic
+from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble, trajectory_generator
+from mapdyn.core.windows import (sample_actions, sample_mapping_variables, window_assignment,
                             window_indicators, window_populations)
 
 SQUARE = MethodOptions("sqc", "square")

@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from scipy.interpolate import CubicSpline
 
-from mapdyn.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, adt_angle, bond_coupling, diabatize,
+from mapdyn.validation.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, adt_angle, bond_coupling, diabatize,
                              load_packaged_grid, photoexcitation_scenario, reduced_mass)
-from mapdyn.exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
+from mapdyn.validation.exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
 
 
 @pytest.fixture(scope="module")
@@ -151,7 +151,7 @@ def test_linear_continuation_beyond_the_grid(model):
 
 def test_exact_wavepacket_conserves_norm_on_the_model(model):
     """Split-operator propagation (unitary pieces) without absorber: norm constant to rounding;
-    with absorbers: on-grid + absorbed = 1 (mapdyn.exact bookkeeping).  1000 steps of 2 a.u."""
+    with absorbers: on-grid + absorbed = 1 (mapdyn.validation.exact bookkeeping).  1000 steps of 2 a.u."""
     sc = photoexcitation_scenario(model)
     grid = Grid((-20.0,), (72.0,), (4096,))
     for absorber in (None, Absorber(12.0, 0.02)):
@@ -174,7 +174,7 @@ def test_live_scan_reproduces_cached_points(grid):
     up to one global sign.  Midpoint 16.05 Bohr (interpolation error of the model against PySCF):
     adiabatic energies 7e-9 Eh (tolerance 1e-6), coupling 4e-6 of 1.004 /Bohr (tolerance 1e-4)."""
     pytest.importorskip("pyscf")
-    from mapdyn.diatomic import scan_diatomic
+    from mapdyn.validation.diatomic import scan_diatomic
 
     pts = np.array([15.9, 16.0, 16.05, 16.1])
     # at 15.9 Bohr the RHF Cl 3pσ orbital is number 17 (below the 3pπ pair at 5.5 Bohr, above it here)

@@ -20,15 +20,15 @@ from ase import units
 
 from mapdyn.backends.callback import CallbackBackend
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.dynamics import (AMU_IN_ELECTRON_MASSES, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics,
+from mapdyn.driver.dynamics import (AMU_IN_ELECTRON_MASSES, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics,
                              remove_total_momentum)
-from mapdyn.electronic import BackendError
-from mapdyn.models.base import DiabaticModel, as_positions
+from mapdyn.backends.contract import BackendError
+from mapdyn.core.model import DiabaticModel, as_positions
 from mapdyn.models.tully import SimpleAvoidedCrossing, tully_model
-from mapdyn.options import MethodOptions
-from mapdyn.propagators import run_diabatic
-from mapdyn.sampling import gaussian_wavepacket_ensemble, trajectory_generator
-from mapdyn.windows import sample_mapping_variables
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import run_diabatic
+from mapdyn.core.sampling import gaussian_wavepacket_ensemble, trajectory_generator
+from mapdyn.core.windows import sample_mapping_variables
 
 pytestmark = [pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning"),
               pytest.mark.filterwarnings("ignore:time step does not resolve:UserWarning")]
@@ -435,7 +435,7 @@ def lih_casscf_run(dt_fs: float, nsteps: int) -> MappingDynamics:
     """LiH, SA-CASSCF(2,2)/STO-3G over 2 singlets, sqc/square/symmetrized, started in S1 from 1.6 Å
     with 300 K-like random momenta (trajectory 0 of seed 3), total momenta removed."""
     pytest.importorskip("pyscf")
-    from mapdyn.backends.pyscf_casscf import CASSCFBackend
+    from mapdyn.backends.pyscf.casscf import CASSCFBackend
 
     rng = trajectory_generator(3, 0)
     atoms = ase.Atoms("LiH", positions=[[0, 0, 0], [0, 0, 1.6]])
@@ -470,7 +470,7 @@ def test_tda_no_nac_path_conserves_energy():
     overlaps, projected couplings, t = 0 probe.  30 fs at 0.5 fs: measured max drift 7.9e-5 Eh with
     force averaging (2.9e-4 Eh with plain kicks, 8.0e-5 Eh plain at 0.25 fs); threshold 2.5e-4 Eh."""
     pytest.importorskip("pyscf")
-    from mapdyn.backends.pyscf_tddft import TDDFTBackend
+    from mapdyn.backends.pyscf.tddft import TDDFTBackend
 
     rng = trajectory_generator(3, 0)
     atoms = ase.Atoms("LiH", positions=[[0, 0, 0], [0, 0, 1.6]])

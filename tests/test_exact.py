@@ -1,4 +1,4 @@
-"""The exact grid wavepacket solver (mapdyn.exact).
+"""The exact grid wavepacket solver (mapdyn.validation.exact).
 
 Independent references used here:
 * a second propagator on the same grid Hamiltonian H = T + V − iW (same FFT kinetic operator, same
@@ -15,9 +15,9 @@ import pytest
 import scipy.integrate
 import scipy.sparse.linalg as sla
 
-from mapdyn.exact import (Absorber, ExactSettings, Grid, GridPropagator, check_convergence, exact_scattering,
+from mapdyn.validation.exact import (Absorber, ExactSettings, Grid, GridPropagator, check_convergence, exact_scattering,
                           gaussian_wavepacket, propagate_wavepacket)
-from mapdyn.models.base import DiabaticModel, as_positions
+from mapdyn.core.model import DiabaticModel, as_positions
 from mapdyn.models.tully import SimpleAvoidedCrossing, WideLinearCrossing
 
 

@@ -23,9 +23,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-import mapdyn.heom_cases as cmp  # noqa: E402
+import mapdyn.validation.heom_cases as cmp  # noqa: E402
 
-from mapdyn.options import MethodOptions  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
 
 TOL = 0.1
 SQUARE_EARLY_TOL = 0.12

@@ -10,15 +10,15 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 from ase import units  # noqa: E402
 
-from mapdyn.electronic import ElectronicResult  # noqa: E402
-from mapdyn.initial import (  # noqa: E402
+from mapdyn.backends.contract import ElectronicResult  # noqa: E402
+from mapdyn.initial.sampling import (  # noqa: E402
     AMU_TO_ME, LevelOfTheoryWarning, ModeDroppedWarning, check_level_of_theory, compute_hessian,
     draw_wigner, masses_amu_for, normal_modes, optimize_ground_state, remove_rigid_body_motion,
     sample_wigner, trajectory_rng, wigner_widths)
-from mapdyn.initial_excitation import (  # noqa: E402
+from mapdyn.initial.excitation import (  # noqa: E402
     CROSS_SECTION_PREFACTOR_BOHR2_HARTREE, absorption_spectrum, choose_initial_states,
     excitation_properties, oscillator_strengths, plot_absorption_spectrum, state_choice_rng)
-from mapdyn.initial_pyscf import PySCFGroundState  # noqa: E402
+from mapdyn.backends.pyscf.ground_state import PySCFGroundState  # noqa: E402
 
 SYMBOLS = ["O", "H", "H"]
 # deliberately distorted water (Bohr), far enough from the minimum to need several BFGS steps
@@ -422,7 +422,7 @@ def test_wigner_mean_kinetic_energy(water):
 def test_fd_hessian_through_tda_backend_ground_state(water):
     # Any backend: the linear-response backend's state 0 (RHF/6-31G, same reference) by finite
     # differences reproduces the PySCF analytic RHF frequencies within 1 cm^-1 (issue requirement).
-    from mapdyn.backends.pyscf_tddft import TDDFTBackend
+    from mapdyn.backends.pyscf.tddft import TDDFTBackend
     _, opt, _, _, modes = water
     be = TDDFTBackend(SYMBOLS, basis="6-31g", xc=None, method="tda", nstates=1)
     hr = compute_hessian(be, opt.positions_bohr, "RHF/6-31G")

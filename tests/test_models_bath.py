@@ -8,16 +8,16 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from mapdyn.mapping import actions
+from mapdyn.core.mapping import actions
 from mapdyn.models.callable import CallableModel
 from mapdyn.models.spin_boson import (ExcitonTransferModel, SpinBoson, debye_modes, debye_spectral_density,
                                       ohmic_modes, ohmic_spectral_density, thermal_bath_ensemble,
                                       thermal_bath_widths)
 from mapdyn.models.vibronic import LinearVibronicModel
-from mapdyn.options import MethodOptions
-from mapdyn.propagators import DiabaticIntegrator
-from mapdyn.propagators_harmonic import HarmonicBathIntegrator
-from mapdyn.sampling import gaussian_wavepacket_ensemble
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import DiabaticIntegrator
+from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
+from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 
 TRIANGLE = MethodOptions(window="triangle")
 
@@ -182,7 +182,7 @@ def test_thermal_wigner_moments_and_donor_centre():
 
 def test_bath_sampling_follows_the_common_stream_and_draw_order():
     """At T = 0 the Wigner bath is the Gaussian packet of width σ_Q = (2ω)^(−1/2): the independent
-    wavepacket sampler of mapdyn.sampling must give the same numbers trajectory by trajectory."""
+    wavepacket sampler of mapdyn.core.sampling must give the same numbers trajectory by trajectory."""
     model = SpinBoson(0.1, 0.2, [0.5, 1.0, 3.0], [0.1, 0.2, 0.3])
     opts = MethodOptions(window="square", zero_point="adjusted")
     a = thermal_bath_ensemble(model, 7, 42, np.inf, 1, opts, first_index=3)

@@ -2,7 +2,7 @@
 
 Sources: the finite-difference references are central differences of each backend's own energies
 and state overlaps (DESIGN.md §7.6; Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994) for
-the overlap couplings); tolerances are the backend's stated ones (``mapdyn.preflight.FD_TOLERANCES``,
+the overlap couplings); tolerances are the backend's stated ones (``mapdyn.study.preflight.FD_TOLERANCES``,
 each with its justification).
 """
 
@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.electronic import BackendError
+from mapdyn.backends.contract import BackendError
 from mapdyn.models.tully import tully_model
-from mapdyn.preflight import (FD_TOLERANCES, CheckLine, check_backend, choose_coordinates,
+from mapdyn.study.preflight import (FD_TOLERANCES, CheckLine, check_backend, choose_coordinates,
                               estimate_core_hours, finite_difference_tolerance, molecular_preflight)
 
 
@@ -87,7 +87,7 @@ def test_backend_failure_is_one_fail_line():
 
 
 def test_coordinate_choice_alternates_gradient_and_coupling_rankings():
-    from mapdyn.electronic import ElectronicResult
+    from mapdyn.backends.contract import ElectronicResult
 
     g = np.zeros((2, 2, 3))
     g[1, 0, 2], g[0, 1, 1] = 0.5, 0.2
@@ -115,7 +115,7 @@ WATER = np.array([[0.0, 0.0, 0.22], [0.0, 1.43, -0.89], [0.1, -1.40, -0.95]])
 
 def test_tda_backend_passes_and_costs_are_reported():
     pytest.importorskip("pyscf")
-    from mapdyn.backends.pyscf_tddft import TDDFTBackend
+    from mapdyn.backends.pyscf.tddft import TDDFTBackend
 
     backend = TDDFTBackend(["O", "H", "H"], basis="sto-3g", nstates=3)
     report = molecular_preflight(backend, WATER, n_steps=1000, n_trajectories=10, workers=2,
@@ -135,7 +135,7 @@ def test_tda_backend_passes_and_costs_are_reported():
 @pytest.mark.slow
 def test_casscf_backend_passes_within_stated_tolerance():
     pytest.importorskip("pyscf")
-    from mapdyn.backends.pyscf_casscf import CASSCFBackend
+    from mapdyn.backends.pyscf.casscf import CASSCFBackend
 
     pos = np.array([[0.0, 0.0, 0.19], [0.19, 1.51, -0.94], [-0.09, -1.42, -0.85]])
     backend = CASSCFBackend(["O", "H", "H"], basis="sto-3g", ncas=2, nelecas=2, nstates=3)
@@ -152,7 +152,7 @@ def test_check_command_on_the_tiny_molecular_study(capsys):
     import os
 
     from mapdyn.cli import main
-    from mapdyn.config import load_study
+    from mapdyn.study.config import load_study
 
     path = os.path.join(os.path.dirname(__file__), os.pardir, "inputs", "ethylene_tiny.toml")
     backend = load_study(path).electronic.backend

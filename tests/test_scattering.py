@@ -1,6 +1,6 @@
-"""1D scattering ensembles (mapdyn.scattering) against the exact grid solver on Tully's models.
+"""1D scattering ensembles (mapdyn.validation.scattering) against the exact grid solver on Tully's models.
 
-Reference: the exact solver of mapdyn.exact (itself checked against scipy's expm_multiply and
+Reference: the exact solver of mapdyn.validation.exact (itself checked against scipy's expm_multiply and
 Landau–Zener in tests/test_exact.py) for the same Gaussian packet; models from J. C. Tully,
 J. Chem. Phys. 93, 1061 (1990).  Tolerances (VALIDATION.md, measured during planning): SQC within
 0.07 of exact for models 1–2 above the upper-channel threshold, reflection within 0.1 on model 3 —
@@ -15,10 +15,10 @@ import functools
 import numpy as np
 import pytest
 
-from mapdyn.exact import exact_scattering
+from mapdyn.validation.exact import exact_scattering
 from mapdyn.models.tully import tully_model
-from mapdyn.options import MethodOptions
-from mapdyn.scattering import compare_scattering, default_interaction_region, run_scattering
+from mapdyn.core.options import MethodOptions
+from mapdyn.validation.scattering import compare_scattering, default_interaction_region, run_scattering
 
 NTRAJ, SEED, DT = 2000, 20261202, 4.0
 START = {"tully1": -12.0, "tully2": -16.0, "tully3": -15.0}

@@ -3,11 +3,11 @@
 import numpy as np
 import pytest
 
-import mapdyn.windows
-from mapdyn import validate
+import mapdyn.core.windows
+from mapdyn.validation import table as validate
 from mapdyn.models.tully import tully_model
-from mapdyn.options import MethodOptions
-from mapdyn.scattering import run_scattering
+from mapdyn.core.options import MethodOptions
+from mapdyn.validation.scattering import run_scattering
 
 TRIANGLE = MethodOptions("sqc", "triangle")
 
@@ -50,9 +50,9 @@ def test_swapped_windows_make_cases_fail(monkeypatch):
     """Deliberately broken binning (each window read as the other state's) must fail the check."""
     case = _case("tully2 k=30")
     _, _, good, _ = case.run(TRIANGLE, 400, 1)
-    monkeypatch.setattr("mapdyn.scattering.window_assignment",
-                        lambda e, options: np.where(mapdyn.windows.window_assignment(e, options) >= 0,
-                                                    1 - mapdyn.windows.window_assignment(e, options), -1))
+    monkeypatch.setattr("mapdyn.validation.scattering.window_assignment",
+                        lambda e, options: np.where(mapdyn.core.windows.window_assignment(e, options) >= 0,
+                                                    1 - mapdyn.core.windows.window_assignment(e, options), -1))
     _, _, bad, _ = case.run(TRIANGLE, 400, 1)
     assert good <= case.tolerance < bad
 

@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from mapdyn import analysis as A
-from mapdyn import vibrational as V
-from mapdyn.options import SQUARE_GAMMA, MethodOptions
+from mapdyn.analysis import core_tmp as A
+from mapdyn.analysis import vibrational as V
+from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 
 # Morse parameters close to H2 (D ≈ 4.75 eV, a ≈ 1.03 /Bohr, r_e ≈ 1.40 Bohr; from memory — only used
 # as a realistic shape, the checks are exact for any Morse parameters).
@@ -200,7 +200,7 @@ class CountingBackend:
 
 
 def test_scan_with_backend_is_cached(tmp_path):
-    from mapdyn.initial_pyscf import PySCFGroundState
+    from mapdyn.backends.pyscf.ground_state import PySCFGroundState
 
     backend = CountingBackend(PySCFGroundState(["H", "H"], "sto-3g"))
     grid = np.linspace(0.9, 4.0, 8)
@@ -219,7 +219,7 @@ def test_scan_with_backend_is_cached(tmp_path):
 
 
 def test_fragment_analysis_from_trajectory_set_and_report(tmp_path):
-    from mapdyn import report as R
+    from mapdyn.analysis import report as R
 
     rng = np.random.default_rng(9)
     n = 30

@@ -14,7 +14,7 @@ import sys
 import time
 from typing import Sequence
 
-from .cluster import ClusterError
+from mapdyn.study.cluster import ClusterError
 
 __all__ = ["main", "build_parser"]
 
@@ -102,7 +102,7 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Run Tully models 1-3, the Landau-Zener crossing, two spin-boson cases (HEOM) "
                                    "and, when cached, the real-diatomic case; print exact vs method with "
                                    "standard errors and tolerances. Exit code 0 only if every case passes.")
-    from .validate import add_arguments
+    from mapdyn.validation.table import add_arguments
     add_arguments(v)
     return p
 
@@ -131,7 +131,7 @@ def _progress_printer(quiet: bool):
 
 def _executor(args, config):
     if getattr(args, "scheduler", None) or config.cluster:
-        from .cluster import cluster_executor
+        from mapdyn.study.cluster import cluster_executor
 
         return cluster_executor(config.cluster, scheduler=args.scheduler)
     return None
@@ -143,8 +143,8 @@ def _log(msg: str) -> None:
 
 def _execute(study, args) -> int:
     """Initial conditions (molecules), the ensemble, the report."""
-    from .ensemble import run_ensemble
-    from .study import prepare_initial_conditions, write_study_report
+    from mapdyn.study.runner import run_ensemble
+    from mapdyn.study.folder import prepare_initial_conditions, write_study_report
 
     cfg = study.config
     stopper = _Stop()
@@ -196,8 +196,8 @@ def _execute(study, args) -> int:
 
 
 def _cmd_run(args) -> int:
-    from .config import ConfigError, load_study
-    from .study import Study, StudyError
+    from mapdyn.study.config import ConfigError, load_study
+    from mapdyn.study.folder import Study, StudyError
 
     try:
         cfg = load_study(args.study)
@@ -213,14 +213,14 @@ def _cmd_run(args) -> int:
 
 
 def _open_study(folder: str):
-    from .study import Study
+    from mapdyn.study.folder import Study
 
     return Study(folder)
 
 
 def _cmd_resume(args) -> int:
-    from .config import ConfigError
-    from .study import StudyError
+    from mapdyn.study.config import ConfigError
+    from mapdyn.study.folder import StudyError
 
     try:
         study = _open_study(args.folder)
@@ -231,7 +231,7 @@ def _cmd_resume(args) -> int:
 
 
 def _cmd_status(args) -> int:
-    from .study import StudyError
+    from mapdyn.study.folder import StudyError
 
     try:
         study = _open_study(args.folder)
@@ -246,8 +246,8 @@ def _cmd_status(args) -> int:
 
 
 def _cmd_extend(args) -> int:
-    from .config import ConfigError, parse_duration
-    from .study import StudyError
+    from mapdyn.study.config import ConfigError, parse_duration
+    from mapdyn.study.folder import StudyError
 
     if args.trajectories is None and args.duration is None:
         return _error("extend needs --trajectories N and/or --duration TIME")
@@ -269,7 +269,7 @@ def _cmd_extend(args) -> int:
 
 
 def _cmd_analyze(args) -> int:
-    from .study import StudyError, write_study_report
+    from mapdyn.study.folder import StudyError, write_study_report
 
     try:
         study = _open_study(args.folder)
@@ -283,21 +283,21 @@ def _cmd_analyze(args) -> int:
 
 
 def _cmd_check(args) -> int:
-    from .config import ConfigError, load_study
+    from mapdyn.study.config import ConfigError, load_study
 
     try:
         cfg = load_study(args.study)
     except ConfigError as err:
         return _error(str(err))
     try:
-        from . import preflight
+        from mapdyn.study import preflight
     except ImportError:
         return _error("the preflight module is not available", 1)
     runner = getattr(preflight, "check_study", None)
     if runner is None:
         if cfg.is_model:
             return _error("check applies to molecular studies", 1)
-        from .study import make_backend
+        from mapdyn.study.folder import make_backend
 
         report = preflight.molecular_preflight(make_backend(cfg), cfg.molecule.positions_bohr,
                                                n_steps=cfg.dynamics.nsteps, n_trajectories=cfg.ensemble.trajectories,
@@ -309,7 +309,7 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_validate(args) -> int:
-    from .validate import main_from_args
+    from mapdyn.validation.table import main_from_args
     return main_from_args(args)
 
 

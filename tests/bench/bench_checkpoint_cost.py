@@ -24,11 +24,11 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import numpy as np  # noqa: E402
 from ase import Atoms, units  # noqa: E402
 
-from mapdyn.backends.pyscf_casscf import CASSCFBackend  # noqa: E402
-from mapdyn.checkpoint import TrajectoryStore  # noqa: E402
-from mapdyn.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics  # noqa: E402
-from mapdyn.options import MethodOptions  # noqa: E402
-from mapdyn.sampling import trajectory_generator  # noqa: E402
+from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
+from mapdyn.study.checkpoint import TrajectoryStore  # noqa: E402
+from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
+from mapdyn.core.sampling import trajectory_generator  # noqa: E402
 
 K = 10
 SYMBOLS = ["C", "C", "H", "H", "H", "H"]

@@ -22,11 +22,11 @@ import numpy as np  # noqa: E402
 from ase import units  # noqa: E402
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend  # noqa: E402
-from mapdyn.backends.pyscf_casscf import CASSCFBackend  # noqa: E402
-from mapdyn.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics  # noqa: E402
+from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
+from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics  # noqa: E402
 from mapdyn.models.tully import tully_model  # noqa: E402
-from mapdyn.options import MethodOptions  # noqa: E402
-from mapdyn.sampling import trajectory_generator  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
+from mapdyn.core.sampling import trajectory_generator  # noqa: E402
 
 
 def timed_run(dyn: MappingDynamics, steps: int) -> tuple[float, float]:

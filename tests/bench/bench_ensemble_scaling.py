@@ -28,8 +28,8 @@ STUDY = os.path.join(HERE, os.pardir, os.pardir, "inputs", "ethylene_tiny.toml")
 def warm_worker(study_dir: str) -> float:
     """Runs inside each worker: open the study, build its backend (cached per process), one call."""
     t0 = time.perf_counter()
-    from mapdyn import ensemble
-    from mapdyn.study import initial_row
+    from mapdyn.study import runner as ensemble
+    from mapdyn.study.folder import initial_row
 
     study = ensemble._open(study_dir)
     backend = ensemble._backend_for(study)
@@ -38,9 +38,9 @@ def warm_worker(study_dir: str) -> float:
 
 
 def run_once(template: str, workdir: str, workers: int) -> dict:
-    from mapdyn.cluster import local_cluster_executor
-    from mapdyn.ensemble import run_ensemble
-    from mapdyn.study import Study
+    from mapdyn.study.cluster import local_cluster_executor
+    from mapdyn.study.runner import run_ensemble
+    from mapdyn.study.folder import Study
 
     folder = os.path.join(workdir, f"run_{workers}w")
     shutil.copytree(template, folder)
@@ -67,8 +67,8 @@ def main(argv=None) -> int:
     parser.add_argument("--duration", default="4 fs")
     args = parser.parse_args(argv)
     os.environ.update({"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"})
-    from mapdyn.config import load_study, parse_duration
-    from mapdyn.study import Study, prepare_initial_conditions
+    from mapdyn.study.config import load_study, parse_duration
+    from mapdyn.study.folder import Study, prepare_initial_conditions
 
     cfg = load_study(STUDY)
     cfg = cfg.with_overrides(trajectories=args.trajectories, duration_au=parse_duration(args.duration, "--duration"))

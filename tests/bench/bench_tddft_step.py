@@ -13,7 +13,7 @@ import numpy as np
 from ase import units
 from ase.build import molecule
 
-from mapdyn.backends.pyscf_tddft import TDDFTBackend
+from mapdyn.backends.pyscf.tddft import TDDFTBackend
 
 CASES = [("H2O", "6-31g", None, "tda"), ("H2CO", "6-31g", None, "tda"),
          ("H2CO", "6-31g", "pbe0", "tda"), ("H2CO", "6-31g", "pbe0", "tddft")]

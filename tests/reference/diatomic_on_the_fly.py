@@ -3,8 +3,8 @@
 For trajectories i = 0 … N−1 of the ensemble of make_diatomic_comparison.py (same seed, same
 per-trajectory random streams) we take the sampled bond length r, radial momentum p_r and the
 mapping variables in the adiabatic basis, and run them (a) through the diabatic model with the
-batched engine (mapdyn.propagators.run_diabatic) and (b) through the on-the-fly ASE driver
-(mapdyn.dynamics.MappingDynamics) with the SA-2 CASSCF(2,2)/6-31G backend at every step
+batched engine (mapdyn.core.propagators.run_diabatic) and (b) through the on-the-fly ASE driver
+(mapdyn.driver.dynamics.MappingDynamics) with the SA-2 CASSCF(2,2)/6-31G backend at every step
 (atoms K at −(m_Cl/M) r ê, Cl at +(m_K/M) r ê, momenta ∓p_r ê: zero total linear and angular
 momentum).  The relative phase of the two adiabatic states is matched between the two runs through
 the sign of the bond coupling d_r at t = 0 (the model's basis follows DiabaticModel.adiabatic).
@@ -33,12 +33,12 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import numpy as np
 from ase import Atoms, units
 
-from mapdyn.diatomic import KCL_SCAN, DiatomicGrid, DiatomicModel, atomic_masses_amu, load_packaged_grid, \
+from mapdyn.validation.diatomic import KCL_SCAN, DiatomicGrid, DiatomicModel, atomic_masses_amu, load_packaged_grid, \
     photoexcitation_scenario
-from mapdyn.options import MethodOptions
-from mapdyn.propagators import run_diabatic
-from mapdyn.sampling import gaussian_wavepacket_ensemble
-from mapdyn.windows import window_assignment
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import run_diabatic
+from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+from mapdyn.core.windows import window_assignment
 
 ROOT = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", ".."))
 
@@ -59,8 +59,8 @@ def atomic_write_text(path: str, text: str) -> None:
 
 
 def main(argv=None) -> int:
-    from mapdyn.backends.pyscf_casscf import CASSCFBackend
-    from mapdyn.dynamics import MappingDynamics
+    from mapdyn.backends.pyscf.casscf import CASSCFBackend
+    from mapdyn.driver.dynamics import MappingDynamics
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--study", default=os.path.join(ROOT, "study_diatomic_kcl"))

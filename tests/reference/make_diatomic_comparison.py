@@ -6,8 +6,8 @@ ground state (harmonic width at r_e) is lifted vertically onto the second adiaba
 short range, zero momentum, J = 0).  It runs out to the crossing, where it either stays adiabatic
 (becomes ionic: bound by the Coulomb tail, comes back) or hops to the ground adiabat (neutral
 K + Cl, dissociates).  We compare the upper-adiabat population P_2(t) from
-(a) the exact grid wavepacket (mapdyn.exact) and (b) SQC (square and triangle windows, symmetrized
-zero point) and Ehrenfest on the ADT-diabatized model (mapdyn.diatomic.DiatomicModel).
+(a) the exact grid wavepacket (mapdyn.validation.exact) and (b) SQC (square and triangle windows, symmetrized
+zero point) and Ehrenfest on the ADT-diabatized model (mapdyn.validation.diatomic.DiatomicModel).
 
 Usage (from the repository root):
     OMP_NUM_THREADS=1 python tests/reference/make_diatomic_comparison.py [--study DIR] [--rescan]
@@ -32,10 +32,10 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import numpy as np
 
-from mapdyn.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, kcl_scan_distances, packaged_grid_path,
+from mapdyn.validation.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, kcl_scan_distances, packaged_grid_path,
                              photoexcitation_scenario, run_exact_photoexcitation, run_mapping_photoexcitation,
                              scan_diatomic)
-from mapdyn.options import MethodOptions
+from mapdyn.core.options import MethodOptions
 
 from ase import units
 

@@ -1,6 +1,6 @@
 """Exact scattering reference data for the built-in 1D benchmarks (used by ``mapdyn validate``).
 
-Method: split-operator FFT wavepacket propagation with absorbing layers, ``mapdyn.exact.exact_scattering``
+Method: split-operator FFT wavepacket propagation with absorbing layers, ``mapdyn.validation.exact.exact_scattering``
 (checked against scipy's expm_multiply on the same grid Hamiltonian and against Landau–Zener in
 tests/test_exact.py).  Models: J. C. Tully, J. Chem. Phys. 93, 1061 (1990) (models 1–3) and the wide
 linear crossing of VALIDATION.md (``WideLinearCrossing``), all with mass 2000 a.u.
@@ -10,7 +10,7 @@ Regenerate (deterministic, about two minutes on one core)::
     OMP_NUM_THREADS=1 python tests/reference/make_exact_scattering.py
 
 writes ``src/mapdyn/data/exact_scattering.npz`` atomically.  Every case is also run through
-``mapdyn.exact.check_convergence`` (1.5× finer grid, larger box with longer absorbers, half the time
+``mapdyn.validation.exact.check_convergence`` (1.5× finer grid, larger box with longer absorbers, half the time
 step); the largest change of any channel probability is stored as ``convergence_deviation``.
 
 Conventions: packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on the lower adiabat, σ = ``position_width``
@@ -31,7 +31,7 @@ from pathlib import Path
 
 import numpy as np
 
-from mapdyn.exact import ExactSettings, check_convergence
+from mapdyn.validation.exact import ExactSettings, check_convergence
 from mapdyn.models.tully import tully_model
 
 OUT = Path(__file__).resolve().parents[2] / "src" / "mapdyn" / "data" / "exact_scattering.npz"
@@ -82,7 +82,7 @@ def main() -> int:
         print(f"{name:14s} k={k:7.3f}  T={np.round(r.transmission, 5)}  R={np.round(r.reflection, 5)}  "
               f"conv={rep.max_deviation:.1e}  ({time.time() - t0:.1f} s)", flush=True)
     meta = {
-        "source": "mapdyn.exact.exact_scattering via tests/reference/make_exact_scattering.py",
+        "source": "mapdyn.validation.exact.exact_scattering via tests/reference/make_exact_scattering.py",
         "models": "J. C. Tully, J. Chem. Phys. 93, 1061 (1990); wide linear crossing of VALIDATION.md; mass 2000",
         "wavepacket": "psi ~ exp[-(x-x0)^2/(4 sigma^2) + i k (x-x0)] on the lower adiabat; initial_state 0",
         "units": "Hartree atomic units (Bohr, a.u. momentum, a.u. time, Eh)",

@@ -1,7 +1,7 @@
 """README figures: exact HEOM vs SQC (square and triangle windows) vs Ehrenfest on the stored cases.
 
 HEOM reference: Y. Tanimura & R. Kubo, J. Phys. Soc. Jpn. 58, 101 (1989), computed with QuTiP by
-``make_heom_reference.py``.  Mapping runs: ``mapdyn.heom_cases`` (symmetrized zero point, thermal
+``make_heom_reference.py``.  Mapping runs: ``mapdyn.validation.heom_cases`` (symmetrized zero point, thermal
 Wigner Debye bath, fixed seeds).  Regenerate (a few minutes on one core)::
 
     OMP_NUM_THREADS=1 python tests/reference/make_heom_figures.py
@@ -16,10 +16,10 @@ from pathlib import Path
 
 import numpy as np
 
-import mapdyn.heom_cases as cmp  # noqa: E402
+import mapdyn.validation.heom_cases as cmp  # noqa: E402
 
-from mapdyn.options import MethodOptions  # noqa: E402
-from mapdyn.plots import STATE_COLOURS, new_figure, save_figure  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
+from mapdyn.analysis.plots import STATE_COLOURS, new_figure, save_figure  # noqa: E402
 
 FIG_DIR = Path(__file__).resolve().parents[2] / "examples" / "figures"
 AUT_PER_FS = 41.341373335  # a.u. of time per fs (CODATA 2018)

@@ -13,7 +13,8 @@ OUT = HERE.parents[1] / "examples" / "figures"
 import numpy as np
 sys.path.insert(0, str(HERE.parent))
 from test_vibrational import MORSE, MU, morse_turning_points, cartesian_pair
-from mapdyn import vibrational as V, plots
+from mapdyn.analysis import vibrational as V
+from mapdyn.analysis import plots
 rng = np.random.default_rng(1)
 levels = MORSE.levels(MU)
 rows = []

@@ -1,8 +1,8 @@
 """Accuracy table of the mapping methods on the 1D scattering benchmarks, and the Tully-2 figure.
 
-Compares ``mapdyn.scattering.run_scattering`` (SQC square window, SQC triangle window, both with the
+Compares ``mapdyn.validation.scattering.run_scattering`` (SQC square window, SQC triangle window, both with the
 symmetrized zero point, and Ehrenfest; 2000 trajectories, fixed seed) with the exact grid solver
-``mapdyn.exact.exact_scattering`` for the same packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on the lower
+``mapdyn.validation.exact.exact_scattering`` for the same packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on the lower
 adiabat (σ = 20/k Bohr for Tully's models, 5 Bohr for the wide crossing).  Models: J. C. Tully,
 J. Chem. Phys. 93, 1061 (1990); the wide linear crossing of VALIDATION.md.
 
@@ -24,10 +24,10 @@ from pathlib import Path
 
 import numpy as np
 
-from mapdyn.exact import exact_scattering
+from mapdyn.validation.exact import exact_scattering
 from mapdyn.models.tully import tully_model
-from mapdyn.options import MethodOptions
-from mapdyn.scattering import run_scattering
+from mapdyn.core.options import MethodOptions
+from mapdyn.validation.scattering import run_scattering
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from make_exact_scattering import START, WIDE_CROSSING_SPEEDS, WIDE_WIDTH, landau_zener_average, wide_crossing_momentum  # noqa: E402

@@ -1,4 +1,4 @@
-"""Electronic-structure backends (adapters returning :class:`mapdyn.electronic.ElectronicResult`).
+"""Electronic-structure backends (adapters returning :class:`mapdyn.backends.contract.ElectronicResult`).
 
 Imported lazily so that model studies never pay for importing PySCF.
 """
@@ -6,10 +6,10 @@ Imported lazily so that model studies never pay for importing PySCF.
 import importlib
 
 _EXPORTS = {
-    "CASSCFBackend": "mapdyn.backends.pyscf_casscf",
-    "CASSCFGuess": "mapdyn.backends.pyscf_casscf",
-    "TDDFTBackend": "mapdyn.backends.pyscf_tddft",
-    "time_derivative_couplings": "mapdyn.backends.pyscf_tddft",
+    "CASSCFBackend": "mapdyn.backends.pyscf.casscf",
+    "CASSCFGuess": "mapdyn.backends.pyscf.casscf",
+    "TDDFTBackend": "mapdyn.backends.pyscf.tddft",
+    "time_derivative_couplings": "mapdyn.backends.pyscf.tddft",
 }
 
 __all__ = list(_EXPORTS)

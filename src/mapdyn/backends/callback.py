@@ -22,7 +22,7 @@ key                    shape           meaning
 ``transition_dipoles`` (F, F, 3)       optional
 =====================  ==============  =====================================================
 
-The backend keeps the contract of :mod:`mapdyn.electronic`: the phases of the new states are
+The backend keeps the contract of :mod:`mapdyn.backends.contract`: the phases of the new states are
 aligned to the previous step (:func:`match_states` on the raw overlap), the same signs are applied
 to couplings and dipoles, and everything carried between steps travels in the returned ``guess``,
 so ``compute`` is a pure function of its arguments as long as the user function is.  A function
@@ -39,7 +39,7 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
-from mapdyn.electronic import (LOW_OVERLAP_THRESHOLD, BackendError, ElectronicResult, apply_state_signs,
+from mapdyn.backends.contract import (LOW_OVERLAP_THRESHOLD, BackendError, ElectronicResult, apply_state_signs,
                                match_states)
 
 __all__ = ["CallbackBackend", "CallbackGuess"]

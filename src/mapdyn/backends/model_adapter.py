@@ -14,7 +14,7 @@ Adiabatic data from the diabatic matrix H(R) (eigh: H U = U diag E, columns = st
 
 (Hellmann–Feynman and its off-diagonal form, DESIGN.md §7.5), and the raw overlap with the
 previous step is S_kl = (U_prevᵀ U)_kl, matched and sign-aligned by
-:func:`mapdyn.electronic.match_states`.  On the first call (no guess) the sign convention is the
+:func:`mapdyn.backends.contract.match_states`.  On the first call (no guess) the sign convention is the
 model's own (:meth:`DiabaticModel.adiabatic`: largest component of each eigenvector positive), so
 the driver's initial adiabatic basis is the one the diabatic engine uses for c_ad = Uᵀ c_dia.
 """
@@ -28,8 +28,8 @@ from typing import Any
 
 import numpy as np
 
-from mapdyn.electronic import LOW_OVERLAP_THRESHOLD, ElectronicResult, match_states
-from mapdyn.models.base import DiabaticModel
+from mapdyn.backends.contract import LOW_OVERLAP_THRESHOLD, ElectronicResult, match_states
+from mapdyn.core.model import DiabaticModel
 
 __all__ = ["ModelAdapterBackend", "ModelGuess"]
 

@@ -17,7 +17,7 @@ from typing import Callable
 
 import numpy as np
 
-from .base import DiabaticModel, as_positions
+from mapdyn.core.model import DiabaticModel, as_positions
 
 __all__ = ["CallableModel"]
 

@@ -19,10 +19,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..options import MethodOptions
-from ..sampling import EnsembleState, trajectory_generator
-from ..windows import sample_mapping_variables
-from .vibronic import LinearVibronicModel
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.sampling import EnsembleState, trajectory_generator
+from mapdyn.core.windows import sample_mapping_variables
+from mapdyn.models.vibronic import LinearVibronicModel
 
 __all__ = [
     "ohmic_spectral_density",
@@ -94,7 +94,7 @@ def debye_modes(reorganization: float, cutoff: float, nmodes: int, rule: str = "
 
     Both follow from ∫_0^{ω_j} ρ dω = j − ½ (or j) and c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) (DESIGN.md §7.9,
     re-derived; the tangent rule is common practice).  The top frequency is ≈ (4N/π) ω_c: use the
-    stiff-bath integrator (:mod:`mapdyn.propagators_harmonic`) rather than a tiny time step.
+    stiff-bath integrator (:mod:`mapdyn.core.harmonic_bath`) rather than a tiny time step.
     """
     lam, cutoff, nmodes = _positive("reorganization", reorganization), _positive("cutoff", cutoff), _count("nmodes", nmodes)
     j = np.arange(1, nmodes + 1)
@@ -278,9 +278,9 @@ def thermal_bath_ensemble(model: LinearVibronicModel, ntraj: int, seed: int, bet
     * or an explicit (D,) array Q⁰ (Bohr·√m_e).
 
     Electronic variables are sampled in the window of diabatic state ``initial_state``.  Trajectory i
-    uses :func:`mapdyn.sampling.trajectory_generator` (seed, first_index + i) and draws, in this order,
+    uses :func:`mapdyn.core.sampling.trajectory_generator` (seed, first_index + i) and draws, in this order,
     D normals for Q, D normals for P, then F action uniforms and F angle uniforms
-    (:func:`mapdyn.windows.sample_mapping_variables`).  beta in 1/Eh.
+    (:func:`mapdyn.core.windows.sample_mapping_variables`).  beta in 1/Eh.
     """
     if isinstance(ntraj, bool) or not isinstance(ntraj, (int, np.integer)) or ntraj < 1:
         raise ValueError(f"ntraj={ntraj!r} is not allowed; it must be a positive integer")

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import DiabaticModel, as_positions
+from mapdyn.core.model import DiabaticModel, as_positions
 
 __all__ = ["SimpleAvoidedCrossing", "DualAvoidedCrossing", "ExtendedCoupling", "WideLinearCrossing", "tully_model"]
 

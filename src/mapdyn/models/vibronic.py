@@ -13,7 +13,7 @@ instead of dimensionless ones; :meth:`LinearVibronicModel.from_dimensionless` co
 
 Spin-boson and site-exciton models are special cases (:mod:`mapdyn.models.spin_boson`).  Every
 model here also exposes the split H = V0·1 + H_sys(Q) used by the stiff-bath integrator
-(:mod:`mapdyn.propagators_harmonic`): ``harmonic_frequencies``, ``system_hamiltonian`` and
+(:mod:`mapdyn.core.harmonic_bath`): ``harmonic_frequencies``, ``system_hamiltonian`` and
 ``system_force_constant`` (∂H_sys/∂Q contracted with ρ, independent of Q).
 """
 
@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import DiabaticModel, as_positions
+from mapdyn.core.model import DiabaticModel, as_positions
 
 __all__ = ["LinearVibronicModel"]
 

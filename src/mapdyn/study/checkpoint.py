@@ -13,7 +13,7 @@ File rules
 
 Trajectory folder (``trajectories/traj_000042/``)
 -------------------------------------------------
-* ``state.h5`` — the complete :class:`mapdyn.dynamics.DriverState` as pickle bytes (numpy arrays
+* ``state.h5`` — the complete :class:`mapdyn.driver.dynamics.DriverState` as pickle bytes (numpy arrays
   pickle bit-for-bit; the backend ``guess`` travels inside it), plus readable copies of step,
   time, positions, momenta and mapping variables, and ``meta`` with ``chunks`` = the number of
   frame chunks it covers (it covers chunks 0 … chunks−1) and their digests.

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .options import MethodOptions
+from mapdyn.core.options import MethodOptions
 
 __all__ = [
     "sample_actions",

@@ -4,19 +4,19 @@ A task is (study folder, task id) → run or resume, and returns a :class:`TaskR
 
 * :func:`trajectory_task` — one on-the-fly trajectory (molecules, or a model through the model
   adapter with ``electronic.engine = "on_the_fly"``).  It continues from the trajectory's last
-  good checkpoint (:class:`mapdyn.checkpoint.TrajectoryStore`), writes a frame chunk and a restart
+  good checkpoint (:class:`mapdyn.study.checkpoint.TrajectoryStore`), writes a frame chunk and a restart
   state every ``dynamics.checkpoint_every`` steps, and returns at once if the trajectory is done.
 * :func:`chunk_task` — a chunk of model trajectories through the batched diabatic engine
-  (:func:`mapdyn.propagators.run_diabatic`); one file per chunk and time segment, written once.
+  (:func:`mapdyn.core.propagators.run_diabatic`); one file per chunk and time segment, written once.
 
 Tasks carry paths, not data, so the same code runs in local processes
 (:func:`local_executor`: one process per core, one OpenMP/BLAS thread each) or on a Dask cluster
-(:mod:`mapdyn.cluster` builds an executor with the same interface).  Re-running a task gives the
+(:mod:`mapdyn.study.cluster` builds an executor with the same interface).  Re-running a task gives the
 same files: trajectory i draws from its own seeded stream and the backends are pure functions of
 (positions, guess), so a restarted trajectory continues exactly where it stopped (bit for bit on
 the model backends).
 
-Stopping: :meth:`mapdyn.study.Study.request_stop` creates ``stop.request`` in the study folder;
+Stopping: :meth:`mapdyn.study.folder.Study.request_stop` creates ``stop.request`` in the study folder;
 tasks look for it after every checkpoint and return "interrupted".  Local worker processes
 ignore SIGINT (the parent handles Ctrl-C) and stop at the next checkpoint if the parent dies.
 """
@@ -35,8 +35,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .checkpoint import TrajectoryStore, write_h5
-from .study import CHUNKS, Study, StudyError, initial_row, make_backend, make_model, write_json, write_marker
+from mapdyn.study.checkpoint import TrajectoryStore, write_h5
+from mapdyn.study.folder import CHUNKS, Study, StudyError, initial_row, make_backend, make_model, write_json, write_marker
 
 __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "run_task", "local_executor",
            "SerialExecutor",
@@ -120,8 +120,8 @@ def _fresh_driver(study: Study, index: int):
     """A new :class:`MappingDynamics` at t = 0 for trajectory ``index`` (seeded stream)."""
     from ase import Atoms, units
 
-    from .dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
-    from .sampling import trajectory_generator
+    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.core.sampling import trajectory_generator
 
     cfg = study.config
     d = cfg.dynamics
@@ -156,7 +156,7 @@ def _fresh_driver(study: Study, index: int):
 def _restored_driver(study: Study, state):
     from ase import Atoms, units
 
-    from .dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
 
     cfg = study.config
     d = cfg.dynamics
@@ -244,8 +244,8 @@ def _state_meta(study: Study, dyn) -> dict:
 # ----------------------------------------------------------------------------------------------
 def chunk_task(study_dir: str, chunk: int) -> TaskResult:
     """Run (or continue to the study's end time) chunk ``chunk`` of a batched model study."""
-    from .propagators import run_diabatic
-    from .sampling import EnsembleState, gaussian_wavepacket_ensemble
+    from mapdyn.core.propagators import run_diabatic
+    from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble
 
     t0 = time.perf_counter()
     study = _open(study_dir)
@@ -266,7 +266,7 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
         model = make_model(cfg)
         init = cfg.initial
         if segs:
-            from .checkpoint import read_h5
+            from mapdyn.study.checkpoint import read_h5
 
             last, _ = read_h5(segs[-1][0])
             state = EnsembleState(last["final_R"], last["final_P"], last["final_x"], last["final_p"],

@@ -3,7 +3,7 @@
 Hartree atomic units throughout: positions in Bohr, energies in Eh, gradients in Eh/Bohr,
 dipoles in e·Bohr, time in ħ/Eh.
 
-What this backend returns (``ElectronicResult``, see ``mapdyn.electronic``):
+What this backend returns (``ElectronicResult``, see ``mapdyn.backends.contract``):
 
 * state 0 is the closed-shell reference determinant (RHF or RKS) with its analytic SCF gradient;
   states 1..F-1 are the lowest singlet linear-response roots with analytic gradients
@@ -39,7 +39,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.electronic import BackendError, ElectronicResult, apply_state_signs, match_states
+from mapdyn.backends.contract import BackendError, ElectronicResult, apply_state_signs, match_states
 
 __all__ = [
     "TDDFTBackend",

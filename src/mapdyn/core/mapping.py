@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .options import MethodOptions
+from mapdyn.core.options import MethodOptions
 
 __all__ = [
     "actions",

@@ -32,8 +32,8 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
     [dynamics]   time_step, duration, checkpoint_every, record_every, drift_threshold,
                  stop_on_drift, substeps, propagation
     [ensemble]   trajectories, seed, workers, batch
-    [analysis]   passed to :func:`mapdyn.analysis.settings_from_table` (keys checked here)
-    [cluster]    passed to :func:`mapdyn.cluster.cluster_settings`
+    [analysis]   passed to :func:`mapdyn.analysis.core_tmp.settings_from_table` (keys checked here)
+    [cluster]    passed to :func:`mapdyn.study.cluster.cluster_settings`
 """
 
 from __future__ import annotations
@@ -51,7 +51,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from .options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+from mapdyn.core.options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
 
 __all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "InitialConfig",
            "DynamicsConfig", "EnsembleConfig", "load_study", "parse_study", "parse_duration",
@@ -498,7 +498,7 @@ def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: 
         params = sec.raw("parameters", {})
         if not isinstance(params, Mapping):
             raise ConfigError("electronic.parameters", "must be a table of model parameters, e.g. {A = 0.01, B = 1.6}")
-        from .models.tully import tully_model
+        from mapdyn.models.tully import tully_model
 
         for k, v in params.items():
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
@@ -691,7 +691,7 @@ def _parse_analysis(table: Any) -> dict:
     if not isinstance(table, Mapping):
         raise ConfigError("analysis", f"must be a table ([analysis]), got {_show(table)}")
     try:
-        from . import analysis as _analysis  # guarded: the analysis module is optional
+        from mapdyn import analysis as _analysis  # guarded: the analysis module is optional
     except ImportError:
         return dict(table)
     allowed = getattr(_analysis, "_ANALYSIS_KEYS", None)
@@ -712,7 +712,7 @@ def _parse_cluster(table: Any) -> dict:
     if not isinstance(table, Mapping):
         raise ConfigError("cluster", f"must be a table ([cluster]), got {_show(table)}")
     try:
-        from .cluster import cluster_settings
+        from mapdyn.study.cluster import cluster_settings
     except ImportError:
         return dict(table)
     try:

@@ -50,11 +50,11 @@ from __future__ import annotations
 import numpy as np
 from scipy.linalg.blas import dgemm as _dgemm
 
-from .mapping import effective_density, mapping_energy
-from .models.base import DiabaticModel
-from .options import MethodOptions
-from .propagators import propagate_amplitudes
-from .sampling import EnsembleState
+from mapdyn.core.mapping import effective_density, mapping_energy
+from mapdyn.core.model import DiabaticModel
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import propagate_amplitudes
+from mapdyn.core.sampling import EnsembleState
 
 __all__ = ["HarmonicBathIntegrator", "harmonic_flow_coefficients"]
 
@@ -86,8 +86,8 @@ def harmonic_flow_coefficients(omega2: np.ndarray, t: float):
 class HarmonicBathIntegrator:
     """Batched MMST step with the harmonic reference V0 integrated exactly (see module docstring).
 
-    Same interface as :class:`mapdyn.propagators.DiabaticIntegrator` (``step``, ``force``,
-    ``energy``, ``density``), so it can be passed to :func:`mapdyn.propagators.run_diabatic` as
+    Same interface as :class:`mapdyn.core.propagators.DiabaticIntegrator` (``step``, ``force``,
+    ``energy``, ``density``), so it can be passed to :func:`mapdyn.core.propagators.run_diabatic` as
     ``integrator=``.  The model needs ``harmonic_frequencies`` (D,) (Eh), ``masses``,
     ``system_hamiltonian(R)`` and ``system_contract_gradient(R, rho)``.  dt in a.u.
     averaged : time-averaged H_sys in the oscillator steps (default; see module docstring).

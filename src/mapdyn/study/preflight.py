@@ -33,7 +33,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.electronic import BackendError, ElectronicResult
+from mapdyn.backends.contract import BackendError, ElectronicResult
 
 __all__ = [
     "CheckLine",
@@ -383,7 +383,7 @@ def molecular_preflight(backend: Any, positions_bohr: np.ndarray, *, n_steps: in
     """Backend check (:func:`check_backend`) plus cost lines for an on-the-fly study.
 
     ``n_steps`` per trajectory, ``n_trajectories``, ``workers`` running at once (for the wall-time
-    line); ``ground_state_backend`` (e.g. :class:`mapdyn.initial_pyscf.PySCFGroundState`) is timed
+    line); ``ground_state_backend`` (e.g. :class:`mapdyn.backends.pyscf.ground_state.PySCFGroundState`) is timed
     once for the initial-conditions estimate unless ``initial_conditions_done``.
     """
     pos = np.asarray(positions_bohr, dtype=float)
@@ -428,9 +428,9 @@ def molecular_preflight(backend: Any, positions_bohr: np.ndarray, *, n_steps: in
 
 def _batched_model_cost(config: Any, probe_steps: int = 50) -> tuple[float, int]:
     """Seconds per trajectory-step of the batched diabatic engine, timed on one task-sized batch."""
-    from mapdyn.propagators import DiabaticIntegrator
-    from mapdyn.sampling import gaussian_wavepacket_ensemble
-    from mapdyn.study import make_model
+    from mapdyn.core.propagators import DiabaticIntegrator
+    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.study.folder import make_model
 
     model = make_model(config)
     n = int(min(config.ensemble.batch, config.ensemble.trajectories))
@@ -475,7 +475,7 @@ def _strongest_coupling_point(backend: Any, pos: np.ndarray, npoints: int = 200)
 
 def preflight(study_config: Any, *, n_coordinates: int = 3,
               positions_bohr: np.ndarray | None = None) -> PreflightReport:
-    """Preflight of a validated study (:class:`mapdyn.config.StudyConfig`): ``mapdyn check``.
+    """Preflight of a validated study (:class:`mapdyn.study.config.StudyConfig`): ``mapdyn check``.
 
     First geometry: for molecules the first trajectory's sampled geometry when the study folder
     already holds initial conditions, else the input geometry (before optimisation); for model
@@ -485,7 +485,7 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
     """
     import os
 
-    from mapdyn.study import INITIAL_CONDITIONS, make_backend
+    from mapdyn.study.folder import INITIAL_CONDITIONS, make_backend
 
     cfg = study_config
     n_traj = int(cfg.ensemble.trajectories)
@@ -527,7 +527,7 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
                                f"on {workers} worker{'s' if workers != 1 else ''}"))
         return PreflightReport(lines, numbers)
 
-    from mapdyn.study import _ground_state_backend
+    from mapdyn.study.folder import _ground_state_backend
 
     ic_path = os.path.join(cfg.folder, INITIAL_CONDITIONS)
     done = os.path.isfile(ic_path)
@@ -536,7 +536,7 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
         pos = np.asarray(positions_bohr, dtype=float)
         where = "given geometry"
     elif done:
-        from mapdyn.checkpoint import read_h5
+        from mapdyn.study.checkpoint import read_h5
 
         arrays, _ = read_h5(ic_path)
         pos = np.asarray(arrays["positions_bohr"][0], dtype=float)

@@ -4,7 +4,7 @@ Everything inside is in Hartree atomic units (bond length r in Bohr, energies in
 1/Bohr, masses in electron masses); masses come from ``ase.data.atomic_masses`` (amu) times
 ``ase.units._amu/ase.units._me``.
 
-1. **Scan** (:func:`scan_diatomic`, PySCF through :class:`mapdyn.backends.pyscf_casscf.CASSCFBackend`):
+1. **Scan** (:func:`scan_diatomic`, PySCF through :class:`mapdyn.backends.pyscf.casscf.CASSCFBackend`):
    atom A at the origin, atom B at (0, 0, r).  At every r: the SA-CASSCF energies E_1 < E_2, the
    radial energy gradients dE_k/dr = ê·∇_B E_k (translation invariance, ∇_A E = −∇_B E), and the
    coupling along the bond
@@ -56,7 +56,7 @@ import numpy as np
 from scipy.integrate import cumulative_simpson
 from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
-from .models.base import DiabaticModel, as_positions
+from mapdyn.core.model import DiabaticModel, as_positions
 
 __all__ = [
     "DiatomicGrid",
@@ -213,7 +213,7 @@ def scan_diatomic(symbols: Sequence[str], distances: Sequence[float], basis: str
     falls below MIN_TRACKING_OVERLAP raises.  Only two-state scans are supported (d_r is the
     1–2 coupling).  ``progress(i, n, r, seconds)`` is called after each point when given.
     """
-    from mapdyn.backends.pyscf_casscf import CASSCFBackend
+    from mapdyn.backends.pyscf.casscf import CASSCFBackend
 
     if nstates != 2:
         raise ValueError(f"nstates={nstates!r} is not allowed; the diatomic scan is two-state")
@@ -483,13 +483,13 @@ class PopulationHistory:
 def run_exact_photoexcitation(model: DiatomicModel, scenario: PhotoexcitationScenario, dt: float = 1.0,
                               spacing: float = 0.0225, lower: float = -20.0, upper: float = 72.0,
                               absorber_length: float = 12.0, absorber_strength: float = 0.02) -> PopulationHistory:
-    """Exact wavepacket (split-operator FFT, :mod:`mapdyn.exact`) for the scenario.
+    """Exact wavepacket (split-operator FFT, :mod:`mapdyn.validation.exact`) for the scenario.
 
     Populations are on-grid plus absorbed probability per adiabatic state (absorbed flux booked in
     the state it left on).  Grid: [lower, upper) Bohr with at most ``spacing`` (the point count is
     rounded up to a fast FFT length); absorbing layers of ``absorber_length`` Bohr at both faces.
     """
-    from .exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
+    from mapdyn.validation.exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
 
     import scipy.fft
 
@@ -529,15 +529,15 @@ def run_exact_photoexcitation(model: DiatomicModel, scenario: PhotoexcitationSce
 
 def run_mapping_photoexcitation(model: DiabaticModel, scenario: PhotoexcitationScenario, options,
                                 ntraj: int, seed: int, dt: float = 10.0) -> PopulationHistory:
-    """Mapping ensemble (:func:`mapdyn.propagators.run_diabatic`) for the scenario.
+    """Mapping ensemble (:func:`mapdyn.core.propagators.run_diabatic`) for the scenario.
 
     Initial conditions from the Wigner function of the same packet
-    (:func:`mapdyn.sampling.gaussian_wavepacket_ensemble`, adiabatic initial state).  SQC
+    (:func:`mapdyn.core.sampling.gaussian_wavepacket_ensemble`, adiabatic initial state).  SQC
     populations: window counts over trajectories inside a window, standard error √(P(1−P)/N_w);
     Ehrenfest: mean weight e_f/Σe, standard error = sample standard deviation/√N.
     """
-    from .propagators import run_diabatic
-    from .sampling import gaussian_wavepacket_ensemble
+    from mapdyn.core.propagators import run_diabatic
+    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 
     every = int(round(scenario.record_interval / dt))
     if abs(every * dt - scenario.record_interval) > 1e-9 * scenario.record_interval:
@@ -562,7 +562,7 @@ def run_mapping_photoexcitation(model: DiabaticModel, scenario: PhotoexcitationS
     if options.method == "ehrenfest":
         weight = w[:, :, f]
     else:
-        from .windows import window_assignment
+        from mapdyn.core.windows import window_assignment
 
         weight = np.array([window_assignment(e[t], options) == f for t in range(e.shape[0])], dtype=float)
     r_upper = np.sum(weight * run.R[:, :, 0], axis=1) / np.maximum(weight.sum(axis=1), 1e-300)

@@ -38,7 +38,7 @@ from typing import Any, Callable, Sequence
 import numpy as np
 from scipy import interpolate, optimize
 
-from .options import SQUARE_GAMMA
+from mapdyn.core.options import SQUARE_GAMMA
 
 __all__ = [
     "FragmentPotential",
@@ -334,9 +334,9 @@ def vibrational_distribution(v_continuous: np.ndarray, *, window_half_width: flo
     """Bin continuous vibrational numbers (NaN = unbound) with histogram boxes and symmetric windows.
 
     Bootstrap bounds over fragments (``scipy.stats.bootstrap`` via
-    :func:`mapdyn.analysis.bootstrap_ratio`).  ``n_levels`` default: up to the largest occupied box.
+    :func:`mapdyn.analysis.core_tmp.bootstrap_ratio`).  ``n_levels`` default: up to the largest occupied box.
     """
-    from .analysis import bootstrap_ratio
+    from mapdyn.analysis.core_tmp import bootstrap_ratio
 
     w = float(window_half_width)
     if not 0.0 < w <= 0.5:
@@ -399,14 +399,14 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
                      product_labels: Sequence[str] | None = None) -> VibrationalDistribution:
     """Vibrational distribution of ``frag`` from each trajectory's last frame of a TrajectorySet.
 
-    ``product_labels`` (one per trajectory, from :func:`mapdyn.analysis.classify_products`) is
+    ``product_labels`` (one per trajectory, from :func:`mapdyn.analysis.core_tmp.classify_products`) is
     needed when ``frag.product`` is set.
 
     Masses: ``tset.masses`` (electron masses) or the ASE standard masses of ``tset.symbols``
     (amu × ase.units._amu/_me).
     """
     if not isinstance(frag, FragmentAnalysis):
-        raise ValueError("vibrational entries must be mapdyn.vibrational.FragmentAnalysis objects")
+        raise ValueError("vibrational entries must be mapdyn.analysis.vibrational.FragmentAnalysis objects")
     if tset.positions is None or tset.momenta is None:
         raise ValueError(f"fragment {frag.name or frag.atoms}: the trajectory set needs positions and momenta")
     masses = tset.masses

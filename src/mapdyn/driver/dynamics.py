@@ -9,7 +9,7 @@ for the adiabatic representation with kinetic momentum P = M dR/dt):
     dR/dt = P/M,   i dz_k/dt = E_k z_k − i Σ_l σ_kl z_l,   σ_kl = V·d_kl,
     dP/dt = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩,   ⟨ψ_k|∇H|ψ_l⟩ = δ_kl ∇E_k + (E_l − E_k) d_kl,
 
-ρ_kl = ½(x_k x_l + p_k p_l) − γ_k δ_kl in the adiabatic basis (:func:`mapdyn.mapping.effective_density`),
+ρ_kl = ½(x_k x_l + p_k p_l) − γ_k δ_kl in the adiabatic basis (:func:`mapdyn.core.mapping.effective_density`),
 conserved energy Σ P²/2M + Σ_k ρ_kk E_k.  One step (velocity-Verlet shape, one backend call):
 
 1. P ← P + F(t) Δt/2;  R ← R + Δt P/M  (V = P/M is the mid-step velocity);
@@ -58,10 +58,10 @@ from ase import Atoms, units
 from ase.calculators.singlepoint import SinglePointCalculator
 from ase.md.md import MolecularDynamics
 
-from .electronic import BackendError, ElectronicResult
-from .mapping import actions, effective_density
-from .options import MethodOptions
-from .windows import sample_mapping_variables, window_assignment, window_indicators
+from mapdyn.backends.contract import BackendError, ElectronicResult
+from mapdyn.core.mapping import actions, effective_density
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.windows import sample_mapping_variables, window_assignment, window_indicators
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum", "AMU_IN_ELECTRON_MASSES",
            "PROJECTION_WARNING", "GAP_WARNING"]
@@ -175,7 +175,7 @@ class MappingDynamics(MolecularDynamics):
         masses (amu; set isotopes with ``atoms.set_masses``).  The driver owns the state; ``atoms``
         is updated after every step.
     backend : object with ``nstates`` and ``compute(positions_bohr, guess, need_gradients)``
-        (:mod:`mapdyn.electronic`).
+        (:mod:`mapdyn.backends.contract`).
     timestep : ASE time units (``0.5 * ase.units.fs``; a.u. → ``dt_au * ase.units.AUT``).
     initial_state : adiabatic state index the trajectory starts in (0 = ground state).
     options : :class:`MethodOptions`; ``zero_point="fixed"`` is refused on this path (DESIGN §5a);

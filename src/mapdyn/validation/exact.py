@@ -19,7 +19,7 @@ The probability removed by each application of A is booked per grid point into t
 belongs to (a corner point goes to the face it is deepest into, relative to L), so on-grid norm +
 absorbed = 1 to rounding at all times (tested).  In 1D the faces are "lower" (x → −∞) and "upper".
 
-Wavepacket convention (the same as :func:`mapdyn.sampling.gaussian_wavepacket_ensemble`):
+Wavepacket convention (the same as :func:`mapdyn.core.sampling.gaussian_wavepacket_ensemble`):
 ψ(R) ∝ Π_a exp[−(R_a − R0_a)²/(4σ_a²) + i k_a (R_a − R0_a)] on one electronic state, so |ψ|² has
 standard deviation σ_a (``position_width``, Bohr) and the momentum density σ_P = 1/(2σ_a).
 
@@ -36,10 +36,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 import scipy.fft
 
-from .models.base import DiabaticModel
+from mapdyn.core.model import DiabaticModel
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .scattering import ScatteringResult
+    from mapdyn.validation.scattering import ScatteringResult
 
 __all__ = [
     "Grid",
@@ -343,7 +343,7 @@ def propagate_wavepacket(propagator: GridPropagator, psi0: np.ndarray, nsteps: i
 
 
 # ---------------------------------------------------------------------------------------------
-# 1D scattering with the exact solver (same arguments as mapdyn.scattering.run_scattering)
+# 1D scattering with the exact solver (same arguments as mapdyn.validation.scattering.run_scattering)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -369,7 +369,7 @@ class ExactSettings:
 
 
 def _region_from_model(model, interaction_region):
-    from .scattering import default_interaction_region
+    from mapdyn.validation.scattering import default_interaction_region
     if interaction_region is None:
         return default_interaction_region(model)
     a, b = (float(v) for v in interaction_region)
@@ -382,20 +382,20 @@ def exact_scattering(model: DiabaticModel, momentum: float, position: float, pos
                      initial_state: int = 0, interaction_region: tuple | None = None,
                      settings: ExactSettings = ExactSettings(), record_every: int = 0) -> "ScatteringResult":
     """Exact channel-resolved scattering probabilities for a 1D model (same arguments as
-    :func:`mapdyn.scattering.run_scattering`, which are keywords here after the packet).
+    :func:`mapdyn.validation.scattering.run_scattering`, which are keywords here after the packet).
 
     The packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] (``position`` x0 Bohr, ``momentum`` k a.u.,
     ``position_width`` σ Bohr) starts on adiabatic state ``initial_state`` and is propagated until
     less than ``settings.tolerance`` of probability remains inside ``interaction_region`` (Bohr;
-    default :func:`mapdyn.scattering.default_interaction_region`).  Channel probabilities per
+    default :func:`mapdyn.validation.scattering.default_interaction_region`).  Channel probabilities per
     adiabatic state = probability absorbed at that side + probability still on the grid beyond the
     region on that side.  "Transmitted" is the side the packet moves towards (k > 0: x → +∞).
-    Returns a :class:`mapdyn.scattering.ScatteringResult` with zero standard errors; ``details``
+    Returns a :class:`mapdyn.validation.scattering.ScatteringResult` with zero standard errors; ``details``
     holds the grid, dt, final time, residual inside the region and, when ``record_every`` > 0, the
     on-grid adiabatic populations and cumulative absorbed probabilities vs time (every that many
     steps and at the final step).
     """
-    from .scattering import ScatteringResult, _check_scattering_args
+    from mapdyn.validation.scattering import ScatteringResult, _check_scattering_args
     if model.ndof != 1:
         raise ValueError(f"exact_scattering needs a 1D model; this one has ndof={model.ndof}")
     k, x0, sig = _check_scattering_args(model, momentum, position, position_width, initial_state)

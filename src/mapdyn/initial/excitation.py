@@ -92,7 +92,7 @@ def excitation_properties(backend: Any, positions_bohr: np.ndarray, guess: Any =
     Each geometry starts from the same ``guess`` (e.g. the reference geometry's) so the result
     does not depend on sample order.  Needs ``transition_dipoles`` from the backend.
     """
-    from mapdyn.electronic import BackendError
+    from mapdyn.backends.contract import BackendError
 
     x = np.asarray(positions_bohr, dtype=float)
     if x.ndim != 3 or x.shape[2] != 3:

@@ -12,9 +12,9 @@ import dataclasses
 
 import numpy as np
 
-from .models.base import DiabaticModel
-from .options import MethodOptions
-from .windows import sample_mapping_variables
+from mapdyn.core.model import DiabaticModel
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.windows import sample_mapping_variables
 
 __all__ = ["trajectory_generator", "EnsembleState", "gaussian_wavepacket_ensemble", "to_diabatic"]
 

@@ -2,7 +2,7 @@
 
 All quantities in Hartree atomic units: positions in Bohr, energies in Eh, gradients in Eh/Bohr,
 coupling vectors in 1/Bohr, dipoles in e·Bohr.  The backend follows the contract of
-:mod:`mapdyn.electronic` (DESIGN.md §4): ``compute`` is a pure function of its arguments and
+:mod:`mapdyn.backends.contract` (DESIGN.md §4): ``compute`` is a pure function of its arguments and
 everything carried from one step to the next travels in a picklable :class:`CASSCFGuess`.
 
 Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
@@ -21,7 +21,7 @@ Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
   vectors, ⟨D_I|D_J⟩ = det S^α_IJ · det S^β_IJ with the MO cross-overlap C'ᵀ S_AO(R', R) C over the
   occupied (core + string-occupied active) orbitals (Löwdin's rule for non-orthogonal determinants).
 * By default all gradients and NAC vectors of a step share one pass over the derivative
-  integrals (:mod:`mapdyn.backends.casscf_response`), identical to the plain per-state calls.
+  integrals (:mod:`mapdyn.backends.pyscf.casscf_one_pass`), identical to the plain per-state calls.
 * Warm start from the previous orbitals, Löwdin-orthonormalised at the new geometry
   C (CᵀSC)^(−1/2); the result is guarded by max|CᵀSC − 1| < 1e-10 (raw orbitals from another
   geometry give a converged but wrong CASSCF, DESIGN.md §7.10b).
@@ -36,7 +36,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.electronic import BackendError, ElectronicResult, apply_state_signs, match_states
+from mapdyn.backends.contract import BackendError, ElectronicResult, apply_state_signs, match_states
 
 __all__ = [
     "CASSCFBackend",
@@ -187,7 +187,7 @@ class CASSCFBackend:
     active_space_warning : warn when the smallest singular value of the active-orbital overlap
         with the previous step falls below this.
     gradient_method : ``"one_pass"`` (default: all gradients and NACs with one shared pass over the
-        derivative integrals, :mod:`mapdyn.backends.casscf_response`; identical results) or
+        derivative integrals, :mod:`mapdyn.backends.pyscf.casscf_one_pass`; identical results) or
         ``"plain"`` (one PySCF call per gradient/NAC).  With density fitting the plain path is used.
     cold_start_alternatives : stability search of every cold start: besides the default (or
         ``cas_orbitals``) choice, re-converge with the lowest active orbital swapped for each of the
@@ -706,7 +706,7 @@ class CASSCFBackend:
         natm = len(self.symbols)
         info: dict[str, Any] = {}
         if self.gradient_method == "one_pass" and not self.density_fitting:
-            from mapdyn.backends.casscf_response import one_pass_gradients_and_couplings
+            from mapdyn.backends.pyscf.casscf_one_pass import one_pass_gradients_and_couplings
 
             t0 = time.perf_counter()
             grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf")

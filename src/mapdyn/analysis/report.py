@@ -1,7 +1,7 @@
 """Report folder: PNG figures, one CSV per plotted curve, and a Markdown summary (atomic writes).
 
-``write_report(results, folder)`` takes an :class:`mapdyn.analysis.AnalysisResults` (or a
-:class:`mapdyn.analysis.TrajectorySet`, analysed with default settings) and writes
+``write_report(results, folder)`` takes an :class:`mapdyn.analysis.core_tmp.AnalysisResults` (or a
+:class:`mapdyn.analysis.core_tmp.TrajectorySet`, analysed with default settings) and writes
 
     populations.png / populations.csv            adiabatic populations with bootstrap bands
     initial_population.png / .csv                 initial-state population and exponential fits
@@ -27,8 +27,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from . import plots
-from .analysis import AU_TIME_FS, _HARTREE_EV, AnalysisResults, TrajectorySet, analyze
+from mapdyn.analysis import plots
+from mapdyn.analysis.core_tmp import AU_TIME_FS, _HARTREE_EV, AnalysisResults, TrajectorySet, analyze
 
 __all__ = ["Report", "write_report", "write_csv", "read_csv"]
 
@@ -111,7 +111,7 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     if isinstance(results, TrajectorySet):
         results = analyze(results)
     if not isinstance(results, AnalysisResults):
-        raise ValueError("results must be an AnalysisResults (from mapdyn.analysis.analyze) or a TrajectorySet")
+        raise ValueError("results must be an AnalysisResults (from mapdyn.analysis.core_tmp.analyze) or a TrajectorySet")
     folder = os.fspath(folder)
     os.makedirs(folder, exist_ok=True)
     ts = results.tset

@@ -1,8 +1,8 @@
 """A small ground-state PySCF backend (RHF or RKS) for geometry optimisation and Hessians.
 
-It follows the backend contract of :mod:`mapdyn.electronic` with ``nstates = 1`` and adds
+It follows the backend contract of :mod:`mapdyn.backends.contract` with ``nstates = 1`` and adds
 ``analytic_hessian(positions_bohr)`` (PySCF ``mf.Hessian().kernel()``), which
-:func:`mapdyn.initial.compute_hessian` uses when present.  Excited-state backends live in
+:func:`mapdyn.initial.sampling.compute_hessian` uses when present.  Excited-state backends live in
 ``mapdyn.backends``.  Atomic units throughout (Bohr in, Eh and Eh/Bohr out).
 """
 
@@ -12,7 +12,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.electronic import BackendError, ElectronicResult
+from mapdyn.backends.contract import BackendError, ElectronicResult
 
 __all__ = ["PySCFGroundState"]
 

@@ -111,7 +111,7 @@ def _integer_counts(ax) -> None:
 
 
 def _time(times_au: np.ndarray, time_unit: str) -> tuple[np.ndarray, str]:
-    from .analysis import AU_TIME_FS
+    from mapdyn.analysis.core_tmp import AU_TIME_FS
 
     if time_unit == "fs":
         return np.asarray(times_au) * AU_TIME_FS, "time / fs"
@@ -151,7 +151,7 @@ def plot_populations(series: Any, path: str | os.PathLike, *, time_unit: str = "
 def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike, *, time_unit: str = "fs",
                             title: str | None = None) -> str:
     """Initial-state population with its band and the exponential fits (solid = preferred)."""
-    from .analysis import AU_TIME_FS
+    from mapdyn.analysis.core_tmp import AU_TIME_FS
 
     t, xlabel = _time(series.times, time_unit)
     scale = AU_TIME_FS if time_unit == "fs" else 1.0
@@ -232,7 +232,7 @@ def plot_first_entry(entry: Any, path: str | os.PathLike, *, time_unit: str = "f
 
 def plot_energy_drift(energy: Any, path: str | os.PathLike, *, bins: int = 30, title: str | None = None) -> str:
     """Histogram of the total-energy drift E(end) − E(0) per trajectory, in meV, with the tolerance."""
-    from .analysis import _HARTREE_EV
+    from mapdyn.analysis.core_tmp import _HARTREE_EV
 
     d = energy.drift[np.isfinite(energy.drift)] * _HARTREE_EV * 1e3
     tol = energy.tolerance * _HARTREE_EV * 1e3

@@ -2,7 +2,7 @@
 
 :func:`run_scattering` samples the Wigner function of the Gaussian packet
 ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on one adiabatic state (σ_P = 1/(2σ); common practice), runs the
-batched MMST integrator (:class:`mapdyn.propagators.DiabaticIntegrator`) and stops each trajectory
+batched MMST integrator (:class:`mapdyn.core.propagators.DiabaticIntegrator`) and stops each trajectory
 when it has left the interaction region [a, b] moving outwards (x < a with p < 0, or x > b with
 p > 0).  Its adiabatic actions at that moment are read with the SQC windows (or, for Ehrenfest, as
 the mean-field weights e_f/Σe) and binned by side: "transmitted" is the side the packet moves
@@ -10,7 +10,7 @@ towards (k > 0: x > b), "reflected" the other.  The run ends when all trajectori
 
 Probabilities (SQC): P_{c,f} = N_{c,f}/N_w, N_w the trajectories that ended inside some window, with
 the multinomial standard error √(P(1−P)/N_w).  Ehrenfest: P_{c,f} = mean of the per-trajectory
-weight; standard error = sample standard deviation/√N.  :func:`mapdyn.exact.exact_scattering` takes
+weight; standard error = sample standard deviation/√N.  :func:`mapdyn.validation.exact.exact_scattering` takes
 the same arguments and gives the exact quantum answer for the same packet.
 """
 
@@ -22,11 +22,11 @@ import warnings
 
 import numpy as np
 
-from .models.base import DiabaticModel
-from .options import MethodOptions
-from .propagators import DiabaticIntegrator, adiabatic_actions
-from .sampling import EnsembleState, gaussian_wavepacket_ensemble
-from .windows import window_assignment
+from mapdyn.core.model import DiabaticModel
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import DiabaticIntegrator, adiabatic_actions
+from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble
+from mapdyn.core.windows import window_assignment
 
 __all__ = ["ScatteringResult", "default_interaction_region", "run_scattering", "compare_scattering"]
 
@@ -118,7 +118,7 @@ def run_scattering(model: DiabaticModel, momentum: float, position: float, posit
     model : any 1D :class:`DiabaticModel`; momentum k (a.u., sign = direction); position x0 (Bohr);
     position_width σ (Bohr) of ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on adiabatic state
     ``initial_state``; options : method/window/zero point; ntraj, seed : ensemble size and study seed
-    (trajectory i uses :func:`mapdyn.sampling.trajectory_generator`); interaction_region (a, b) Bohr
+    (trajectory i uses :func:`mapdyn.core.sampling.trajectory_generator`); interaction_region (a, b) Bohr
     (default :func:`default_interaction_region`); dt : time step (a.u.); max_time (a.u.; default
     6 × (b − a + |x0| distance) / initial speed); check_every : steps between exit checks.
     Returns a :class:`ScatteringResult` (transmission/reflection per adiabatic state ± standard error).
@@ -129,7 +129,7 @@ def run_scattering(model: DiabaticModel, momentum: float, position: float, posit
     if not (isinstance(dt, (int, float)) and math.isfinite(dt) and dt > 0):
         raise ValueError(f"dt={dt!r} is not allowed; the time step must be a positive number of a.u.")
     if not isinstance(options, MethodOptions):
-        raise ValueError(f"options={options!r} is not allowed; pass a mapdyn.options.MethodOptions")
+        raise ValueError(f"options={options!r} is not allowed; pass a mapdyn.core.options.MethodOptions")
     if interaction_region is None:
         a, b = default_interaction_region(model)
     else:
@@ -214,8 +214,8 @@ def compare_scattering(model: DiabaticModel, momentum: float, position: float, p
                        initial_state: int = 0, interaction_region: tuple | None = None,
                        dt: float = 2.0) -> tuple[ScatteringResult, ScatteringResult]:
     """(mapping result, exact result) for the same packet and model; see :func:`run_scattering` and
-    :func:`mapdyn.exact.exact_scattering`."""
-    from .exact import exact_scattering
+    :func:`mapdyn.validation.exact.exact_scattering`."""
+    from mapdyn.validation.exact import exact_scattering
     mapped = run_scattering(model, momentum, position, position_width, options, ntraj, seed, initial_state,
                             interaction_region, dt)
     exact = exact_scattering(model, momentum, position, position_width, initial_state=initial_state,

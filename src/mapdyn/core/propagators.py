@@ -19,11 +19,11 @@ import dataclasses
 
 import numpy as np
 
-from .mapping import actions, effective_density, mapping_energy
-from .models.base import DiabaticModel
-from .options import MethodOptions
-from .sampling import EnsembleState
-from .windows import ehrenfest_populations, window_indicators
+from mapdyn.core.mapping import actions, effective_density, mapping_energy
+from mapdyn.core.model import DiabaticModel
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.sampling import EnsembleState
+from mapdyn.core.windows import ehrenfest_populations, window_indicators
 
 __all__ = ["propagate_amplitudes", "DiabaticIntegrator", "DiabaticRun", "run_diabatic", "adiabatic_actions"]
 

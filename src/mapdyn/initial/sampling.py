@@ -2,7 +2,7 @@
 
 Hartree atomic units inside (Eh, Bohr, electron mass m_e, ħ = 1, time unit ħ/Eh ≈ 0.02419 fs);
 ASE's eV/Å appear only inside :class:`GroundStateCalculator`.  Excitation choice and the
-nuclear-ensemble absorption spectrum live in :mod:`mapdyn.initial_excitation`.
+nuclear-ensemble absorption spectrum live in :mod:`mapdyn.initial.excitation`.
 
 Workflow::
 
@@ -31,7 +31,7 @@ from ase import Atoms, units
 from ase.calculators.calculator import Calculator, all_changes
 from ase.data import atomic_masses, atomic_numbers
 
-from mapdyn.electronic import BackendError
+from mapdyn.backends.contract import BackendError
 
 __all__ = [
     "AMU_TO_ME",
@@ -312,7 +312,7 @@ def compute_hessian(backend: Any, positions_bohr: np.ndarray, level_of_theory: s
     """Hessian of state ``state`` (default ground state) at ``positions_bohr``, Eh/Bohr².
 
     method="auto": analytic when the backend offers ``analytic_hessian(positions_bohr)``
-    (e.g. :class:`mapdyn.initial_pyscf.PySCFGroundState` for RHF/RKS, PySCF ``mf.Hessian()``)
+    (e.g. :class:`mapdyn.backends.pyscf.ground_state.PySCFGroundState` for RHF/RKS, PySCF ``mf.Hessian()``)
     and state == 0; otherwise central finite differences of the backend's analytic gradients
     (any backend, including SA-CASSCF and callbacks).
     """

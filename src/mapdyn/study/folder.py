@@ -1,5 +1,5 @@
 """Study folder (DESIGN.md §6): layout, manifest, status derived from the files, initial
-conditions of molecular studies, results as a :class:`mapdyn.analysis.TrajectorySet`.
+conditions of molecular studies, results as a :class:`mapdyn.analysis.core_tmp.TrajectorySet`.
 
 Layout::
 
@@ -7,7 +7,7 @@ Layout::
       study.toml              the input file, verbatim (its sha256 is in the manifest)
       manifest.json           what the study is now: trajectories, duration, task layout, history
       initial_conditions.h5   molecules: reference geometry, Hessian, modes, sampled rows
-      trajectories/traj_000042/   per-trajectory checkpoints (:mod:`mapdyn.checkpoint`)
+      trajectories/traj_000042/   per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`)
           state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json
       chunks/chunk_0003_seg00.h5  batched model studies: one file per chunk of trajectories
                               (and per time segment after an ``extend`` to a later end time)
@@ -32,8 +32,8 @@ from typing import Any, Callable
 
 import numpy as np
 
-from .checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
-from .config import ConfigError, StudyConfig, load_study
+from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
+from mapdyn.study.config import ConfigError, StudyConfig, load_study
 
 __all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus", "make_backend", "prepare_initial_conditions",
            "load_trajectory_set", "write_study_report", "write_json", "read_json", "STUDY_TOML", "MANIFEST",
@@ -402,7 +402,7 @@ def _chunk_layout(first: int, count: int, batch: int) -> list[list[int]]:
 # ----------------------------------------------------------------------------------------------
 def make_model(config: StudyConfig):
     """The diabatic model of a model study."""
-    from .models.tully import tully_model
+    from mapdyn.models.tully import tully_model
 
     return tully_model(config.electronic.model, **config.electronic.model_parameters)
 
@@ -411,12 +411,12 @@ def make_backend(config: StudyConfig):
     """The electronic backend of the dynamics (PySCF pinned to one thread)."""
     e = config.electronic
     if e.backend == "model":
-        from .backends.model_adapter import ModelAdapterBackend
+        from mapdyn.backends.model_adapter import ModelAdapterBackend
 
         return ModelAdapterBackend(make_model(config))
     if e.backend == "callback":
-        from .backends.callback import CallbackBackend
-        from .config import _resolve_callback
+        from mapdyn.backends.callback import CallbackBackend
+        from mapdyn.study.config import _resolve_callback
 
         return CallbackBackend(_resolve_callback(e.function, os.getcwd()), e.states, config.molecule.natoms)
     from pyscf import lib
@@ -424,10 +424,10 @@ def make_backend(config: StudyConfig):
     lib.num_threads(1)
     symbols = list(config.molecule.symbols)
     if e.backend == "casscf":
-        from .backends.pyscf_casscf import CASSCFBackend
+        from mapdyn.backends.pyscf.casscf import CASSCFBackend
 
         return CASSCFBackend(symbols, **e.options)
-    from .backends.pyscf_tddft import TDDFTBackend
+    from mapdyn.backends.pyscf.tddft import TDDFTBackend
 
     return TDDFTBackend(symbols, threads=1, **e.options)
 
@@ -441,7 +441,7 @@ class _GroundStateOf:
         self.backend = backend
 
     def compute(self, positions_bohr, guess=None, need_gradients=True):
-        from .electronic import ElectronicResult
+        from mapdyn.backends.contract import ElectronicResult
 
         r = self.backend.compute(positions_bohr, guess=guess, need_gradients=need_gradients)
         return ElectronicResult(energies=np.asarray(r.energies[:1]),
@@ -453,7 +453,7 @@ def _ground_state_backend(config: StudyConfig, dynamics_backend):
     e = config.electronic
     if config.initial.normal_modes_from == "dynamics":
         return _GroundStateOf(dynamics_backend), e.level_of_theory + " (state 0)"
-    from .initial_pyscf import PySCFGroundState
+    from mapdyn.backends.pyscf.ground_state import PySCFGroundState
 
     xc = e.options.get("xc") if e.backend == "tddft" else None
     gs = PySCFGroundState(list(config.molecule.symbols), e.basis, xc=xc, charge=config.molecule.charge)
@@ -466,8 +466,8 @@ def _ground_state_backend(config: StudyConfig, dynamics_backend):
 def _sample_rows(config: StudyConfig, modes, indices) -> dict:
     """Wigner rows for trajectory ``indices``: positions/momenta (a.u.) and the generator state
     after the nuclear draws (the driver draws the mapping variables from it)."""
-    from .initial import draw_wigner
-    from .sampling import trajectory_generator
+    from mapdyn.initial.sampling import draw_wigner
+    from mapdyn.core.sampling import trajectory_generator
 
     pos, mom, rng_states = [], [], []
     for i in indices:
@@ -484,7 +484,7 @@ def _choose_states(config: StudyConfig, backend, positions, guess) -> tuple[np.n
     n = positions.shape[0]
     if init.excitation == "fixed":
         return np.full(n, int(init.state)), {}
-    from .initial_excitation import choose_initial_states, excitation_properties
+    from mapdyn.initial.excitation import choose_initial_states, excitation_properties
 
     props = excitation_properties(backend, positions, guess=guess)
     choice = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths, "brightest")
@@ -527,7 +527,7 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
         meta["trajectories"] = n
         write_h5(path, arrays, meta)
         return path
-    from .initial import compute_hessian, normal_modes, optimize_ground_state
+    from mapdyn.initial.sampling import compute_hessian, normal_modes, optimize_ground_state
 
     mol = config.molecule
     backend = make_backend(config)
@@ -587,12 +587,12 @@ def initial_row(study: Study, index: int) -> tuple[np.ndarray, np.ndarray, int, 
 # results
 # ----------------------------------------------------------------------------------------------
 def load_trajectory_set(study: Study):
-    """All recorded results of a (finished or partial) study as a :class:`mapdyn.analysis.TrajectorySet`.
+    """All recorded results of a (finished or partial) study as a :class:`mapdyn.analysis.core_tmp.TrajectorySet`.
 
     Time grid: every ``record_every`` steps up to the study's end; trajectories without a frame
     at a time carry NaN there.  Pending trajectories with no frames are left out.
     """
-    from .analysis import TrajectorySet
+    from mapdyn.analysis.core_tmp import TrajectorySet
 
     cfg = study.config
     dt = cfg.dynamics.time_step_au
@@ -697,7 +697,8 @@ def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None
     Returns the report folder, or None when the analysis is not available.
     """
     try:
-        from . import analysis, report
+        from mapdyn.analysis import core_tmp as analysis
+        from mapdyn.analysis import report
     except ImportError:
         log("analysis modules not available; skipping the report")
         return None

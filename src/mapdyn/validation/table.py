@@ -30,9 +30,9 @@ from typing import Callable
 
 import numpy as np
 
-from .models.tully import tully_model
-from .options import MethodOptions
-from .scattering import run_scattering
+from mapdyn.models.tully import tully_model
+from mapdyn.core.options import MethodOptions
+from mapdyn.validation.scattering import run_scattering
 
 __all__ = ["ValidationCase", "CaseResult", "builtin_cases", "run_validation", "format_table"]
 
@@ -109,7 +109,7 @@ def _heom_case(name: str) -> ValidationCase | None:
         return None
 
     def run(options: MethodOptions, ntraj: int, seed: int):
-        from .heom_cases import load_reference, spin_boson_mapping
+        from mapdyn.validation.heom_cases import load_reference, spin_boson_mapping
         ref = load_reference(name)
         # the compared number is a maximum over 241 times, so its noise is ~3 standard errors:
         # use at least 10000 trajectories (σ ≈ 0.01) to keep it well inside the 0.1 tolerance
@@ -131,7 +131,7 @@ def _diatomic_case() -> ValidationCase | None:
         return None
 
     def run(options: MethodOptions, ntraj: int, seed: int):
-        from . import diatomic
+        from mapdyn.validation import diatomic
         ref = diatomic.load_packaged_reference()
         t_pass = float(ref["first_pass_time"])
         scenario = diatomic.PhotoexcitationScenario(**(ref["scenario"] | {"t_final": t_pass}))

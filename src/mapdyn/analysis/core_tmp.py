@@ -8,7 +8,7 @@ ASE convention, converted with ``ase.units``); times are additionally offered in
 Estimators (stated once, used everywhere):
 
 * **SQC populations** (Cotton & Miller, J. Phys. Chem. A 117, 7190 (2013); windowed
-  normalisation as in :func:`mapdyn.windows.window_populations`):
+  normalisation as in :func:`mapdyn.core.windows.window_populations`):
   P_f(t) = N_f(t) / Σ_f' N_f'(t), N_f = number of trajectories whose adiabatic actions lie in the
   window of state f at time t.  Trajectories in no window are counted separately (``n_none``).
 * **Ehrenfest populations**: P_f(t) = Σ_j e_jf(t) / Σ_j Σ_k e_jk(t).
@@ -41,8 +41,8 @@ from typing import Any, Callable, Mapping, Sequence
 import numpy as np
 from scipy import optimize, stats
 
-from .options import MethodOptions
-from .windows import window_indicators
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.windows import window_indicators
 
 __all__ = [
     "AU_TIME_FS",
@@ -89,7 +89,7 @@ try:  # ase.units is the single source of unit constants
     _BOHR_ANGSTROM = float(_ase_units.Bohr)
     _HARTREE_EV = float(_ase_units.Hartree)
 except Exception as exc:  # pragma: no cover - ase is a hard dependency
-    raise ImportError("mapdyn.analysis needs ase for unit constants") from exc
+    raise ImportError("mapdyn.analysis.core_tmp needs ase for unit constants") from exc
 
 #: Trajectory status words used by the study folder and here.
 STATUSES = ("finished", "running", "pending", "failed")
@@ -145,7 +145,7 @@ class TrajectorySet:
             raise ValueError(f"actions must have shape (n, T={self.times.shape[0]}, F), got {self.actions.shape}")
         n, T, F = self.actions.shape
         if not isinstance(self.options, MethodOptions):
-            raise ValueError("options must be a mapdyn.options.MethodOptions")
+            raise ValueError("options must be a mapdyn.core.options.MethodOptions")
         self.initial_states = np.asarray(self.initial_states, dtype=int).reshape(-1)
         if self.initial_states.shape != (n,) or np.any(self.initial_states < 0) or np.any(self.initial_states >= F):
             raise ValueError(f"initial_states must be ({n},) integers in 0..{F - 1}")
@@ -218,7 +218,7 @@ class TrajectorySet:
 
 def from_diabatic_run(run: Any, initial_states: Sequence[int] | int | None = None,
                       masses: np.ndarray | None = None, metadata: dict | None = None) -> TrajectorySet:
-    """A :class:`TrajectorySet` from a :class:`mapdyn.propagators.DiabaticRun` (model ensembles).
+    """A :class:`TrajectorySet` from a :class:`mapdyn.core.propagators.DiabaticRun` (model ensembles).
 
     Takes the adiabatic actions (T, n, F) → (n, T, F), energies (T, n) → (n, T) Eh and, when
     recorded, R/P (T, n, D) → coordinates/coordinate_momenta (n, T, D).  ``initial_states``
@@ -250,7 +250,7 @@ def from_diabatic_run(run: Any, initial_states: Sequence[int] | int | None = Non
 
 def frames_to_record(frames: Sequence[Mapping[str, Any]], **extra) -> dict:
     """One trajectory record for :func:`from_trajectories` from the frame dicts recorded by
-    :class:`mapdyn.dynamics.MappingDynamics` (keys time_au, actions, total_energy_Eh,
+    :class:`mapdyn.driver.dynamics.MappingDynamics` (keys time_au, actions, total_energy_Eh,
     positions_bohr, momenta_au).  ``extra`` adds status, reason, initial_state, index."""
     rec = {"time_au": np.array([f["time_au"] for f in frames], dtype=float),
            "actions": np.array([f["actions"] for f in frames], dtype=float)}
@@ -1087,7 +1087,7 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
         if tset.options.method == "ehrenfest":
             final_state[rows_ok] = np.argmax(e_last, axis=1)
         else:
-            from .windows import window_assignment
+            from mapdyn.core.windows import window_assignment
             final_state[rows_ok] = window_assignment(e_last, tset.options)
     labels_per: list[str] = []
     excluded = []
@@ -1214,7 +1214,7 @@ def flagged_trajectories(tset: TrajectorySet, energy: EnergyReport | None = None
 # ----------------------------------------------------------------------------------------------
 @dataclasses.dataclass
 class AnalysisResults:
-    """Everything :func:`mapdyn.report.write_report` writes (see the individual result types)."""
+    """Everything :func:`mapdyn.analysis.report.write_report` writes (see the individual result types)."""
 
     tset: TrajectorySet
     populations: PopulationSeries
@@ -1239,8 +1239,8 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
 
     observables : specs for :class:`GeometricObservable`; first_entry : (state, observable-spec or
     None) pairs; classifier : product classifier (see :func:`classify_products`); vibrational :
-    :class:`mapdyn.vibrational.FragmentAnalysis` objects (or specs) evaluated on final frames;
-    spectrum : an :class:`mapdyn.initial_excitation.AbsorptionSpectrum` to include in the report;
+    :class:`mapdyn.analysis.vibrational.FragmentAnalysis` objects (or specs) evaluated on final frames;
+    spectrum : an :class:`mapdyn.initial.excitation.AbsorptionSpectrum` to include in the report;
     lifetime_resamples : trajectory-bootstrap refits for the lifetime uncertainties (0 = covariance).
     """
     kw = dict(confidence_level=confidence_level, n_resamples=n_resamples, seed=seed)
@@ -1260,7 +1260,7 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     flags = flagged_trajectories(tset, energy)
     vib = []
     for frag in vibrational:
-        from .vibrational import analyze_fragment
+        from mapdyn.analysis.vibrational import analyze_fragment
         vib.append(analyze_fragment(tset, frag, **kw,
                                     product_labels=None if branching is None else branching.per_trajectory))
     settings = {"confidence_level": confidence_level, "n_resamples": n_resamples, "bootstrap_seed": seed,
@@ -1288,7 +1288,7 @@ def _unknown_key(where: str, key: str, allowed: Sequence[str]) -> ValueError:
 def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
                         backend_factory: Callable[[Sequence[str]], Any] | None = None,
                         symbols: Sequence[str] | None = None) -> Any:
-    """A :class:`mapdyn.vibrational.FragmentAnalysis` from an input table::
+    """A :class:`mapdyn.analysis.vibrational.FragmentAnalysis` from an input table::
 
         atoms = [0, 1]          # atom indices (0-based)
         name = "H2"             # optional
@@ -1302,7 +1302,7 @@ def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
     ``<folder>/fragments/<name>.npz``.
     """
     import os
-    from . import vibrational as vib
+    from mapdyn.analysis import vibrational as vib
 
     for k in table:
         if k not in _FRAGMENT_KEYS:
@@ -1391,23 +1391,23 @@ def settings_from_table(table: Mapping[str, Any] | None, *, folder: str | None =
 def load_study(folder: str) -> TrajectorySet:
     """Recorded results of a finished or partial study folder as a :class:`TrajectorySet`.
 
-    (Results loader; not to be confused with :func:`mapdyn.config.load_study`, which reads an
-    input file.)  Uses the folder reader of :mod:`mapdyn.study` (status, failure reasons and
-    frames all derived from the files); raises :class:`mapdyn.study.StudyError` when nothing has
+    (Results loader; not to be confused with :func:`mapdyn.study.config.load_study`, which reads an
+    input file.)  Uses the folder reader of :mod:`mapdyn.study.folder` (status, failure reasons and
+    frames all derived from the files); raises :class:`mapdyn.study.folder.StudyError` when nothing has
     been recorded yet.
     """
-    from .study import Study, load_trajectory_set
+    from mapdyn.study.folder import Study, load_trajectory_set
 
     return load_trajectory_set(Study(folder))
 
 
 def study_spectrum(folder: str, fwhm_ev: float = 0.15) -> Any:
     """Absorption spectrum of the sampled geometries (an
-    :class:`mapdyn.initial_excitation.AbsorptionSpectrum`, Gaussian FWHM ``fwhm_ev`` eV) when the
+    :class:`mapdyn.initial.excitation.AbsorptionSpectrum`, Gaussian FWHM ``fwhm_ev`` eV) when the
     study's ``initial_conditions.h5`` holds excitation energies and oscillator strengths; else None."""
     import os
-    from .checkpoint import CheckpointError, read_h5
-    from .initial_excitation import absorption_spectrum
+    from mapdyn.study.checkpoint import CheckpointError, read_h5
+    from mapdyn.initial.excitation import absorption_spectrum
 
     path = os.path.join(folder, "initial_conditions.h5")
     if not os.path.exists(path):
@@ -1420,7 +1420,7 @@ def study_spectrum(folder: str, fwhm_ev: float = 0.15) -> Any:
 
 
 def analyze_study(folder: Any, **overrides) -> AnalysisResults:
-    """Load a study folder (or :class:`mapdyn.study.Study`), read its ``[analysis]`` table, add the
+    """Load a study folder (or :class:`mapdyn.study.folder.Study`), read its ``[analysis]`` table, add the
     spectrum when present and run :func:`analyze`; ``overrides`` replace keyword arguments.
 
     The energy tolerance defaults to the study's ``dynamics.drift_threshold``.
@@ -1428,7 +1428,7 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     PySCF backend (RHF, or RKS with the study's functional) in the study's basis on the isolated
     fragment, cached in ``<folder>/fragments/``.
     """
-    from .study import Study, load_trajectory_set
+    from mapdyn.study.folder import Study, load_trajectory_set
 
     study = folder if isinstance(folder, Study) else Study(folder)
     tset = load_trajectory_set(study)
@@ -1436,7 +1436,7 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     symbols = None if getattr(cfg, "molecule", None) is None else tuple(cfg.molecule.symbols)
 
     def fragment_backend(frag_symbols):
-        from .initial_pyscf import PySCFGroundState
+        from mapdyn.backends.pyscf.ground_state import PySCFGroundState
 
         e = cfg.electronic
         if not e.basis:

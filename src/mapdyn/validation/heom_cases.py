@@ -5,7 +5,7 @@ The models are built from the parameters stored in ``src/mapdyn/data/heom_<case>
 ``make_heom_reference.py``; same Hamiltonian and J(ω) conventions, DESIGN §7.9), the bath is
 discretised with :func:`mapdyn.models.spin_boson.debye_modes` (midpoint tangent rule), sampled from
 the thermal Wigner function around Q⁰ = 0 (factorised initial state, as in the HEOM run) and
-propagated with :class:`mapdyn.propagators_harmonic.HarmonicBathIntegrator`.
+propagated with :class:`mapdyn.core.harmonic_bath.HarmonicBathIntegrator`.
 """
 from __future__ import annotations
 
@@ -14,10 +14,10 @@ from importlib import resources
 
 import numpy as np
 
-from .models.spin_boson import ExcitonTransferModel, SpinBoson, thermal_bath_ensemble
-from .options import MethodOptions
-from .propagators import run_diabatic
-from .propagators_harmonic import HarmonicBathIntegrator
+from mapdyn.models.spin_boson import ExcitonTransferModel, SpinBoson, thermal_bath_ensemble
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.propagators import run_diabatic
+from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
 
 
 def load_reference(name: str) -> dict:
