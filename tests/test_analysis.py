@@ -7,7 +7,9 @@ import os
 import numpy as np
 import pytest
 
-from mapdyn.analysis import core_tmp as A
+import mapdyn.analysis as A
+import mapdyn.study.analysis_settings as SS
+import mapdyn.study.analyze as SA
 from mapdyn.analysis import report as R
 from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 
@@ -439,7 +441,7 @@ def test_from_trajectories_pads_unequal_lengths():
 def test_settings_from_table(tmp_path):
     r = np.linspace(0.8, 10, 50)
     np.savetxt(tmp_path / "curve.csv", np.c_[r, 0.17 * (1 - np.exp(-(r - 1.4))) ** 2], delimiter=",")
-    kw = A.settings_from_table({"observables": ["distance 0 1"], "first_entry": [{"state": 0}],
+    kw = SS.settings_from_table({"observables": ["distance 0 1"], "first_entry": [{"state": 0}],
                                 "products": {"apart": [{"distance": [0, 1], "above": 3.0}]},
                                 "fragments": [{"atoms": [0, 1], "potential": {"curve": "curve.csv"}},
                                               {"atoms": [0, 1], "name": "m", "potential": {"morse": {"D": 0.17, "a": 1.0, "r_e": 1.4}}}],
@@ -449,9 +451,9 @@ def test_settings_from_table(tmp_path):
     assert "curve file curve.csv" in kw["vibrational"][0].potential.source
     assert kw["vibrational"][0].name == "H0-H1" and "Morse" in kw["vibrational"][1].potential.source
     with pytest.raises(ValueError, match="'observable'"):
-        A.settings_from_table({"observable": []})
+        SS.settings_from_table({"observable": []})
     with pytest.raises(ValueError, match="needs the study's backend"):
-        A.settings_from_table({"fragments": [{"atoms": [0, 1], "potential": {"scan": {}}}]}, symbols=("H", "H"))
+        SS.settings_from_table({"fragments": [{"atoms": [0, 1], "potential": {"scan": {}}}]}, symbols=("H", "H"))
 
 
 def test_no_lifetime_when_exponential_does_not_describe_the_curve():
@@ -511,7 +513,7 @@ def test_study_folder_load_analyze_and_cli(tmp_path):
     toml.write_text(STUDY_TOML)
     folder = tmp_path / "study"
     assert main(["run", str(toml), "--output", str(folder), "--quiet", "--no-analysis"]) == 0
-    ts = A.load_study(str(folder))
+    ts = SA.load_study_trajectories(str(folder))
     assert ts.ntraj == 40 and ts.status_counts()["finished"] == 40 and ts.times[-1] == 800.0
     # the same 40 trajectories in memory (same seed, same per-trajectory streams) give the same populations
     model = tully_model("tully1")
@@ -521,7 +523,7 @@ def test_study_folder_load_analyze_and_cli(tmp_path):
     disk = A.populations(ts, bootstrap=False)
     np.testing.assert_allclose(disk.populations, mem.populations, atol=1e-12, equal_nan=True)
     assert np.array_equal(disk.n_none, mem.n_none)
-    res = A.analyze_study(str(folder))
+    res = SA.analyze_study(str(folder))
     br = res.branching
     assert br is not None and sum(br.counts) == 40
     final = run.final.R[:, 0]
@@ -534,7 +536,7 @@ def test_study_folder_load_analyze_and_cli(tmp_path):
         assert (folder / "report" / name).exists(), name
     # a partial folder: one chunk lost → its trajectories are left out, the rest still analysed
     os.unlink(folder / "chunks" / "chunk_0001_seg00.h5")
-    part = A.load_study(str(folder))
+    part = SA.load_study_trajectories(str(folder))
     assert part.ntraj == 25 and 15 not in part.indices
     A.analyze(part, n_resamples=99, lifetime_resamples=0)
 
@@ -555,11 +557,11 @@ def test_study_spectrum_from_initial_conditions(tmp_path):
     from mapdyn.study.checkpoint import write_h5
     from mapdyn.initial.excitation import absorption_spectrum
 
-    assert A.study_spectrum(str(tmp_path)) is None
+    assert SA.study_spectrum(str(tmp_path)) is None
     rng = np.random.default_rng(2)
     exc, osc = 0.2 + 0.01 * rng.standard_normal((10, 2)), rng.random((10, 2)) * 0.2
     write_h5(tmp_path / "initial_conditions.h5", {"excitation_energies_hartree": exc, "oscillator_strengths": osc})
-    spec = A.study_spectrum(str(tmp_path), fwhm_ev=0.2)
+    spec = SA.study_spectrum(str(tmp_path), fwhm_ev=0.2)
     ref = absorption_spectrum(exc, osc, fwhm_ev=0.2)
     np.testing.assert_array_equal(spec.cross_section_angstrom2, ref.cross_section_angstrom2)
 
@@ -573,15 +575,16 @@ def test_driver_frames_give_the_drivers_own_window_bookkeeping():
     import ase
     from ase import units
     from mapdyn.backends.model_adapter import ModelAdapterBackend
-    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.units import AMU_IN_ME
+    from mapdyn.driver.dynamics import MappingDynamics
     from mapdyn.models.tully import tully_model
     from mapdyn.core.sampling import trajectory_generator
 
     model = tully_model("tully1")
-    p_ase = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr
+    p_ase = AMU_IN_ME * units.AUT / units.Bohr
     records, driver_pops = [], []
     for i in range(6):
-        atoms = ase.Atoms("H", positions=[[-3.0 * units.Bohr, 0, 0]], masses=[model.masses[0] / AMU_IN_ELECTRON_MASSES])
+        atoms = ase.Atoms("H", positions=[[-3.0 * units.Bohr, 0, 0]], masses=[model.masses[0] / AMU_IN_ME])
         atoms.set_momenta([[25.0 / p_ase, 0, 0]])
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")

@@ -17,15 +17,17 @@ import pytest
 from ase import units
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
-from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, read_h5, write_h5
+from mapdyn.files import atomic_write
+from mapdyn.units import AMU_IN_ME
+from mapdyn.driver.dynamics import MappingDynamics
 from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.sampling import trajectory_generator
 
 pytestmark = pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning")
 
-P_ASE = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr
+P_ASE = AMU_IN_ME * units.AUT / units.Bohr
 K = 10  # checkpoint interval (steps)
 
 
@@ -35,7 +37,7 @@ def driver(restart_state=None, couplings=True, options=MethodOptions(), seed=3, 
     rng = trajectory_generator(seed, index)
     x0 = -6.0 + 0.5 * rng.standard_normal()
     p0 = 15.0 + 0.5 * rng.standard_normal()
-    a = ase.Atoms("H", positions=[[x0 * units.Bohr, 0, 0]], masses=[2000.0 / AMU_IN_ELECTRON_MASSES])
+    a = ase.Atoms("H", positions=[[x0 * units.Bohr, 0, 0]], masses=[2000.0 / AMU_IN_ME])
     a.set_momenta([[p0 / P_ASE, 0, 0]])
     kw = dict(restart_state=restart_state) if restart_state is not None else dict(rng=rng)
     return MappingDynamics(a, backend, 4.0 * units.AUT, 0, options, **kw)

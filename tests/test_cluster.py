@@ -20,7 +20,7 @@ import pytest
 distributed = pytest.importorskip("distributed")
 import cloudpickle  # noqa: E402  (a dependency of distributed)
 
-from mapdyn import cluster  # noqa: E402
+from mapdyn.study import cluster  # noqa: E402
 from mapdyn.study.cluster import ClusterError, cluster_executor, cluster_settings, local_cluster_executor  # noqa: E402
 
 # Workers are fresh processes that cannot import this test module by name; ship its functions by value.
@@ -152,9 +152,10 @@ def test_task_that_raises_once_is_retried(dask_executor, tmp_path):
 # The ensemble runner on Dask: same code path (run_ensemble + run_task), same files
 # ---------------------------------------------------------------------------------------------
 
-from mapdyn.study.config import load_study  # noqa: E402
+from mapdyn.study.config import load_study_config  # noqa: E402
 from mapdyn.study.runner import run_ensemble, run_task  # noqa: E402
-from mapdyn.study.folder import Study, load_trajectory_set  # noqa: E402
+from mapdyn.study.folder import Study
+from mapdyn.study.analyze import load_trajectory_set  # noqa: E402
 
 #: batched model study: Tully model 1 (scenario of our own), 4 chunks of 100 trajectories.
 MODEL_STUDY = """
@@ -207,7 +208,7 @@ workers = 2
 def _study(tmp_path, text, name):
     path = tmp_path / f"{name}.toml"
     path.write_text(f'[study]\nname = "{name}"\nfolder = "{tmp_path / name}"\n' + text)
-    return Study.create(load_study(path))
+    return Study.create(load_study_config(path))
 
 
 def _same_results(a, b):
@@ -251,7 +252,7 @@ def test_killed_worker_mid_run_ensemble_completes_identically(dask_executor, tmp
                 marker = os.path.join(folder, "running.json")
                 if os.path.exists(marker):
                     from mapdyn.study.checkpoint import TrajectoryStore
-                    from mapdyn.study.folder import read_json
+                    from mapdyn.files import read_json
 
                     try:
                         pid = int(read_json(marker)["pid"])

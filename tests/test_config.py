@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from mapdyn.cli import main
-from mapdyn.study.config import ConfigError, load_study, parse_duration
+from mapdyn.study.config import ConfigError, load_study_config, parse_duration
 
 MODEL = """
 [study]
@@ -166,7 +166,7 @@ def test_exit_code_of_the_real_command(tmp_path):
 def test_valid_inputs_and_units(tmp_path):
     p = tmp_path / "m.toml"
     p.write_text(MODEL)
-    cfg = load_study(p)
+    cfg = load_study_config(p)
     assert cfg.batched and cfg.dynamics.nsteps == 50 and cfg.initial.position_bohr == (-8.0,)
     assert cfg.method.window == "triangle" and cfg.folder == os.path.abspath(os.path.join("runs", "m"))
     # 1 fs = 41.341 a.u. of time (CODATA, via ase.units: 1 a.u. = 2.4188843e-17 s)
@@ -175,7 +175,7 @@ def test_valid_inputs_and_units(tmp_path):
     (tmp_path / "h2.xyz").write_text("2\n\nH 0 0 0\nH 0 0 0.74\n")
     q = tmp_path / "mol.toml"
     q.write_text(MOLECULE.replace('atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]', 'geometry = "h2.xyz"'))
-    mol = load_study(q)
+    mol = load_study_config(q)
     # 0.74 Å in Bohr (ase.units.Bohr = 0.52917721 Å)
     assert mol.molecule.positions_bohr[1, 2] == pytest.approx(0.74 / 0.529177210903, rel=1e-8)
     assert mol.electronic.options["ncas"] == 2 and mol.dynamics.nsteps == 10
@@ -187,4 +187,4 @@ def test_every_shipped_input_is_valid():
     names = sorted(f for f in os.listdir(here) if f.endswith(".toml"))
     assert len(names) >= 3
     for name in names:
-        load_study(os.path.join(here, name))
+        load_study_config(os.path.join(here, name))

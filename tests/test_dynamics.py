@@ -20,7 +20,7 @@ from ase import units
 
 from mapdyn.backends.callback import CallbackBackend
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.driver.dynamics import (AMU_IN_ELECTRON_MASSES, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics,
+from mapdyn.driver.dynamics import (AMU_IN_ME, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics,
                              remove_total_momentum)
 from mapdyn.backends.contract import BackendError
 from mapdyn.core.model import DiabaticModel, as_positions
@@ -33,11 +33,11 @@ from mapdyn.core.windows import sample_mapping_variables
 pytestmark = [pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning"),
               pytest.mark.filterwarnings("ignore:time step does not resolve:UserWarning")]
 
-P_ASE_TO_AU = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr  # ASE momentum unit in a.u.
+P_ASE_TO_AU = AMU_IN_ME * units.AUT / units.Bohr  # ASE momentum unit in a.u.
 
 
 def one_atom(x_bohr: float, p_au: float, mass_au: float) -> ase.Atoms:
-    a = ase.Atoms("H", positions=[[x_bohr * units.Bohr, 0.0, 0.0]], masses=[mass_au / AMU_IN_ELECTRON_MASSES])
+    a = ase.Atoms("H", positions=[[x_bohr * units.Bohr, 0.0, 0.0]], masses=[mass_au / AMU_IN_ME])
     a.set_momenta([[p_au / P_ASE_TO_AU, 0.0, 0.0]])
     return a
 
@@ -207,7 +207,7 @@ class TwoModeModel(DiabaticModel):
 
 
 def two_mode_driver(with_couplings=True, dt=2.0, **kw):
-    a = ase.Atoms("H", positions=[[-4.0 * units.Bohr, 0.3 * units.Bohr, 0.0]], masses=[2000.0 / AMU_IN_ELECTRON_MASSES])
+    a = ase.Atoms("H", positions=[[-4.0 * units.Bohr, 0.3 * units.Bohr, 0.0]], masses=[2000.0 / AMU_IN_ME])
     a.set_momenta([[15.0 / P_ASE_TO_AU, 3.0 / P_ASE_TO_AU, 0.0]])
     return MappingDynamics(a, ModelAdapterBackend(TwoModeModel(), with_couplings=with_couplings), dt * units.AUT, 0,
                            MethodOptions(), mapping_variables=(np.array([1.5, 0.4]), np.array([-0.2, 0.6])), **kw)
@@ -303,7 +303,7 @@ def test_geometry_file_input_and_zero_momenta(tmp_path):
                           rng=np.random.default_rng(0), zero_linear_momentum=True, zero_angular_momentum=True)
     P0 = dyn.state.momenta
     np.testing.assert_allclose(P0.sum(axis=0), 0, atol=1e-12)
-    np.testing.assert_allclose(dyn.masses_au / AMU_IN_ELECTRON_MASSES, atoms.get_masses(), rtol=1e-14)
+    np.testing.assert_allclose(dyn.masses_au / AMU_IN_ME, atoms.get_masses(), rtol=1e-14)
     dyn.run(10)  # free flight: momenta unchanged, energy exact
     np.testing.assert_allclose(dyn.state.momenta, P0, atol=1e-14)
     assert abs(dyn.frames[-1]["drift_Eh"]) < 1e-14

@@ -12,7 +12,7 @@ from ase import units  # noqa: E402
 
 from mapdyn.backends.contract import ElectronicResult  # noqa: E402
 from mapdyn.initial.sampling import (  # noqa: E402
-    AMU_TO_ME, LevelOfTheoryWarning, ModeDroppedWarning, check_level_of_theory, compute_hessian,
+    AMU_IN_ME, LevelOfTheoryWarning, ModeDroppedWarning, check_level_of_theory, compute_hessian,
     draw_wigner, masses_amu_for, normal_modes, optimize_ground_state, remove_rigid_body_motion,
     sample_wigner, trajectory_rng, wigner_widths)
 from mapdyn.initial.excitation import (  # noqa: E402

@@ -152,10 +152,10 @@ def test_check_command_on_the_tiny_molecular_study(capsys):
     import os
 
     from mapdyn.cli import main
-    from mapdyn.study.config import load_study
+    from mapdyn.study.config import load_study_config
 
     path = os.path.join(os.path.dirname(__file__), os.pardir, "inputs", "ethylene_tiny.toml")
-    backend = load_study(path).electronic.backend
+    backend = load_study_config(path).electronic.backend
     code = main(["check", path])
     out = capsys.readouterr().out.splitlines()
     assert code == 0, "\n".join(out)

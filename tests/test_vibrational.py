@@ -8,7 +8,9 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from mapdyn.analysis import core_tmp as A
+import mapdyn.analysis as A
+import mapdyn.study.analysis_settings as SS
+import mapdyn.study.analyze as SA
 from mapdyn.analysis import vibrational as V
 from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import signal
 import sys
 import time
@@ -143,8 +142,9 @@ def _log(msg: str) -> None:
 
 def _execute(study, args) -> int:
     """Initial conditions (molecules), the ensemble, the report."""
+    from mapdyn.study.analyze import write_study_report
+    from mapdyn.study.initial_conditions import prepare_initial_conditions
     from mapdyn.study.runner import run_ensemble
-    from mapdyn.study.folder import prepare_initial_conditions, write_study_report
 
     cfg = study.config
     stopper = _Stop()
@@ -196,11 +196,11 @@ def _execute(study, args) -> int:
 
 
 def _cmd_run(args) -> int:
-    from mapdyn.study.config import ConfigError, load_study
+    from mapdyn.study.config import ConfigError, load_study_config
     from mapdyn.study.folder import Study, StudyError
 
     try:
-        cfg = load_study(args.study)
+        cfg = load_study_config(args.study)
     except ConfigError as err:
         return _error(str(err))
     if args.workers is not None and args.workers < 1:
@@ -269,7 +269,8 @@ def _cmd_extend(args) -> int:
 
 
 def _cmd_analyze(args) -> int:
-    from mapdyn.study.folder import StudyError, write_study_report
+    from mapdyn.study.analyze import write_study_report
+    from mapdyn.study.folder import StudyError
 
     try:
         study = _open_study(args.folder)
@@ -283,21 +284,19 @@ def _cmd_analyze(args) -> int:
 
 
 def _cmd_check(args) -> int:
-    from mapdyn.study.config import ConfigError, load_study
+    from mapdyn.study.config import ConfigError, load_study_config
 
     try:
-        cfg = load_study(args.study)
+        cfg = load_study_config(args.study)
     except ConfigError as err:
         return _error(str(err))
-    try:
-        from mapdyn.study import preflight
-    except ImportError:
-        return _error("the preflight module is not available", 1)
+    from mapdyn.study import preflight
+
     runner = getattr(preflight, "check_study", None)
     if runner is None:
         if cfg.is_model:
             return _error("check applies to molecular studies", 1)
-        from mapdyn.study.folder import make_backend
+        from mapdyn.study.backend_factory import make_backend
 
         report = preflight.molecular_preflight(make_backend(cfg), cfg.molecule.positions_bohr,
                                                n_steps=cfg.dynamics.nsteps, n_trajectories=cfg.ensemble.trajectories,

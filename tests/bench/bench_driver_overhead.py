@@ -23,7 +23,8 @@ from ase import units  # noqa: E402
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend  # noqa: E402
 from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
-from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics  # noqa: E402
+from mapdyn.units import AMU_IN_ME
+from mapdyn.driver.dynamics import MappingDynamics  # noqa: E402
 from mapdyn.models.tully import tully_model  # noqa: E402
 from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.sampling import trajectory_generator  # noqa: E402
@@ -53,8 +54,8 @@ def main(steps: int = 20) -> None:
     print(f"casscf_max_drift_Eh: {max(abs(f['drift_Eh']) for f in dyn.frames):.3e}")
 
     model = tully_model("tully1")
-    a = ase.Atoms("H", positions=[[-8.0 * units.Bohr, 0, 0]], masses=[2000.0 / AMU_IN_ELECTRON_MASSES])
-    a.set_momenta([[15.0 / (AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr), 0, 0]])
+    a = ase.Atoms("H", positions=[[-8.0 * units.Bohr, 0, 0]], masses=[2000.0 / AMU_IN_ME])
+    a.set_momenta([[15.0 / (AMU_IN_ME * units.AUT / units.Bohr), 0, 0]])
     model_dyn = MappingDynamics(a, ModelAdapterBackend(model), 2.0 * units.AUT, 0, MethodOptions(),
                                 rng=np.random.default_rng(1))
     mwall, minside = timed_run(model_dyn, 2000)

@@ -29,7 +29,7 @@ def warm_worker(study_dir: str) -> float:
     """Runs inside each worker: open the study, build its backend (cached per process), one call."""
     t0 = time.perf_counter()
     from mapdyn.study import runner as ensemble
-    from mapdyn.study.folder import initial_row
+    from mapdyn.study.initial_conditions import initial_row
 
     study = ensemble._open(study_dir)
     backend = ensemble._backend_for(study)
@@ -67,10 +67,11 @@ def main(argv=None) -> int:
     parser.add_argument("--duration", default="4 fs")
     args = parser.parse_args(argv)
     os.environ.update({"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"})
-    from mapdyn.study.config import load_study, parse_duration
-    from mapdyn.study.folder import Study, prepare_initial_conditions
+    from mapdyn.study.config import load_study_config, parse_duration
+    from mapdyn.study.folder import Study
+    from mapdyn.study.initial_conditions import prepare_initial_conditions
 
-    cfg = load_study(STUDY)
+    cfg = load_study_config(STUDY)
     cfg = cfg.with_overrides(trajectories=args.trajectories, duration_au=parse_duration(args.duration, "--duration"))
     workdir = tempfile.mkdtemp(prefix="mapdyn_scaling_")
     try:

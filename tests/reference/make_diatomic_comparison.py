@@ -39,7 +39,7 @@ from mapdyn.core.options import MethodOptions
 
 from ase import units
 
-AU_TIME_FS = units.AUT / units.fs  # one atomic unit of time in fs (ase.units)
+AU_TIME_IN_FS = units.AUT / units.fs  # one atomic unit of time in fs (ase.units)
 EV = units.Hartree  # eV per Eh (ase.units)
 ROOT = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", ".."))
 FIG = os.path.join(ROOT, "examples", "figures", "diatomic_comparison.png")
@@ -113,7 +113,7 @@ def main(argv=None) -> int:
     idx = [int(np.argmin(np.abs(times - t))) for t in table_times]
     lines = ["| t (fs) | t (a.u.) | exact P2 | SQC square | SQC triangle | Ehrenfest |",
              "|---:|---:|---:|---:|---:|---:|"]
-    fs = AU_TIME_FS
+    fs = AU_TIME_IN_FS
     for t, i in zip(table_times, idx):
         row = [f"{t * fs:.0f}", f"{t:.0f}", f"{exact.populations[i, 1]:.3f}"]
         for name in METHODS:
@@ -183,7 +183,7 @@ def make_figure(grid, model, sc, exact, runs) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fs = AU_TIME_FS
+    fs = AU_TIME_IN_FS
     fig, axes = plt.subplots(1, 3, figsize=(15, 4.6))
     ax = axes[0]
     r = np.linspace(4.0, 40.0, 1800)

@@ -71,7 +71,7 @@ HARTREE_PER_INVCM = 1.0 / 219474.63136320
 # 1 fs in atomic units of time (CODATA 2018: ħ/Eh = 2.4188843265857e-17 s)
 AUT_PER_FS = 1.0 / 2.4188843265857e-2
 # k_B in hartree per kelvin (CODATA 2018: 3.166811563e-6 Eh/K)
-KB_HARTREE_PER_K = 3.166811563e-6
+KB_IN_HARTREE_PER_K = 3.166811563e-6
 
 
 # ------------------------------------------------------------------------------------------------
@@ -125,7 +125,7 @@ def case_parameters(name: str) -> dict:
     h = c["h_invcm"] * HARTREE_PER_INVCM
     return dict(
         h_sys=h, lam=c["lam_invcm"] * HARTREE_PER_INVCM, omega_c=c["omega_c_invcm"] * HARTREE_PER_INVCM,
-        beta=1.0 / (KB_HARTREE_PER_K * c["temperature_k"]),
+        beta=1.0 / (KB_IN_HARTREE_PER_K * c["temperature_k"]),
         times=np.linspace(0.0, c["t_max_fs"] * AUT_PER_FS, c["n_times"]),
     )
 

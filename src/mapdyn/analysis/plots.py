@@ -12,6 +12,8 @@ from typing import Any
 
 import numpy as np
 
+from mapdyn.files import atomic_open, atomic_write_text
+
 __all__ = [
     "HOUSE_STYLE",
     "STATE_COLOURS",
@@ -62,18 +64,6 @@ HOUSE_STYLE = {
 _FIGSIZE = (6.4, 4.0)
 
 
-def atomic_write_text(path: str | os.PathLike, text: str) -> str:
-    """Write text to ``path`` atomically (``*.tmp``, flush, fsync, os.replace)."""
-    path = os.fspath(path)
-    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
-    with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-    return path
-
-
 @contextlib.contextmanager
 def new_figure(nrows: int = 1, ncols: int = 1, figsize=_FIGSIZE, **kw):
     """A Figure on an Agg canvas (no pyplot state) under the house style; yields (fig, axes)."""
@@ -95,12 +85,8 @@ def save_figure(fig, path: str | os.PathLike, dpi: int = 150) -> str:
     if fmt not in ("png", "pdf", "svg"):
         raise ValueError(f"figure path must end in .png, .pdf or .svg, got {path!r}")
     fig.tight_layout()
-    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
-    with open(tmp, "wb") as fh:
+    with atomic_open(path, "wb") as fh:
         fig.savefig(fh, format=fmt, dpi=dpi)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
     return path
 
 
@@ -111,10 +97,10 @@ def _integer_counts(ax) -> None:
 
 
 def _time(times_au: np.ndarray, time_unit: str) -> tuple[np.ndarray, str]:
-    from mapdyn.analysis.core_tmp import AU_TIME_FS
+    from mapdyn.units import AU_TIME_IN_FS
 
     if time_unit == "fs":
-        return np.asarray(times_au) * AU_TIME_FS, "time / fs"
+        return np.asarray(times_au) * AU_TIME_IN_FS, "time / fs"
     if time_unit == "a.u.":
         return np.asarray(times_au), "time / a.u."
     raise ValueError(f"time_unit={time_unit!r} is not allowed; choose 'fs' or 'a.u.'")
@@ -151,10 +137,10 @@ def plot_populations(series: Any, path: str | os.PathLike, *, time_unit: str = "
 def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike, *, time_unit: str = "fs",
                             title: str | None = None) -> str:
     """Initial-state population with its band and the exponential fits (solid = preferred)."""
-    from mapdyn.analysis.core_tmp import AU_TIME_FS
+    from mapdyn.units import AU_TIME_IN_FS
 
     t, xlabel = _time(series.times, time_unit)
-    scale = AU_TIME_FS if time_unit == "fs" else 1.0
+    scale = AU_TIME_IN_FS if time_unit == "fs" else 1.0
     unit = "fs" if time_unit == "fs" else "a.u."
     with new_figure() as (fig, ax):
         ax = ax[0, 0]
@@ -232,10 +218,10 @@ def plot_first_entry(entry: Any, path: str | os.PathLike, *, time_unit: str = "f
 
 def plot_energy_drift(energy: Any, path: str | os.PathLike, *, bins: int = 30, title: str | None = None) -> str:
     """Histogram of the total-energy drift E(end) − E(0) per trajectory, in meV, with the tolerance."""
-    from mapdyn.analysis.core_tmp import _HARTREE_EV
+    from mapdyn.units import HARTREE_IN_EV
 
-    d = energy.drift[np.isfinite(energy.drift)] * _HARTREE_EV * 1e3
-    tol = energy.tolerance * _HARTREE_EV * 1e3
+    d = energy.drift[np.isfinite(energy.drift)] * HARTREE_IN_EV * 1e3
+    tol = energy.tolerance * HARTREE_IN_EV * 1e3
     with new_figure() as (fig, ax):
         ax = ax[0, 0]
         if d.size:

@@ -1,7 +1,7 @@
 """Report folder: PNG figures, one CSV per plotted curve, and a Markdown summary (atomic writes).
 
-``write_report(results, folder)`` takes an :class:`mapdyn.analysis.core_tmp.AnalysisResults` (or a
-:class:`mapdyn.analysis.core_tmp.TrajectorySet`, analysed with default settings) and writes
+``write_report(results, folder)`` takes an :class:`mapdyn.analysis.AnalysisResults` (or a
+:class:`mapdyn.analysis.TrajectorySet`, analysed with default settings) and writes
 
     populations.png / populations.csv            adiabatic populations with bootstrap bands
     initial_population.png / .csv                 initial-state population and exponential fits
@@ -27,8 +27,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.analysis import plots
-from mapdyn.analysis.core_tmp import AU_TIME_FS, _HARTREE_EV, AnalysisResults, TrajectorySet, analyze
+from mapdyn.analysis import AnalysisResults, TrajectorySet, analyze, plots
+from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
 __all__ = ["Report", "write_report", "write_csv", "read_csv"]
 
@@ -90,7 +90,7 @@ def read_csv(path: str | os.PathLike) -> dict[str, np.ndarray]:
 
 
 def _time_columns(times_au: np.ndarray) -> tuple[list[str], list[np.ndarray]]:
-    return ["time_au", "time_fs"], [times_au, times_au * AU_TIME_FS]
+    return ["time_au", "time_fs"], [times_au, times_au * AU_TIME_IN_FS]
 
 
 def _pm(v: float, e: float, digits: int = 3) -> str:
@@ -111,7 +111,7 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     if isinstance(results, TrajectorySet):
         results = analyze(results)
     if not isinstance(results, AnalysisResults):
-        raise ValueError("results must be an AnalysisResults (from mapdyn.analysis.core_tmp.analyze) or a TrajectorySet")
+        raise ValueError("results must be an AnalysisResults (from mapdyn.analysis.analyze) or a TrajectorySet")
     folder = os.fspath(folder)
     os.makedirs(folder, exist_ok=True)
     ts = results.tset
@@ -172,7 +172,7 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         name = f"first_entry_state{ent.state}_" + _slug(ent.name)
         u = "angstrom" if ent.unit == "Å" else ent.unit
         tab(name, ["trajectory", "time_au", "time_fs", f"value_{_slug(u)}"],
-            [ent.indices, ent.times, ent.times * AU_TIME_FS, ent.values])
+            [ent.indices, ent.times, ent.times * AU_TIME_IN_FS, ent.values])
         fig(name, plots.plot_first_entry, ent, time_unit=tu,
             note=f"histogram of {ent.name} when trajectories first enter state {ent.state} ({ent.criterion})")
 
@@ -226,8 +226,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append("## Inputs")
     L.append(f"- method: {ts.options.describe()} (window γ = {ts.options.window_gamma:.6g})")
     L.append(f"- trajectories: {ts.ntraj}; states: {ts.nstates}; time points: {ts.times.size}, "
-             f"t = {ts.times[0]:.6g} … {ts.times[-1]:.6g} a.u. ({ts.times[0] * AU_TIME_FS:.4g} … "
-             f"{ts.times[-1] * AU_TIME_FS:.4g} fs)")
+             f"t = {ts.times[0]:.6g} … {ts.times[-1]:.6g} a.u. ({ts.times[0] * AU_TIME_IN_FS:.4g} … "
+             f"{ts.times[-1] * AU_TIME_IN_FS:.4g} fs)")
     states, counts = np.unique(ts.initial_states, return_counts=True)
     L.append("- initial states: " + ", ".join(f"{s}: {c}" for s, c in zip(states, counts)))
     for k, v in ts.metadata.items():
@@ -248,7 +248,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append(f"- trajectories in no window: {int(pops.n_none[-1])} at the last time, at most "
                  f"{int(pops.n_none.max())}")
     L.append("")
-    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_FS:.4g} fs, "
+    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_IN_FS:.4g} fs, "
              f"{int(round(100 * pops.confidence_level))} % interval, {pops.bootstrap_method}):")
     L.append("")
     L.append("| state | population | interval |")
@@ -271,7 +271,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         for name, f in life.fits.items():
             parts = []
             for p in f.names:
-                scale = AU_TIME_FS if p.startswith("tau") or p == "delay" else 1.0
+                scale = AU_TIME_IN_FS if p.startswith("tau") or p == "delay" else 1.0
                 parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
             d = f.diagnostics
             rc = f"{d['reduced_chi2']:.3g}" if "reduced_chi2" in d else "n/a"
@@ -295,7 +295,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
                 extra = (f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit}"
                          if np.isfinite(e.values).any() else "")
                 L.append(f"- first entry into state {e.state}: {int(ok.sum())} of {ok.size} trajectories, "
-                         f"mean time {np.nanmean(e.times) * AU_TIME_FS:.4g} fs{extra}")
+                         f"mean time {np.nanmean(e.times) * AU_TIME_IN_FS:.4g} fs{extra}")
             else:
                 L.append(f"- first entry into state {e.state}: no trajectory entered")
         L.append("")
@@ -324,10 +324,10 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append("No energies recorded.")
     else:
         e = en.ensemble
-        L.append(f"- |drift| mean {e['mean_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV, median "
-                 f"{e['median_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV, max {e['max_abs_drift'] * _HARTREE_EV * 1e3:.3g} meV; "
-                 f"max deviation {e['max_deviation'] * _HARTREE_EV * 1e3:.3g} meV")
-        L.append(f"- flagged (max deviation > {en.tolerance:.3g} Eh = {en.tolerance * _HARTREE_EV * 1e3:.3g} meV): "
+        L.append(f"- |drift| mean {e['mean_abs_drift'] * HARTREE_IN_EV * 1e3:.3g} meV, median "
+                 f"{e['median_abs_drift'] * HARTREE_IN_EV * 1e3:.3g} meV, max {e['max_abs_drift'] * HARTREE_IN_EV * 1e3:.3g} meV; "
+                 f"max deviation {e['max_deviation'] * HARTREE_IN_EV * 1e3:.3g} meV")
+        L.append(f"- flagged (max deviation > {en.tolerance:.3g} Eh = {en.tolerance * HARTREE_IN_EV * 1e3:.3g} meV): "
                  f"{e['n_flagged']}")
     L.append("")
     L.append("## Flagged and failed trajectories")

@@ -39,6 +39,7 @@ import numpy as np
 from scipy import interpolate, optimize
 
 from mapdyn.core.options import SQUARE_GAMMA
+from mapdyn.files import atomic_open
 
 __all__ = [
     "FragmentPotential",
@@ -144,12 +145,8 @@ class MorseCurve:
 
 
 def _atomic_savez(path: str, **arrays) -> None:
-    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process
-    with open(tmp, "wb") as fh:
+    with atomic_open(path, "wb") as fh:
         np.savez(fh, **arrays)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
 
 
 def scan_fragment_potential(backend: Any, r_grid_bohr: Sequence[float], *, state: int = 0,
@@ -334,9 +331,9 @@ def vibrational_distribution(v_continuous: np.ndarray, *, window_half_width: flo
     """Bin continuous vibrational numbers (NaN = unbound) with histogram boxes and symmetric windows.
 
     Bootstrap bounds over fragments (``scipy.stats.bootstrap`` via
-    :func:`mapdyn.analysis.core_tmp.bootstrap_ratio`).  ``n_levels`` default: up to the largest occupied box.
+    :func:`mapdyn.analysis.bootstrap_ratio`).  ``n_levels`` default: up to the largest occupied box.
     """
-    from mapdyn.analysis.core_tmp import bootstrap_ratio
+    from mapdyn.analysis.statistics import bootstrap_ratio
 
     w = float(window_half_width)
     if not 0.0 < w <= 0.5:
@@ -399,7 +396,7 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
                      product_labels: Sequence[str] | None = None) -> VibrationalDistribution:
     """Vibrational distribution of ``frag`` from each trajectory's last frame of a TrajectorySet.
 
-    ``product_labels`` (one per trajectory, from :func:`mapdyn.analysis.core_tmp.classify_products`) is
+    ``product_labels`` (one per trajectory, from :func:`mapdyn.analysis.classify_products`) is
     needed when ``frag.product`` is set.
 
     Masses: ``tset.masses`` (electron masses) or the ASE standard masses of ``tset.symbols``
@@ -411,8 +408,8 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
         raise ValueError(f"fragment {frag.name or frag.atoms}: the trajectory set needs positions and momenta")
     masses = tset.masses
     if masses is None:
-        from ase.data import atomic_masses, atomic_numbers
         from ase import units
+        from ase.data import atomic_masses, atomic_numbers
 
         masses = np.array([atomic_masses[atomic_numbers[s]] for s in tset.symbols]) * (units._amu / units._me)
     last = tset.last_frame

@@ -39,8 +39,13 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 
-from mapdyn.backends.contract import (LOW_OVERLAP_THRESHOLD, BackendError, ElectronicResult, apply_state_signs,
-                               match_states)
+from mapdyn.backends.contract import (
+    LOW_OVERLAP_THRESHOLD,
+    BackendError,
+    ElectronicResult,
+    apply_state_signs,
+    match_states,
+)
 
 __all__ = ["CallbackBackend", "CallbackGuess"]
 

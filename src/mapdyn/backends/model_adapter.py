@@ -28,7 +28,11 @@ from typing import Any
 
 import numpy as np
 
-from mapdyn.backends.contract import LOW_OVERLAP_THRESHOLD, ElectronicResult, match_states
+from mapdyn.backends.contract import (
+    LOW_OVERLAP_THRESHOLD,
+    ElectronicResult,
+    match_states,
+)
 from mapdyn.core.model import DiabaticModel
 
 __all__ = ["ModelAdapterBackend", "ModelGuess"]

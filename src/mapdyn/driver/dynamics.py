@@ -61,15 +61,18 @@ from ase.md.md import MolecularDynamics
 from mapdyn.backends.contract import BackendError, ElectronicResult
 from mapdyn.core.mapping import actions, effective_density
 from mapdyn.core.options import MethodOptions
-from mapdyn.core.windows import sample_mapping_variables, window_assignment, window_indicators
+from mapdyn.core.windows import (
+    sample_mapping_variables,
+    window_assignment,
+    window_indicators,
+)
+from mapdyn.units import AMU_IN_ME
 
-__all__ = ["MappingDynamics", "DriverState", "remove_total_momentum", "AMU_IN_ELECTRON_MASSES",
+__all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
            "PROJECTION_WARNING", "GAP_WARNING"]
 
-#: 1 amu in electron masses (ase.units).
-AMU_IN_ELECTRON_MASSES = units._amu / units._me
 #: ASE momentum unit (amu·Å/ASE time) in atomic units of momentum.
-_ASE_MOMENTUM_IN_AU = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr
+_ASE_MOMENTUM_IN_AU = AMU_IN_ME * units.AUT / units.Bohr
 
 #: Prefix of the once-per-run warning that the step does not resolve the electronic gap.
 GAP_WARNING = "time step does not resolve the electronic gap"
@@ -268,7 +271,7 @@ class MappingDynamics(MolecularDynamics):
         if not isinstance(force_averaging, (bool, np.bool_)):
             raise ValueError(f"force_averaging={force_averaging!r} is not allowed; it must be True or False")
         self.force_averaging = bool(force_averaging)
-        self.masses_au = atoms.get_masses() * AMU_IN_ELECTRON_MASSES  # (N,) electron masses
+        self.masses_au = atoms.get_masses() * AMU_IN_ME  # (N,) electron masses
         if np.any(self.masses_au <= 0):
             raise ValueError("atoms have non-positive masses; set them with atoms.set_masses (amu)")
         self._M = self.masses_au[:, None]
@@ -637,7 +640,7 @@ class MappingDynamics(MolecularDynamics):
     def frame_atoms(self, frame: dict) -> Atoms:
         """An ase.Atoms of a recorded frame (Å, ASE momenta) with its electronic data in ``info``."""
         a = Atoms(self.atoms.get_chemical_symbols(), positions=frame["positions_bohr"] * units.Bohr,
-                  masses=self.masses_au / AMU_IN_ELECTRON_MASSES, pbc=False)
+                  masses=self.masses_au / AMU_IN_ME, pbc=False)
         a.set_momenta(frame["momenta_au"] / _ASE_MOMENTUM_IN_AU)
         a.info.update({"step": int(frame["step"]), "time_fs": frame["time_au"] * units.AUT / units.fs,
                        "energies_Eh": frame["energies_Eh"], "actions": frame["actions"],

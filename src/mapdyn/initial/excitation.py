@@ -28,6 +28,8 @@ from typing import Any, Sequence
 import numpy as np
 from ase import units
 
+from mapdyn.files import atomic_open
+
 __all__ = [
     "oscillator_strengths",
     "ExcitationProperties",
@@ -326,10 +328,6 @@ def plot_absorption_spectrum(spectrum: AbsorptionSpectrum, path: str | os.PathLi
     ax.set_title(title or f"nuclear ensemble, {spectrum.n_geometries} geometries, {shape} FWHM {spectrum.fwhm_ev:g} eV",
                  fontsize=9)
     fig.tight_layout()
-    tmp = path + ".tmp"
-    with open(tmp, "wb") as fh:
+    with atomic_open(path, "wb") as fh:
         fig.savefig(fh, format=fmt, dpi=dpi)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
     return path

@@ -32,9 +32,10 @@ from ase.calculators.calculator import Calculator, all_changes
 from ase.data import atomic_masses, atomic_numbers
 
 from mapdyn.backends.contract import BackendError
+from mapdyn.units import AMU_IN_ME, HARTREE_IN_CM, KB_IN_HARTREE_PER_K
 
 __all__ = [
-    "AMU_TO_ME",
+    "AMU_IN_ME",
     "LevelOfTheoryWarning",
     "ModeDroppedWarning",
     "check_level_of_theory",
@@ -58,12 +59,6 @@ __all__ = [
     "DEFAULT_TINY_FREQUENCY_CM",
 ]
 
-#: one atomic mass unit in electron masses (CODATA via ase.units).
-AMU_TO_ME: float = units._amu / units._me
-#: 1 Eh expressed in cm^-1 (ase.units: Hartree and invcm are both in eV).
-HARTREE_TO_CM: float = units.Hartree / units.invcm
-#: Boltzmann constant in Eh/K.
-KB_HARTREE_PER_K: float = units.kB / units.Hartree
 
 #: default convergence threshold on max |dE_0/dR| component, Eh/Bohr.  1.5e-5 Eh/Bohr is the
 #: widely used "tight" optimisation criterion on the largest force component (common practice).
@@ -429,7 +424,7 @@ def normal_modes(hessian: np.ndarray, symbols: Sequence[str], positions_bohr: np
     m_amu = masses_amu_for(symbols) if masses_amu is None else np.asarray(masses_amu, dtype=float)
     if m_amu.shape != (len(symbols),) or np.any(m_amu <= 0):
         raise ValueError(f"masses_amu must be {len(symbols)} positive numbers")
-    m = m_amu * AMU_TO_ME
+    m = m_amu * AMU_IN_ME
     inv_sqrt_m = np.repeat(1.0 / np.sqrt(m), 3)
     k = 0.5 * (hmat + hmat.T) * inv_sqrt_m[:, None] * inv_sqrt_m[None, :]
     rigid = _rigid_body_basis(m, x0)
@@ -437,7 +432,7 @@ def normal_modes(hessian: np.ndarray, symbols: Sequence[str], positions_bohr: np
     lam, u = np.linalg.eigh(b.T @ k @ b)
     l_all = b @ u
     omega_all = np.sign(lam) * np.sqrt(np.abs(lam))
-    cm_all = omega_all * HARTREE_TO_CM
+    cm_all = omega_all * HARTREE_IN_CM
     keep = np.ones(lam.size, dtype=bool)
     reasons = []
     for j, w in enumerate(cm_all):
@@ -507,7 +502,7 @@ def wigner_widths(frequencies_hartree: np.ndarray, temperature_kelvin: float = 0
     if t == 0.0:
         coth = np.ones_like(w)
     else:
-        coth = 1.0 / np.tanh(w / (2.0 * KB_HARTREE_PER_K * t))
+        coth = 1.0 / np.tanh(w / (2.0 * KB_IN_HARTREE_PER_K * t))
     return coth / (2.0 * w), 0.5 * w * coth
 
 

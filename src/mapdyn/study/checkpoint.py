@@ -36,12 +36,14 @@ import hashlib
 import json
 import os
 import pickle
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import h5py
 import numpy as np
 
-__all__ = ["CheckpointError", "atomic_write", "write_h5", "read_h5", "file_digest", "fsync_directory",
+from mapdyn.files import atomic_write
+
+__all__ = ["CheckpointError", "write_h5", "read_h5", "file_digest", 
            "frames_to_arrays", "TrajectoryStore", "RestartPoint", "STATE_FILE", "PREVIOUS_STATE_FILE",
            "FORMAT_VERSION"]
 
@@ -56,45 +58,6 @@ class CheckpointError(RuntimeError):
     def __init__(self, path: str, reason: str):
         self.path, self.reason = os.fspath(path), reason
         super().__init__(f"{os.fspath(path)}: {reason}")
-
-
-def fsync_directory(path: str) -> None:
-    """fsync a directory so a rename inside it survives a power cut (POSIX; no-op elsewhere)."""
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def atomic_write(path: str | os.PathLike, write: Callable[[str], None], sync_directory: bool = True) -> str:
-    """Call ``write(tmp_path)``, fsync the temporary file, ``os.replace`` it onto ``path``, fsync
-    the directory (skip that with ``sync_directory=False`` when a later write in the same
-    directory syncs it anyway)."""
-    path = os.fspath(path)
-    tmp = f"{path}.{os.getpid()}.tmp"  # unique per process: two writers never share a temporary
-    try:
-        write(tmp)
-        fd = os.open(tmp, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    if sync_directory:
-        fsync_directory(os.path.dirname(os.path.abspath(path)))
-    return path
 
 
 def _digest(data: bytes) -> str:

@@ -32,7 +32,7 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
     [dynamics]   time_step, duration, checkpoint_every, record_every, drift_threshold,
                  stop_on_drift, substeps, propagation
     [ensemble]   trajectories, seed, workers, batch
-    [analysis]   passed to :func:`mapdyn.analysis.core_tmp.settings_from_table` (keys checked here)
+    [analysis]   passed to :func:`mapdyn.analysis.settings_from_table` (keys checked here)
     [cluster]    passed to :func:`mapdyn.study.cluster.cluster_settings`
 """
 
@@ -54,7 +54,7 @@ import numpy as np
 from mapdyn.core.options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
 
 __all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "InitialConfig",
-           "DynamicsConfig", "EnsembleConfig", "load_study", "parse_study", "parse_duration",
+           "DynamicsConfig", "EnsembleConfig", "load_study_config", "parse_study", "parse_duration",
            "parse_energy", "BACKENDS", "SECTIONS", "MODEL_NAMES", "MIN_ATOM_DISTANCE_ANGSTROM"]
 
 #: Backends a study can name.
@@ -690,31 +690,24 @@ def _parse_ensemble(sec: _Section) -> EnsembleConfig:
 def _parse_analysis(table: Any) -> dict:
     if not isinstance(table, Mapping):
         raise ConfigError("analysis", f"must be a table ([analysis]), got {_show(table)}")
+    from mapdyn.study.analysis_settings import ANALYSIS_KEYS, settings_from_table
+
+    for k in table:
+        if k not in ANALYSIS_KEYS:
+            raise ConfigError(f"analysis.{k}", f" is not a known key{_did_you_mean(k, ANALYSIS_KEYS)}; "
+                              f"allowed: {', '.join(ANALYSIS_KEYS)}")
     try:
-        from mapdyn import analysis as _analysis  # guarded: the analysis module is optional
-    except ImportError:
-        return dict(table)
-    allowed = getattr(_analysis, "_ANALYSIS_KEYS", None)
-    if allowed:
-        for k in table:
-            if k not in allowed:
-                raise ConfigError(f"analysis.{k}", f" is not a known key{_did_you_mean(k, allowed)}; allowed: {', '.join(allowed)}")
-    check = getattr(_analysis, "settings_from_table", None)
-    if check is not None:
-        try:
-            check({k: v for k, v in table.items() if k != "fragments"})
-        except (ValueError, TypeError, KeyError) as err:
-            raise ConfigError("analysis", str(err).splitlines()[0] if str(err) else type(err).__name__) from None
+        settings_from_table({k: v for k, v in table.items() if k != "fragments"})
+    except (ValueError, TypeError, KeyError) as err:
+        raise ConfigError("analysis", str(err).splitlines()[0] if str(err) else type(err).__name__) from None
     return dict(table)
 
 
 def _parse_cluster(table: Any) -> dict:
     if not isinstance(table, Mapping):
         raise ConfigError("cluster", f"must be a table ([cluster]), got {_show(table)}")
-    try:
-        from mapdyn.study.cluster import cluster_settings
-    except ImportError:
-        return dict(table)
+    from mapdyn.study.cluster import cluster_settings
+
     try:
         cluster_settings(table)
     except ValueError as err:
@@ -768,7 +761,7 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
                        mol, analysis, cluster, source_path, source_text)
 
 
-def load_study(path: str | os.PathLike, *, base_dir: str | None = None, check_extras: bool = True,
+def load_study_config(path: str | os.PathLike, *, base_dir: str | None = None, check_extras: bool = True,
                default_name: str | None = None) -> StudyConfig:
     """Read and validate a study TOML file (raises :class:`ConfigError`)."""
     path = os.fspath(path)

@@ -1,5 +1,5 @@
 """Study folder (DESIGN.md §6): layout, manifest, status derived from the files, initial
-conditions of molecular studies, results as a :class:`mapdyn.analysis.core_tmp.TrajectorySet`.
+conditions of molecular studies, results as a :class:`mapdyn.analysis.TrajectorySet`.
 
 Layout::
 
@@ -20,23 +20,25 @@ whose process on this host no longer exists is ignored.
 Units: times in the manifest in a.u. (``duration_au``) and fs (``duration_fs``, for reading).
 """
 
+
 from __future__ import annotations
 
 import dataclasses
-import json
 import os
-import pickle
 import socket
 import time
-from typing import Any, Callable
 
-import numpy as np
+from mapdyn.files import read_json, write_json
+from mapdyn.study.checkpoint import (
+    CheckpointError,
+    TrajectoryStore,
+    atomic_write,
+    read_h5,
+)
+from mapdyn.study.config import ConfigError, StudyConfig, load_study_config
 
-from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, atomic_write, read_h5, write_h5
-from mapdyn.study.config import ConfigError, StudyConfig, load_study
-
-__all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus", "make_backend", "prepare_initial_conditions",
-           "load_trajectory_set", "write_study_report", "write_json", "read_json", "STUDY_TOML", "MANIFEST",
+__all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus", 
+           "write_json", "read_json", "STUDY_TOML", "MANIFEST",
            "INITIAL_CONDITIONS"]
 
 STUDY_TOML = "study.toml"
@@ -51,23 +53,6 @@ FORMAT = 1
 
 class StudyError(RuntimeError):
     """The study folder cannot be used as asked (one-line message)."""
-
-
-def write_json(path: str, obj: Any) -> None:
-    """Atomic JSON write (temp file, fsync, os.replace)."""
-    text = json.dumps(obj, indent=1, sort_keys=True)
-
-    def write(tmp: str) -> None:
-        with open(tmp, "w") as fh:
-            fh.write(text)
-            fh.flush()
-
-    atomic_write(path, write)
-
-
-def read_json(path: str) -> Any:
-    with open(path) as fh:
-        return json.load(fh)
 
 
 def _au_to_fs(t: float) -> float:
@@ -237,7 +222,7 @@ class Study:
     def config(self) -> StudyConfig:
         """The study's configuration: the stored input plus the manifest's trajectories/duration."""
         if self._config is None:
-            cfg = load_study(os.path.join(self.folder, STUDY_TOML), base_dir=self.manifest.get("base_dir"),
+            cfg = load_study_config(os.path.join(self.folder, STUDY_TOML), base_dir=self.manifest.get("base_dir"),
                              check_extras=False, default_name=self.manifest.get("name"))
             cfg = cfg.with_overrides(self.manifest["trajectories"], self.manifest["duration_au"])
             self._config = cfg
@@ -397,311 +382,3 @@ def _chunk_layout(first: int, count: int, batch: int) -> list[list[int]]:
     return out
 
 
-# ----------------------------------------------------------------------------------------------
-# backends and models
-# ----------------------------------------------------------------------------------------------
-def make_model(config: StudyConfig):
-    """The diabatic model of a model study."""
-    from mapdyn.models.tully import tully_model
-
-    return tully_model(config.electronic.model, **config.electronic.model_parameters)
-
-
-def make_backend(config: StudyConfig):
-    """The electronic backend of the dynamics (PySCF pinned to one thread)."""
-    e = config.electronic
-    if e.backend == "model":
-        from mapdyn.backends.model_adapter import ModelAdapterBackend
-
-        return ModelAdapterBackend(make_model(config))
-    if e.backend == "callback":
-        from mapdyn.backends.callback import CallbackBackend
-        from mapdyn.study.config import _resolve_callback
-
-        return CallbackBackend(_resolve_callback(e.function, os.getcwd()), e.states, config.molecule.natoms)
-    from pyscf import lib
-
-    lib.num_threads(1)
-    symbols = list(config.molecule.symbols)
-    if e.backend == "casscf":
-        from mapdyn.backends.pyscf.casscf import CASSCFBackend
-
-        return CASSCFBackend(symbols, **e.options)
-    from mapdyn.backends.pyscf.tddft import TDDFTBackend
-
-    return TDDFTBackend(symbols, threads=1, **e.options)
-
-
-class _GroundStateOf:
-    """State 0 of an excited-state backend, as a one-state backend (for optimisation/Hessian)."""
-
-    nstates = 1
-
-    def __init__(self, backend):
-        self.backend = backend
-
-    def compute(self, positions_bohr, guess=None, need_gradients=True):
-        from mapdyn.backends.contract import ElectronicResult
-
-        r = self.backend.compute(positions_bohr, guess=guess, need_gradients=need_gradients)
-        return ElectronicResult(energies=np.asarray(r.energies[:1]),
-                                gradients=None if r.gradients is None else np.asarray(r.gradients[:1]),
-                                guess=r.guess, converged=r.converged, diagnostics=dict(r.diagnostics))
-
-
-def _ground_state_backend(config: StudyConfig, dynamics_backend):
-    e = config.electronic
-    if config.initial.normal_modes_from == "dynamics":
-        return _GroundStateOf(dynamics_backend), e.level_of_theory + " (state 0)"
-    from mapdyn.backends.pyscf.ground_state import PySCFGroundState
-
-    xc = e.options.get("xc") if e.backend == "tddft" else None
-    gs = PySCFGroundState(list(config.molecule.symbols), e.basis, xc=xc, charge=config.molecule.charge)
-    return gs, gs.level_of_theory
-
-
-# ----------------------------------------------------------------------------------------------
-# initial conditions of molecular studies
-# ----------------------------------------------------------------------------------------------
-def _sample_rows(config: StudyConfig, modes, indices) -> dict:
-    """Wigner rows for trajectory ``indices``: positions/momenta (a.u.) and the generator state
-    after the nuclear draws (the driver draws the mapping variables from it)."""
-    from mapdyn.initial.sampling import draw_wigner
-    from mapdyn.core.sampling import trajectory_generator
-
-    pos, mom, rng_states = [], [], []
-    for i in indices:
-        rng = trajectory_generator(config.ensemble.seed, int(i))
-        s = draw_wigner(modes, rng, config.initial.temperature_kelvin)
-        pos.append(s.positions_bohr)
-        mom.append(s.momenta)
-        rng_states.append(rng.bit_generator.state)
-    return {"positions_bohr": np.array(pos), "momenta_au": np.array(mom), "rng_states": rng_states}
-
-
-def _choose_states(config: StudyConfig, backend, positions, guess) -> tuple[np.ndarray, dict]:
-    init = config.initial
-    n = positions.shape[0]
-    if init.excitation == "fixed":
-        return np.full(n, int(init.state)), {}
-    from mapdyn.initial.excitation import choose_initial_states, excitation_properties
-
-    props = excitation_properties(backend, positions, guess=guess)
-    choice = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths, "brightest")
-    states = np.zeros(n, dtype=int)
-    states[choice.sample_index] = choice.state
-    return states, {"excitation_energies_hartree": props.excitation_energies_hartree,
-                    "oscillator_strengths": props.oscillator_strengths}
-
-
-def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda s: None) -> str:
-    """Optimise, compute the Hessian and normal modes, Wigner-sample every trajectory (molecules).
-
-    Idempotent: existing rows are kept; rows for trajectories added by ``extend`` are appended.
-    Writes ``initial_conditions.h5`` atomically and returns its path.
-    """
-    import warnings
-
-    config = study.config
-    path = study.path(INITIAL_CONDITIONS)
-    n = study.ntraj
-    if os.path.exists(path):
-        arrays, meta = read_h5(path)
-        have = int(meta["trajectories"])
-        if have >= n:
-            return path
-        modes = pickle.loads(arrays["modes_pickle"])
-        backend = make_backend(config)
-        log(f"sampling initial conditions for trajectories {have}..{n - 1}")
-        rows = _sample_rows(config, modes, range(have, n))
-        guess = pickle.loads(arrays["reference_guess_pickle"]) if "reference_guess_pickle" in arrays else None
-        states, extra = _choose_states(config, backend, rows["positions_bohr"], guess)
-        arrays["positions_bohr"] = np.concatenate([arrays["positions_bohr"], rows["positions_bohr"]])
-        arrays["momenta_au"] = np.concatenate([arrays["momenta_au"], rows["momenta_au"]])
-        arrays["initial_states"] = np.concatenate([arrays["initial_states"], states])
-        old_rng = json.loads(arrays["rng_states_json"].decode())
-        arrays["rng_states_json"] = json.dumps(old_rng + rows["rng_states"]).encode()
-        for k, v in extra.items():
-            if k in arrays:
-                arrays[k] = np.concatenate([arrays[k], v])
-        meta["trajectories"] = n
-        write_h5(path, arrays, meta)
-        return path
-    from mapdyn.initial.sampling import compute_hessian, normal_modes, optimize_ground_state
-
-    mol = config.molecule
-    backend = make_backend(config)
-    gs, level = _ground_state_backend(config, backend)
-    x = mol.positions_bohr.copy()
-    t0 = time.perf_counter()
-    opt_info: dict = {"optimized": False}
-    guess = None
-    if config.initial.optimize:
-        log(f"optimising the ground state ({level})")
-        opt = optimize_ground_state(gs, list(mol.symbols), x, level_of_theory=level)
-        x = opt.positions_bohr
-        guess = opt.guess
-        opt_info = {"optimized": True, "energy_hartree": opt.energy_hartree, "steps": opt.n_steps,
-                    "max_gradient_hartree_per_bohr": opt.max_gradient_hartree_per_bohr}
-    log(f"Hessian and normal modes ({level})")
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        hess = compute_hessian(gs, x, level, guess=guess) if config.initial.normal_modes_from == "dynamics" \
-            else compute_hessian(gs, x, level)
-        modes = normal_modes(hess.hessian, list(mol.symbols), x, level_of_theory=level)
-    log(f"{modes.nvib} modes, {modes.frequencies_cm.min():.0f}–{modes.frequencies_cm.max():.0f} cm^-1; "
-        f"sampling {n} Wigner geometries at {config.initial.temperature_kelvin:g} K")
-    rows = _sample_rows(config, modes, range(n))
-    ref = backend.compute(x, guess=None, need_gradients=False)
-    states, extra = _choose_states(config, backend, rows["positions_bohr"], ref.guess)
-    arrays = {"reference_positions_bohr": x, "hessian": hess.hessian, "frequencies_cm": modes.frequencies_cm,
-              "modes_pickle": pickle.dumps(modes), "positions_bohr": rows["positions_bohr"],
-              "momenta_au": rows["momenta_au"], "initial_states": states,
-              "reference_energies_hartree": np.asarray(ref.energies, dtype=float),
-              "rng_states_json": json.dumps(rows["rng_states"]).encode()}
-    try:
-        arrays["reference_guess_pickle"] = pickle.dumps(ref.guess)
-    except Exception:  # an unpicklable guess only costs the warm start of later excitation choices
-        pass
-    arrays.update(extra)
-    meta = {"trajectories": n, "level_of_theory": level, "hessian_method": hess.method, **opt_info,
-            "seconds": time.perf_counter() - t0, "temperature_kelvin": config.initial.temperature_kelvin,
-            "seed": config.ensemble.seed, "symbols": list(mol.symbols)}
-    write_h5(path, arrays, meta)
-    log(f"initial conditions ready ({time.perf_counter() - t0:.1f} s)")
-    return path
-
-
-def initial_row(study: Study, index: int) -> tuple[np.ndarray, np.ndarray, int, dict, np.ndarray]:
-    """(positions Bohr, momenta a.u., initial state, generator state, masses in electron masses) of one trajectory."""
-    arrays, meta = read_h5(study.path(INITIAL_CONDITIONS))
-    if index >= int(meta["trajectories"]):
-        raise StudyError(f"initial conditions hold {meta['trajectories']} rows, trajectory {index} asked")
-    modes = pickle.loads(arrays["modes_pickle"])
-    rng_state = json.loads(arrays["rng_states_json"].decode())[index]
-    return (arrays["positions_bohr"][index], arrays["momenta_au"][index], int(arrays["initial_states"][index]),
-            rng_state, np.asarray(modes.masses_me))
-
-
-# ----------------------------------------------------------------------------------------------
-# results
-# ----------------------------------------------------------------------------------------------
-def load_trajectory_set(study: Study):
-    """All recorded results of a (finished or partial) study as a :class:`mapdyn.analysis.core_tmp.TrajectorySet`.
-
-    Time grid: every ``record_every`` steps up to the study's end; trajectories without a frame
-    at a time carry NaN there.  Pending trajectories with no frames are left out.
-    """
-    from mapdyn.analysis.core_tmp import TrajectorySet
-
-    cfg = study.config
-    dt = cfg.dynamics.time_step_au
-    rec = cfg.dynamics.record_every
-    nsteps = study.nsteps
-    grid_steps = np.arange(0, nsteps + 1, rec)
-    times = grid_steps * dt
-    T = grid_steps.size
-    status_map = {e.index: e for e in study.status().entries}
-    F = cfg.electronic.states
-    meta = {"study": study.name, "method": cfg.method.describe(), "time_step_au": dt,
-            "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
-    if study.batched:
-        acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
-        for c, first, count in study.chunks():
-            segs = study.chunk_segments(c)
-            if not segs:
-                continue
-            parts = [read_h5(p)[0] for p, _ in segs]
-            a = np.concatenate([p["actions_adiabatic"] for p in parts])  # (T', n, F)
-            e = np.concatenate([p["energy"] for p in parts])
-            R = np.concatenate([p["R"] for p in parts])
-            P = np.concatenate([p["P"] for p in parts])
-            pad = T - a.shape[0]
-            if pad > 0:
-                a = np.concatenate([a, np.full((pad,) + a.shape[1:], np.nan)])
-                e = np.concatenate([e, np.full((pad,) + e.shape[1:], np.nan)])
-                R = np.concatenate([R, np.full((pad,) + R.shape[1:], np.nan)])
-                P = np.concatenate([P, np.full((pad,) + P.shape[1:], np.nan)])
-            acts.append(np.transpose(a[:T], (1, 0, 2)))
-            ens.append(e[:T].T)
-            Rs.append(np.transpose(R[:T], (1, 0, 2)))
-            Ps.append(np.transpose(P[:T], (1, 0, 2)))
-            idx.extend(range(first, first + count))
-            s = status_map[c].status
-            stat.extend([s if s != "pending" else "running"] * count)
-        if not acts:
-            raise StudyError(f"{study.folder}: no results yet")
-        model = make_model(cfg)
-        init_state = cfg.initial.state
-        return TrajectorySet(times=times, actions=np.concatenate(acts), options=cfg.method,
-                             initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
-                             coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
-                             masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
-                             metadata={**meta, "initial_basis": cfg.initial.basis})
-    rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
-    symbols = None
-    masses = None
-    initial_states = None
-    if not cfg.is_model and os.path.exists(study.path(INITIAL_CONDITIONS)):
-        arrays, _ = read_h5(study.path(INITIAL_CONDITIONS), ["initial_states", "modes_pickle"])
-        initial_states = arrays["initial_states"]
-        masses = np.asarray(pickle.loads(arrays["modes_pickle"]).masses_me)
-        symbols = cfg.molecule.symbols
-    for i in range(study.ntraj):
-        store = TrajectoryStore(study.trajectory_folder(i))
-        point_chunks = store.restart_point().chunks
-        if point_chunks == 0:
-            continue
-        fr = store.read_frames(point_chunks)
-        if not fr:
-            continue
-        pos = np.searchsorted(grid_steps, fr["step"])
-        ok = (pos < T) & (grid_steps[np.minimum(pos, T - 1)] == fr["step"])
-        a = np.full((T, F), np.nan)
-        e = np.full(T, np.nan)
-        nat = fr["positions_bohr"].shape[1]
-        R = np.full((T, nat, 3), np.nan)
-        P = np.full((T, nat, 3), np.nan)
-        a[pos[ok]] = fr["actions"][ok]
-        e[pos[ok]] = fr["total_energy_Eh"][ok]
-        R[pos[ok]] = fr["positions_bohr"][ok]
-        P[pos[ok]] = fr["momenta_au"][ok]
-        rows_a.append(a)
-        rows_e.append(e)
-        rows_R.append(R)
-        rows_P.append(P)
-        idx.append(i)
-        entry = status_map[i]
-        stat.append(entry.status if entry.status != "pending" else "running")
-        reasons.append(entry.reason)
-        init_states.append(int(initial_states[i]) if initial_states is not None else int(cfg.initial.state))
-    if not rows_a:
-        raise StudyError(f"{study.folder}: no recorded frames yet")
-    kw: dict = {}
-    if cfg.is_model:
-        model = make_model(cfg)
-        D = model.ndof
-        kw = dict(coordinates=np.array(rows_R).reshape(len(idx), T, -1)[:, :, :D],
-                  coordinate_momenta=np.array(rows_P).reshape(len(idx), T, -1)[:, :, :D],
-                  masses=np.asarray(model.masses))
-    else:
-        kw = dict(positions=np.array(rows_R), momenta=np.array(rows_P), symbols=symbols, masses=masses)
-    return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.method,
-                         initial_states=np.array(init_states), energies=np.array(rows_e), status=tuple(stat),
-                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, **kw)
-
-
-def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None) -> str | None:
-    """Analyse the study and write ``report/`` (only if the analysis modules are installed).
-
-    Returns the report folder, or None when the analysis is not available.
-    """
-    try:
-        from mapdyn.analysis import core_tmp as analysis
-        from mapdyn.analysis import report
-    except ImportError:
-        log("analysis modules not available; skipping the report")
-        return None
-    results = analysis.analyze_study(study)
-    out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
-    return out.folder

@@ -430,7 +430,7 @@ def _batched_model_cost(config: Any, probe_steps: int = 50) -> tuple[float, int]
     """Seconds per trajectory-step of the batched diabatic engine, timed on one task-sized batch."""
     from mapdyn.core.propagators import DiabaticIntegrator
     from mapdyn.core.sampling import gaussian_wavepacket_ensemble
-    from mapdyn.study.folder import make_model
+    from mapdyn.study.backend_factory import make_model
 
     model = make_model(config)
     n = int(min(config.ensemble.batch, config.ensemble.trajectories))
@@ -485,7 +485,8 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
     """
     import os
 
-    from mapdyn.study.folder import INITIAL_CONDITIONS, make_backend
+    from mapdyn.study.backend_factory import make_backend
+    from mapdyn.study.folder import INITIAL_CONDITIONS
 
     cfg = study_config
     n_traj = int(cfg.ensemble.trajectories)
@@ -527,7 +528,7 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
                                f"on {workers} worker{'s' if workers != 1 else ''}"))
         return PreflightReport(lines, numbers)
 
-    from mapdyn.study.folder import _ground_state_backend
+    from mapdyn.study.backend_factory import _ground_state_backend
 
     ic_path = os.path.join(cfg.folder, INITIAL_CONDITIONS)
     done = os.path.isfile(ic_path)

@@ -31,12 +31,15 @@ import signal
 import sys
 import time
 import traceback
-from typing import Any, Callable, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
+from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
-from mapdyn.study.folder import CHUNKS, Study, StudyError, initial_row, make_backend, make_model, write_json, write_marker
+from mapdyn.study.folder import CHUNKS, Study, write_marker
+from mapdyn.files import write_json
+from mapdyn.study.initial_conditions import initial_row
 
 __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "run_task", "local_executor",
            "SerialExecutor",
@@ -120,13 +123,14 @@ def _fresh_driver(study: Study, index: int):
     """A new :class:`MappingDynamics` at t = 0 for trajectory ``index`` (seeded stream)."""
     from ase import Atoms, units
 
-    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
     from mapdyn.core.sampling import trajectory_generator
+    from mapdyn.driver.dynamics import MappingDynamics
+    from mapdyn.units import AMU_IN_ME
 
     cfg = study.config
     d = cfg.dynamics
     backend = _backend_for(study)
-    p_ase = AMU_IN_ELECTRON_MASSES * units.AUT / units.Bohr  # ASE momentum unit in a.u.
+    p_ase = AMU_IN_ME * units.AUT / units.Bohr  # ASE momentum unit in a.u.
     if cfg.is_model:
         model = backend.model
         rng = trajectory_generator(cfg.ensemble.seed, index)
@@ -138,14 +142,14 @@ def _fresh_driver(study: Study, index: int):
         P = k + sP * rng.standard_normal(D)
         masses = backend.atom_masses()
         atoms = Atoms(["H"] * backend.natoms, positions=backend.positions_from_model(R) * units.Bohr,
-                      masses=masses / AMU_IN_ELECTRON_MASSES)
+                      masses=masses / AMU_IN_ME)
         atoms.set_momenta(backend.positions_from_model(P) / p_ase)
         state = cfg.initial.state
     else:
         pos, mom, state, rng_state, masses = initial_row(study, index)
         rng = np.random.default_rng()
         rng.bit_generator.state = rng_state
-        atoms = Atoms(list(cfg.molecule.symbols), positions=pos * units.Bohr, masses=masses / AMU_IN_ELECTRON_MASSES)
+        atoms = Atoms(list(cfg.molecule.symbols), positions=pos * units.Bohr, masses=masses / AMU_IN_ME)
         atoms.set_momenta(mom / p_ase)
     return MappingDynamics(atoms, backend, d.time_step_au * units.AUT, int(state), cfg.method, rng=rng,
                            electronic_propagation=d.propagation, substeps=d.substeps,
@@ -156,7 +160,8 @@ def _fresh_driver(study: Study, index: int):
 def _restored_driver(study: Study, state):
     from ase import Atoms, units
 
-    from mapdyn.driver.dynamics import AMU_IN_ELECTRON_MASSES, MappingDynamics
+    from mapdyn.driver.dynamics import MappingDynamics
+    from mapdyn.units import AMU_IN_ME
 
     cfg = study.config
     d = cfg.dynamics
@@ -167,7 +172,7 @@ def _restored_driver(study: Study, state):
         masses = backend.atom_masses()
     else:
         masses = initial_row(study, 0)[4]
-    atoms = Atoms(symbols, positions=state.positions * units.Bohr, masses=masses / AMU_IN_ELECTRON_MASSES)
+    atoms = Atoms(symbols, positions=state.positions * units.Bohr, masses=masses / AMU_IN_ME)
     return MappingDynamics(atoms, backend, d.time_step_au * units.AUT, int(state.settings["initial_state"]),
                            cfg.method, electronic_propagation=d.propagation, substeps=d.substeps,
                            drift_threshold=d.drift_threshold_hartree, stop_on_drift=d.stop_on_drift,

@@ -57,6 +57,7 @@ from scipy.integrate import cumulative_simpson
 from scipy.interpolate import CubicHermiteSpline, CubicSpline
 
 from mapdyn.core.model import DiabaticModel, as_positions
+from mapdyn.files import atomic_open
 
 __all__ = [
     "DiatomicGrid",
@@ -167,14 +168,9 @@ class DiatomicGrid:
 
     def save(self, path: str | os.PathLike) -> None:
         """Write the grid atomically as a NumPy .npz file (``path.tmp``, fsync, ``os.replace``)."""
-        path = os.fspath(path)
-        tmp = path + ".tmp"
         arrays = {name: getattr(self, name) for name in self._ARRAYS}
-        with open(tmp, "wb") as fh:
+        with atomic_open(path, "wb") as fh:
             np.savez_compressed(fh, metadata=np.array(json.dumps(self.metadata, sort_keys=True)), **arrays)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> "DiatomicGrid":
@@ -489,9 +485,14 @@ def run_exact_photoexcitation(model: DiatomicModel, scenario: PhotoexcitationSce
     the state it left on).  Grid: [lower, upper) Bohr with at most ``spacing`` (the point count is
     rounded up to a fast FFT length); absorbing layers of ``absorber_length`` Bohr at both faces.
     """
-    from mapdyn.validation.exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
-
     import scipy.fft
+
+    from mapdyn.validation.exact import (
+        Absorber,
+        Grid,
+        GridPropagator,
+        gaussian_wavepacket,
+    )
 
     npts = scipy.fft.next_fast_len(int(np.ceil((upper - lower) / spacing)))
     grid = Grid((lower,), (upper,), (npts,))

@@ -39,7 +39,7 @@ import scipy.fft
 from mapdyn.core.model import DiabaticModel
 
 if TYPE_CHECKING:  # pragma: no cover
-    from mapdyn.validation.scattering import ScatteringResult
+    from mapdyn.validation.channels import ScatteringResult
 
 __all__ = [
     "Grid",
@@ -369,7 +369,7 @@ class ExactSettings:
 
 
 def _region_from_model(model, interaction_region):
-    from mapdyn.validation.scattering import default_interaction_region
+    from mapdyn.validation.channels import default_interaction_region
     if interaction_region is None:
         return default_interaction_region(model)
     a, b = (float(v) for v in interaction_region)
@@ -395,7 +395,7 @@ def exact_scattering(model: DiabaticModel, momentum: float, position: float, pos
     on-grid adiabatic populations and cumulative absorbed probabilities vs time (every that many
     steps and at the final step).
     """
-    from mapdyn.validation.scattering import ScatteringResult, _check_scattering_args
+    from mapdyn.validation.channels import ScatteringResult, _check_scattering_args
     if model.ndof != 1:
         raise ValueError(f"exact_scattering needs a 1D model; this one has ndof={model.ndof}")
     k, x0, sig = _check_scattering_args(model, momentum, position, position_width, initial_state)

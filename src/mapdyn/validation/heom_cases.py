@@ -14,10 +14,14 @@ from importlib import resources
 
 import numpy as np
 
-from mapdyn.models.spin_boson import ExcitonTransferModel, SpinBoson, thermal_bath_ensemble
+from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import run_diabatic
-from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
+from mapdyn.models.spin_boson import (
+    ExcitonTransferModel,
+    SpinBoson,
+    thermal_bath_ensemble,
+)
 
 
 def load_reference(name: str) -> dict:

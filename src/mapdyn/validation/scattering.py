@@ -16,7 +16,6 @@ the same arguments and gives the exact quantum answer for the same packet.
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import warnings
 
@@ -27,86 +26,14 @@ from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import DiabaticIntegrator, adiabatic_actions
 from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble
 from mapdyn.core.windows import window_assignment
+from mapdyn.validation.channels import (
+    ScatteringResult,
+    _check_scattering_args,
+    _positive_int,
+    default_interaction_region,
+)
 
 __all__ = ["ScatteringResult", "default_interaction_region", "run_scattering", "compare_scattering"]
-
-
-@dataclasses.dataclass
-class ScatteringResult:
-    """Channel- and adiabatic-state-resolved scattering probabilities (dimensionless).
-
-    transmission, reflection : (F,) probabilities per adiabatic state (index 0 = lowest);
-    transmission_error, reflection_error : (F,) standard errors (0 for the exact solver);
-    method : "exact" or the MethodOptions description; ntraj : trajectories run;
-    n_unassigned : trajectories that ended in no window (SQC); n_unfinished : trajectories still in
-    the interaction region at the time limit (left out of the probabilities); details : extra data.
-    """
-
-    method: str
-    transmission: np.ndarray
-    reflection: np.ndarray
-    transmission_error: np.ndarray
-    reflection_error: np.ndarray
-    ntraj: int
-    n_unassigned: int
-    n_unfinished: int
-    details: dict = dataclasses.field(default_factory=dict)
-
-    def as_dict(self) -> dict:
-        """Flat mapping "T0", "T1", …, "R0", … → probability and "dT0", … → standard error."""
-        out = {}
-        for f in range(self.transmission.size):
-            out[f"T{f}"], out[f"R{f}"] = float(self.transmission[f]), float(self.reflection[f])
-            out[f"dT{f}"], out[f"dR{f}"] = float(self.transmission_error[f]), float(self.reflection_error[f])
-        return out
-
-
-def _positive_int(name, v):
-    if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 1:
-        raise ValueError(f"{name}={v!r} is not allowed; it must be a positive integer")
-    return int(v)
-
-
-def _check_scattering_args(model, momentum, position, position_width, initial_state):
-    if not isinstance(model, DiabaticModel):
-        raise ValueError(f"model={model!r} is not allowed; it must be a mapdyn DiabaticModel")
-    if model.ndof != 1:
-        raise ValueError(f"model has ndof={model.ndof}; scattering runs need a 1D model")
-    vals = []
-    for name, v in (("momentum", momentum), ("position", position), ("position_width", position_width)):
-        try:
-            v = float(v)
-        except (TypeError, ValueError):
-            raise ValueError(f"{name}={v!r} is not allowed; it must be a number") from None
-        if not math.isfinite(v):
-            raise ValueError(f"{name}={v!r} is not allowed; it must be finite")
-        vals.append(v)
-    k, x0, sig = vals
-    if k == 0:
-        raise ValueError("momentum=0 is not allowed; the packet must move towards the interaction region")
-    if sig <= 0:
-        raise ValueError(f"position_width={sig!r} is not allowed; it must be a positive number of Bohr")
-    if isinstance(initial_state, bool) or not isinstance(initial_state, (int, np.integer)) \
-            or not 0 <= initial_state < model.nstates:
-        raise ValueError(f"initial_state={initial_state!r} is not allowed; it must be an integer in 0..{model.nstates - 1}")
-    return k, x0, sig
-
-
-def default_interaction_region(model: DiabaticModel, gradient_tolerance: float = 1e-5,
-                               search_range: tuple = (-200.0, 200.0), spacing: float = 0.01) -> tuple[float, float]:
-    """The smallest interval [a, b] (Bohr) outside which every |∂H_kl/∂x| < ``gradient_tolerance``
-    (Eh/Bohr), searched on ``search_range`` with ``spacing``.  Outside it the forces vanish and the
-    adiabatic states are fixed, so channel and state no longer change."""
-    if model.ndof != 1:
-        raise ValueError(f"model has ndof={model.ndof}; an interaction region is defined for 1D models")
-    x = np.arange(search_range[0], search_range[1] + spacing, spacing)
-    big = np.max(np.abs(model.hamiltonian_gradient(x[:, None])[:, 0]), axis=(1, 2)) > gradient_tolerance
-    if not big.any():
-        raise ValueError(f"gradient_tolerance={gradient_tolerance!r}: the model has no interaction region in {search_range}")
-    idx = np.nonzero(big)[0]
-    if idx[0] == 0 or idx[-1] == x.size - 1:
-        raise ValueError(f"search_range={search_range!r} is too small; the potential still varies at its ends")
-    return float(x[idx[0]] - spacing), float(x[idx[-1]] + spacing)
 
 
 def run_scattering(model: DiabaticModel, momentum: float, position: float, position_width: float,

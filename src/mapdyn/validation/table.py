@@ -30,8 +30,9 @@ from typing import Callable
 
 import numpy as np
 
-from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
+from mapdyn.files import atomic_write_text
+from mapdyn.models.tully import tully_model
 from mapdyn.validation.scattering import run_scattering
 
 __all__ = ["ValidationCase", "CaseResult", "builtin_cases", "run_validation", "format_table"]
@@ -218,7 +219,6 @@ def add_arguments(parser) -> None:
 
 def main_from_args(args) -> int:
     """Run ``mapdyn validate``; exit code 0 when every case passes, 1 otherwise, 2 on bad options."""
-    import os
     import sys
     try:
         options = MethodOptions(args.method, args.window, args.zero_point)
@@ -230,10 +230,5 @@ def main_from_args(args) -> int:
         return 2
     print(format_table(results, options))
     if args.json_path:
-        tmp = f"{args.json_path}.{os.getpid()}.tmp"
-        with open(tmp, "w") as fh:
-            fh.write(results_as_json(results))
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, args.json_path)
+        atomic_write_text(args.json_path, results_as_json(results))
     return 0 if all(r.passed for r in results) else 1

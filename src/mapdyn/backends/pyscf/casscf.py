@@ -36,7 +36,12 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.backends.contract import BackendError, ElectronicResult, apply_state_signs, match_states
+from mapdyn.backends.contract import (
+    BackendError,
+    ElectronicResult,
+    apply_state_signs,
+    match_states,
+)
 
 __all__ = [
     "CASSCFBackend",
@@ -706,7 +711,9 @@ class CASSCFBackend:
         natm = len(self.symbols)
         info: dict[str, Any] = {}
         if self.gradient_method == "one_pass" and not self.density_fitting:
-            from mapdyn.backends.pyscf.casscf_one_pass import one_pass_gradients_and_couplings
+            from mapdyn.backends.pyscf.casscf_one_pass import (
+                one_pass_gradients_and_couplings,
+            )
 
             t0 = time.perf_counter()
             grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf")

@@ -54,7 +54,7 @@ class PySCFGroundState:
                      charge=self.charge, spin=0, unit="Bohr", verbose=0)
 
     def _scf(self, positions_bohr: np.ndarray, guess: Any = None):
-        from pyscf import scf, dft
+        from pyscf import dft, scf
         mol = self._mol(positions_bohr)
         if self.xc is None:
             mf = scf.RHF(mol)

@@ -39,7 +39,12 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from mapdyn.backends.contract import BackendError, ElectronicResult, apply_state_signs, match_states
+from mapdyn.backends.contract import (
+    BackendError,
+    ElectronicResult,
+    apply_state_signs,
+    match_states,
+)
 
 __all__ = [
     "TDDFTBackend",

@@ -1,0 +1,147 @@
+"""Initial conditions of molecular studies: ground state, normal modes, Wigner sampling and the
+choice of initial electronic states, stored in ``initial_conditions.h5``."""
+
+from __future__ import annotations
+
+import json
+import os
+import pickle
+import time
+from typing import Callable
+
+import numpy as np
+
+from mapdyn.study.backend_factory import _ground_state_backend, make_backend
+from mapdyn.study.checkpoint import (
+    read_h5,
+    write_h5,
+)
+from mapdyn.study.config import StudyConfig
+from mapdyn.study.folder import INITIAL_CONDITIONS, Study, StudyError
+
+
+# ----------------------------------------------------------------------------------------------
+# initial conditions of molecular studies
+# ----------------------------------------------------------------------------------------------
+def _sample_rows(config: StudyConfig, modes, indices) -> dict:
+    """Wigner rows for trajectory ``indices``: positions/momenta (a.u.) and the generator state
+    after the nuclear draws (the driver draws the mapping variables from it)."""
+    from mapdyn.core.sampling import trajectory_generator
+    from mapdyn.initial.sampling import draw_wigner
+
+    pos, mom, rng_states = [], [], []
+    for i in indices:
+        rng = trajectory_generator(config.ensemble.seed, int(i))
+        s = draw_wigner(modes, rng, config.initial.temperature_kelvin)
+        pos.append(s.positions_bohr)
+        mom.append(s.momenta)
+        rng_states.append(rng.bit_generator.state)
+    return {"positions_bohr": np.array(pos), "momenta_au": np.array(mom), "rng_states": rng_states}
+
+
+def _choose_states(config: StudyConfig, backend, positions, guess) -> tuple[np.ndarray, dict]:
+    init = config.initial
+    n = positions.shape[0]
+    if init.excitation == "fixed":
+        return np.full(n, int(init.state)), {}
+    from mapdyn.initial.excitation import choose_initial_states, excitation_properties
+
+    props = excitation_properties(backend, positions, guess=guess)
+    choice = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths, "brightest")
+    states = np.zeros(n, dtype=int)
+    states[choice.sample_index] = choice.state
+    return states, {"excitation_energies_hartree": props.excitation_energies_hartree,
+                    "oscillator_strengths": props.oscillator_strengths}
+
+
+def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda s: None) -> str:
+    """Optimise, compute the Hessian and normal modes, Wigner-sample every trajectory (molecules).
+
+    Idempotent: existing rows are kept; rows for trajectories added by ``extend`` are appended.
+    Writes ``initial_conditions.h5`` atomically and returns its path.
+    """
+    import warnings
+
+    config = study.config
+    path = study.path(INITIAL_CONDITIONS)
+    n = study.ntraj
+    if os.path.exists(path):
+        arrays, meta = read_h5(path)
+        have = int(meta["trajectories"])
+        if have >= n:
+            return path
+        modes = pickle.loads(arrays["modes_pickle"])
+        backend = make_backend(config)
+        log(f"sampling initial conditions for trajectories {have}..{n - 1}")
+        rows = _sample_rows(config, modes, range(have, n))
+        guess = pickle.loads(arrays["reference_guess_pickle"]) if "reference_guess_pickle" in arrays else None
+        states, extra = _choose_states(config, backend, rows["positions_bohr"], guess)
+        arrays["positions_bohr"] = np.concatenate([arrays["positions_bohr"], rows["positions_bohr"]])
+        arrays["momenta_au"] = np.concatenate([arrays["momenta_au"], rows["momenta_au"]])
+        arrays["initial_states"] = np.concatenate([arrays["initial_states"], states])
+        old_rng = json.loads(arrays["rng_states_json"].decode())
+        arrays["rng_states_json"] = json.dumps(old_rng + rows["rng_states"]).encode()
+        for k, v in extra.items():
+            if k in arrays:
+                arrays[k] = np.concatenate([arrays[k], v])
+        meta["trajectories"] = n
+        write_h5(path, arrays, meta)
+        return path
+    from mapdyn.initial.sampling import (
+        compute_hessian,
+        normal_modes,
+        optimize_ground_state,
+    )
+
+    mol = config.molecule
+    backend = make_backend(config)
+    gs, level = _ground_state_backend(config, backend)
+    x = mol.positions_bohr.copy()
+    t0 = time.perf_counter()
+    opt_info: dict = {"optimized": False}
+    guess = None
+    if config.initial.optimize:
+        log(f"optimising the ground state ({level})")
+        opt = optimize_ground_state(gs, list(mol.symbols), x, level_of_theory=level)
+        x = opt.positions_bohr
+        guess = opt.guess
+        opt_info = {"optimized": True, "energy_hartree": opt.energy_hartree, "steps": opt.n_steps,
+                    "max_gradient_hartree_per_bohr": opt.max_gradient_hartree_per_bohr}
+    log(f"Hessian and normal modes ({level})")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        hess = compute_hessian(gs, x, level, guess=guess) if config.initial.normal_modes_from == "dynamics" \
+            else compute_hessian(gs, x, level)
+        modes = normal_modes(hess.hessian, list(mol.symbols), x, level_of_theory=level)
+    log(f"{modes.nvib} modes, {modes.frequencies_cm.min():.0f}–{modes.frequencies_cm.max():.0f} cm^-1; "
+        f"sampling {n} Wigner geometries at {config.initial.temperature_kelvin:g} K")
+    rows = _sample_rows(config, modes, range(n))
+    ref = backend.compute(x, guess=None, need_gradients=False)
+    states, extra = _choose_states(config, backend, rows["positions_bohr"], ref.guess)
+    arrays = {"reference_positions_bohr": x, "hessian": hess.hessian, "frequencies_cm": modes.frequencies_cm,
+              "modes_pickle": pickle.dumps(modes), "positions_bohr": rows["positions_bohr"],
+              "momenta_au": rows["momenta_au"], "initial_states": states,
+              "reference_energies_hartree": np.asarray(ref.energies, dtype=float),
+              "rng_states_json": json.dumps(rows["rng_states"]).encode()}
+    try:
+        arrays["reference_guess_pickle"] = pickle.dumps(ref.guess)
+    except Exception:  # an unpicklable guess only costs the warm start of later excitation choices
+        pass
+    arrays.update(extra)
+    meta = {"trajectories": n, "level_of_theory": level, "hessian_method": hess.method, **opt_info,
+            "seconds": time.perf_counter() - t0, "temperature_kelvin": config.initial.temperature_kelvin,
+            "seed": config.ensemble.seed, "symbols": list(mol.symbols)}
+    write_h5(path, arrays, meta)
+    log(f"initial conditions ready ({time.perf_counter() - t0:.1f} s)")
+    return path
+
+
+def initial_row(study: Study, index: int) -> tuple[np.ndarray, np.ndarray, int, dict, np.ndarray]:
+    """(positions Bohr, momenta a.u., initial state, generator state, masses in electron masses) of one trajectory."""
+    arrays, meta = read_h5(study.path(INITIAL_CONDITIONS))
+    if index >= int(meta["trajectories"]):
+        raise StudyError(f"initial conditions hold {meta['trajectories']} rows, trajectory {index} asked")
+    modes = pickle.loads(arrays["modes_pickle"])
+    rng_state = json.loads(arrays["rng_states_json"].decode())[index]
+    return (arrays["positions_bohr"][index], arrays["momenta_au"][index], int(arrays["initial_states"][index]),
+            rng_state, np.asarray(modes.masses_me))
