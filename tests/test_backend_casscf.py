@@ -2,7 +2,7 @@
 
 References: PySCF 2.14 is the reference electronic-structure library; analytic derivatives are
 checked against central finite differences of the backend's own energies and state overlaps
-(DESIGN.md §7.6, §7.10b).  Geometries are distorted, without symmetry, in Bohr.
+(docs/theory.md#local-diabatization, docs/theory.md#pyscf-pitfalls).  Geometries are distorted, without symmetry, in Bohr.
 """
 
 from __future__ import annotations
@@ -31,7 +31,7 @@ from mapdyn.backends.contract import BackendError  # noqa: E402
 LIH_POS = np.array([[0.0, 0.0, 0.0], [1.9, 1.3, 1.1]])
 H2O_POS = np.array([[0.0, 0.0, 0.19], [0.19, 1.51, -0.94], [-0.09, -1.42, -0.85]])
 
-#: finite-difference step, Bohr (DESIGN.md §7.10b: h >= 2e-3, smaller h is limited by
+#: finite-difference step, Bohr (docs/theory.md#pyscf-pitfalls: h >= 2e-3, smaller h is limited by
 #: SA-CASSCF per-state energy noise ~1e-7 Eh).
 FD_STEP = 3e-3
 
@@ -94,7 +94,7 @@ def test_gradients_match_finite_differences(fd_case):
 
 def test_nac_matches_overlap_finite_differences_both_orders(fd_case):
     # Source: d_kl = <k|d l/dR> ~ [<k(R)|l(R+h)> - <k(R)|l(R-h)>]/2h after phase alignment
-    # (DESIGN.md §7.6).  This asserts PySCF's sign convention kernel(state=(a, b)) -> <a|grad b>.
+    # (docs/theory.md#local-diabatization).  This asserts PySCF's sign convention kernel(state=(a, b)) -> <a|grad b>.
     # Tolerance 2 % on components larger than 10 % of the largest (FD truncation O(h^2)).
     name, _, _, ref, fd = fd_case
     f = ref.nstates

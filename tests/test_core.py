@@ -50,7 +50,7 @@ def test_amplitude_propagation_matches_expm(f):
     t = 137.0
     out = propagate_amplitudes(z, H, t)
     ref = np.array([scipy.linalg.expm(-1j * H[i] * t) @ z[i] for i in range(4)])
-    assert np.max(np.abs(out - ref)) < 1e-10  # reference: scipy.linalg.expm; tolerance from VALIDATION.md
+    assert np.max(np.abs(out - ref)) < 1e-10  # reference: scipy.linalg.expm; tolerance from docs/theory.md#validation-benchmarks
 
 
 def test_integrator_with_frozen_hamiltonian_equals_expm():
@@ -68,7 +68,7 @@ def test_integrator_with_frozen_hamiltonian_equals_expm():
 # --- integrator accuracy: solve_ivp reference and energy drift ∝ dt² ---------------------------------
 
 def _mmst_rhs(model, options, gamma_adj):
-    """Hamilton's equations of the MMST Hamiltonian (DESIGN.md §7.1) for one trajectory."""
+    """Hamilton's equations of the MMST Hamiltonian (docs/theory.md#mapping-hamiltonian) for one trajectory."""
     f, d = model.nstates, model.ndof
 
     def rhs(t, y):
@@ -130,7 +130,7 @@ def test_time_reversibility():
 
 def test_symmetrized_energy_equals_trace_subtracted_form():
     """Σ ρ̃_kl H_kl equals V̄ + Σ_{k<l}[(1/F)(H_kk − H_ll)(e_k − e_l) + H_kl(x_k x_l + p_k p_l)]
-    (DESIGN.md §7.1, Cotton & Miller J. Chem. Phys. 139, 234112 (2013), form from memory)."""
+    (docs/theory.md#mapping-hamiltonian, Cotton & Miller J. Chem. Phys. 139, 234112 (2013), form from memory)."""
     rng = np.random.default_rng(8)
     f = 4
     x, p = rng.normal(size=(3, f)), rng.normal(size=(3, f))
@@ -195,7 +195,7 @@ def test_square_window_is_a_box_of_half_width_gamma():
 
 
 def test_triangle_window_geometry():
-    """Two-state triangle: e_occ ∈ [1, 2], e_unocc ∈ [0, 2 − e_occ] (DESIGN.md §7.3, §7.11)."""
+    """Two-state triangle: e_occ ∈ [1, 2], e_unocc ∈ [0, 2 − e_occ] (docs/theory.md#triangle-windows)."""
     e = np.array([[1.5, 0.49], [1.5, 0.51], [0.99, 0.0], [1.0, 1.0 - 1e-9], [0.2, 1.7]])
     assert window_assignment(e, TRIANGLE).tolist() == [0, -1, -1, 0, 1]
 

@@ -1,7 +1,7 @@
 """On-the-fly driver: agreement with the diabatic engine, overlap-only path, limits, records, restart.
 
 Method combinations are named in each test.  Orders of convergence are checked by halving the
-time step: both propagators are second order (DESIGN.md §5b), so differences between them shrink
+time step: both propagators are second order (docs/theory.md#on-the-fly-step), so differences between them shrink
 by ≈ 4 per halving; we accept ratios in [3, 5.5] (the asymptotic regime is reached at these steps,
 measured ratios are 3.9–4.1).
 """

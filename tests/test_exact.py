@@ -3,7 +3,7 @@
 Independent references used here:
 * a second propagator on the same grid Hamiltonian H = T + V − iW (same FFT kinetic operator, same
   diabatic matrices, same absorbing potential): ``scipy.sparse.linalg.expm_multiply`` on a
-  LinearOperator (general-purpose library; VALIDATION.md), tolerance 1e-4 on probabilities;
+  LinearOperator (general-purpose library; docs/theory.md#validation-benchmarks), tolerance 1e-4 on probabilities;
 * the Landau–Zener formula P = exp(−2π H12²/(ħ v |ΔF|)) — L. D. Landau, Phys. Z. Sowjetunion 2, 46
   (1932); C. Zener, Proc. R. Soc. A 137, 696 (1932) — on the wide linear-crossing model, ~1e-3.
 """
@@ -97,7 +97,7 @@ def test_norm_plus_absorbed_is_one_and_unitary_without_absorber():
 
 def test_split_operator_agrees_with_expm_multiply_1d():
     """Populations per region and state, and the per-channel absorbed probability, vs expm_multiply on the
-    same grid Hamiltonian; tolerance 1e-4 (VALIDATION.md).  Split error at Δt = 0.5 is O(Δt²) ≈ 1e-5."""
+    same grid Hamiltonian; tolerance 1e-4 (docs/theory.md#validation-benchmarks).  Split error at Δt = 0.5 is O(Δt²) ≈ 1e-5."""
     model, grid, prop, psi0 = _tully1_setup(0.5)
     nsteps, every = 12000, 30  # t = 6000 a.u., so the packets have entered the absorbers
     run = propagate_wavepacket(prop, psi0, nsteps, record_every=every)
@@ -166,7 +166,7 @@ def test_split_operator_agrees_with_expm_multiply_2d_coupled():
 def test_landau_zener_on_the_wide_crossing(crossing_speed):
     """Probability of staying diabatic (= ending on the upper adiabat) vs Landau–Zener,
     P = exp(−2π C²/(v ΔF)) with v the speed at the crossing (diabatic energy 0 there), averaged over the
-    packet's momentum distribution.  Tolerance 1e-3 (VALIDATION.md); measured ≈ 1–2e-4."""
+    packet's momentum distribution.  Tolerance 1e-3 (docs/theory.md#validation-benchmarks); measured ≈ 1–2e-4."""
     model = WideLinearCrossing()
     M, C, dF = 2000.0, 0.003, 0.01
     x0, sigma = -85.0, 5.0

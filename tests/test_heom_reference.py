@@ -93,7 +93,7 @@ def test_fast_rerun_sites7_shallow_short_window() -> None:
 
 def test_qutip_drude_lorentz_normalisation_matches_our_bath() -> None:
     """QuTiP's Drude-Lorentz C(t) equals that of an explicit bath Σ c_j Q_j built from our
-    J(ω) = 2λωω_c/(ω²+ω_c²) with c_j² = (2/π) ω_j J(ω_j) dω (DESIGN §7.9).  Tolerance 5e-3 of λω_c:
+    J(ω) = 2λωω_c/(ω²+ω_c²) with c_j² = (2/π) ω_j J(ω_j) dω (docs/theory.md#spin-boson-model).  Tolerance 5e-3 of λω_c:
     the neglected tail ω > 500 ω_c contributes ≲ 2/(π·500·0.5) = 2.5e-3; a factor-2 convention
     error would give ~1."""
     res = ref.check_correlation_normalisation(lam=0.25, omega_c=1.0, beta=1.0, times=np.linspace(0.0, 12.0, 49))

@@ -10,7 +10,7 @@ no factors ½; Debye J(ω) = 2λωω_c/(ω²+ω_c²) with J(ω) = (π/2) Σ c_j�
 state (state 1, bath thermal around Q⁰ = 0).  Site model: one such bath on each |n⟩⟨n|.
 
 Tolerance: |SQC − HEOM| ≤ 0.1 + 3 standard errors at every stored time (0.1 is the method's
-accuracy asked for in VALIDATION.md; the 3σ Monte-Carlo margin follows its statistics rule, with
+accuracy asked for in docs/theory.md#validation-benchmarks; the 3σ Monte-Carlo margin follows its statistics rule, with
 fixed seeds).  Exception, stated: square (histogram) windows lag the exact short-time decay because
 a trajectory stays inside the occupied window until its action has moved by up to 2γ; converged
 (20000 trajectories) this lag is 0.103 ± 0.003 at t = 0.3/Δ for the symmetric case and is present
@@ -98,7 +98,7 @@ def test_sites7_square_sqc_matches_heom() -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="F-state triangle windows (DESIGN §7.3, 'from memory, unverified'): "
+@pytest.mark.xfail(strict=True, reason="F-state triangle windows (docs/theory.md#triangle-windows, 'from memory, unverified'): "
                    "measured 0.21 from HEOM at 40 fs (site 1 decays too fast, population appears at once on "
                    "remote sites); the two-state triangle passes the spin-boson checks")
 def test_sites7_triangle_sqc_matches_heom() -> None:

@@ -20,7 +20,7 @@ _spec.loader.exec_module(study)
 
 def marcus_formula(delta, lam, dG, kT):
     """k = (2π/ħ)|V|² (4πλk_BT)^(−1/2) exp(−(ΔG+λ)²/(4λk_BT)) — R. A. Marcus, J. Chem. Phys. 24, 966
-    (1956), as written in VALIDATION.md (ħ = 1)."""
+    (1956), as written in docs/theory.md#validation-benchmarks (ħ = 1)."""
     return 2 * np.pi * delta ** 2 / np.sqrt(4 * np.pi * lam * kT) * np.exp(-(dG + lam) ** 2 / (4 * lam * kT))
 
 
@@ -64,7 +64,7 @@ def test_sqc_rate_at_the_activationless_point_reduced_statistics():
     """−ΔG = λ_M (activationless), SQC triangle windows (symmetrized, the default), 1500 fresh
     trajectories (indices after the study's): agrees with the committed full study (10,000
     trajectories) within 4 combined bootstrap standard errors, and with Marcus within a factor 2.5
-    (VALIDATION.md: factor ~2 expected; the full study measures k_SQC/k_Marcus = 0.64 ± 0.01 here)."""
+    (docs/theory.md#validation-benchmarks: factor ~2 expected; the full study measures k_SQC/k_Marcus = 0.64 ± 0.01 here)."""
     method, x = "sqc-triangle-symmetrized", 8.0
     full = _study_row(x, method)
     times, rec = study.run_point(x, method, 1500, 750, 1, t_end=full["t_end"], first_index=int(full["ntraj"]))

@@ -1,6 +1,6 @@
 """Bath and vibronic models, thermal Wigner bath sampling, the harmonic-bath (stiff) integrator.
 
-Conventions under test (DESIGN.md §7.9): H = ε σ_z + Δ σ_x + Σ_j [P_j²/2 + ½ω_j²Q_j² + c_j Q_j σ_z],
+Conventions under test (docs/theory.md#spin-boson-model): H = ε σ_z + Δ σ_x + Σ_j [P_j²/2 + ½ω_j²Q_j² + c_j Q_j σ_z],
 σ_z = diag(1, −1), no factors ½; J(ω) = (π/2) Σ c_j²/ω_j δ(ω − ω_j); λ = Σ c²/2ω² = (1/π)∫J/ω dω.
 """
 
@@ -36,7 +36,7 @@ def test_debye_midpoint_rule_reproduces_reorganization_integral(nmodes):
     ref = reorganization_integral(lambda x: debye_spectral_density(x, lam, wc), np.inf)
     assert abs(ref - lam) < 1e-10 * lam  # quad confirms the analytic λ of the Debye density
     assert np.sum(c ** 2 / (2 * w ** 2)) == pytest.approx(ref, rel=1e-10)  # exact rule, quad accuracy
-    # the endpoint rule carries N/(N+1) of it (DESIGN.md §7.9)
+    # the endpoint rule carries N/(N+1) of it (docs/theory.md#spin-boson-model)
     w2, c2 = debye_modes(lam, wc, nmodes, rule="endpoint")
     assert np.sum(c2 ** 2 / (2 * w2 ** 2)) == pytest.approx(ref * nmodes / (nmodes + 1), rel=1e-10)
     assert w.max() > 0.6 * nmodes * wc  # tangent rule: ω_max ≈ (4N/π) ω_c, the stiff-bath problem
@@ -83,7 +83,7 @@ def test_spin_boson_matrix_elements_and_gradient():
     H = model.hamiltonian(R)
     V0 = 0.5 * np.sum(w ** 2 * R ** 2, axis=1)
     cQ = R @ c
-    # DESIGN.md §7.9 written out: H11 = V0 + ε + Σ cQ, H22 = V0 − ε − Σ cQ, H12 = Δ
+    # docs/theory.md#spin-boson-model written out: H11 = V0 + ε + Σ cQ, H22 = V0 − ε − Σ cQ, H12 = Δ
     assert np.allclose(H[:, 0, 0], V0 + eps + cQ, rtol=0, atol=1e-13)
     assert np.allclose(H[:, 1, 1], V0 - eps - cQ, rtol=0, atol=1e-13)
     assert np.allclose(H[:, 0, 1], delta) and np.allclose(H[:, 1, 0], delta)
@@ -102,7 +102,7 @@ def test_spin_boson_matrix_elements_and_gradient():
 
 
 def test_marcus_conventions_from_explicit_minimisation():
-    """ΔG = min H22 − min H11 = −2ε and λ_M = H22(Q*_1) − H22(Q*_2) = Σ 2c²/ω² = 4λ (DESIGN.md §7.9),
+    """ΔG = min H22 − min H11 = −2ε and λ_M = H22(Q*_1) − H22(Q*_2) = Σ 2c²/ω² = 4λ (docs/theory.md#spin-boson-model),
     minima found by scipy.optimize (no use of the model's own minimum formula)."""
     eps = 0.01
     model = SpinBoson.debye(eps, 1e-4, 0.005, 0.002, 5)
@@ -160,7 +160,7 @@ def test_exciton_model_one_debye_bath_per_site():
 
 # ------------------------------------------------------------------------------ sampling
 def test_thermal_wigner_moments_and_donor_centre():
-    """⟨Q²⟩ = coth(βω/2)/(2ω), ⟨P²⟩ = (ω/2)coth(βω/2) (textbook; VALIDATION.md), mean −c/ω² for the
+    """⟨Q²⟩ = coth(βω/2)/(2ω), ⟨P²⟩ = (ω/2)coth(βω/2) (textbook; docs/theory.md#validation-benchmarks), mean −c/ω² for the
     donor-equilibrated bath; 4000 samples, tolerance 4 standard errors, fixed seed."""
     model = SpinBoson(0.0, 0.1, [0.5, 2.0, 6.0], [0.3, 0.8, 1.5])
     beta, n = 1.0, 4000

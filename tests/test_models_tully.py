@@ -54,7 +54,7 @@ def test_tully1_adiabatic_gap_at_crossing_is_twice_the_coupling():
 
 
 def test_lower_adiabat_asymptotes():
-    """Model 3: lower adiabat is diabat 2 at x → −∞ (DESIGN.md §7.8)."""
+    """Model 3: lower adiabat is diabat 2 at x → −∞ (docs/theory.md#tully-models)."""
     _, U = ExtendedCoupling().adiabatic(np.array([[-15.0]]))
     assert abs(U[0, 1, 0]) > 1 - 1e-6
     _, U = SimpleAvoidedCrossing().adiabatic(np.array([[-15.0]]))

@@ -1,7 +1,7 @@
 """Preflight (``mapdyn check``): finite-difference verdicts, fault detection, cost estimate.
 
 Sources: the finite-difference references are central differences of each backend's own energies
-and state overlaps (DESIGN.md §7.6; Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994) for
+and state overlaps (docs/theory.md#local-diabatization; Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994) for
 the overlap couplings); tolerances are the backend's stated ones (``mapdyn.study.preflight.FD_TOLERANCES``,
 each with its justification).
 """

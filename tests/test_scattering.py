@@ -2,7 +2,7 @@
 
 Reference: the exact solver of mapdyn.validation.exact (itself checked against scipy's expm_multiply and
 Landau–Zener in tests/test_exact.py) for the same Gaussian packet; models from J. C. Tully,
-J. Chem. Phys. 93, 1061 (1990).  Tolerances (VALIDATION.md, measured during planning): SQC within
+J. Chem. Phys. 93, 1061 (1990).  Tolerances (measured during planning): SQC within
 0.07 of exact for models 1–2 above the upper-channel threshold, reflection within 0.1 on model 3 —
 the method's own accuracy limit, not statistics: with 2000 trajectories 3 standard errors are
 ≤ 0.045 < 0.07, which each check asserts too.  Packet: ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] with

@@ -3,7 +3,7 @@
 Method: split-operator FFT wavepacket propagation with absorbing layers, ``mapdyn.validation.exact.exact_scattering``
 (checked against scipy's expm_multiply on the same grid Hamiltonian and against Landau–Zener in
 tests/test_exact.py).  Models: J. C. Tully, J. Chem. Phys. 93, 1061 (1990) (models 1–3) and the wide
-linear crossing of VALIDATION.md (``WideLinearCrossing``), all with mass 2000 a.u.
+linear crossing of docs/theory.md#validation-benchmarks (``WideLinearCrossing``), all with mass 2000 a.u.
 
 Regenerate (deterministic, about two minutes on one core)::
 
@@ -83,7 +83,7 @@ def main() -> int:
               f"conv={rep.max_deviation:.1e}  ({time.time() - t0:.1f} s)", flush=True)
     meta = {
         "source": "mapdyn.validation.exact.exact_scattering via tests/reference/make_exact_scattering.py",
-        "models": "J. C. Tully, J. Chem. Phys. 93, 1061 (1990); wide linear crossing of VALIDATION.md; mass 2000",
+        "models": "J. C. Tully, J. Chem. Phys. 93, 1061 (1990); wide linear crossing of docs/theory.md#validation-benchmarks; mass 2000",
         "wavepacket": "psi ~ exp[-(x-x0)^2/(4 sigma^2) + i k (x-x0)] on the lower adiabat; initial_state 0",
         "units": "Hartree atomic units (Bohr, a.u. momentum, a.u. time, Eh)",
         "absorber": {"length": float(settings.absorber.lengths(1)[0]), "strength": settings.absorber.strength,

@@ -10,7 +10,7 @@ Regenerate all data files (deterministic; takes a few minutes on one core)::
 or one case: ``... make_heom_reference.py --case spin_boson_symmetric`` (names in ``CASES``).
 Files are written atomically into ``src/mapdyn/data/heom_<case>.npz``.
 
-Conventions (our side; identical to DESIGN §7.9)
+Conventions (our side; identical to docs/theory.md#spin-boson-model)
 -----------------------------------------------
 Spin-boson:  H = ε σz + Δ σx + Σ_j [P_j²/2 + ½ ω_j² Q_j² + c_j Q_j σz],  σz = diag(1, −1) (state 1 has
 σz = +1), no factors ½.  Spectral density J(ω) = (π/2) Σ_j c_j²/ω_j δ(ω − ω_j); Debye bath
@@ -29,7 +29,7 @@ function Σ_j c_j²/(2ω_j)[coth(βω_j/2) cos ω_j t − i sin ω_j t] is the s
     Q = σz (spin-boson) or |n⟩⟨n| (site n),  lam = λ,  gamma = ω_c,  T = 1/β
 with no extra factor.  This is verified numerically below in two ways (results stored in every file):
 1. ``check_correlation_normalisation``: QuTiP's exact Drude-Lorentz C(t) (Padé sum, 200 terms) against
-   the correlation function of an explicit harmonic bath built from our J with the DESIGN §7.9 general
+   the correlation function of an explicit harmonic bath built from our J with the docs/theory.md#spin-boson-model general
    rule c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) (uniform ρ, 125000 modes up to 500 ω_c), for ω_c t ≥ 0.5.
 2. ``check_single_mode_coupling``: the HEOM solver with a single undamped mode c Q σz written as a
    four-exponent BosonicBath against brute-force Liouville–von Neumann evolution of spin ⊗ oscillator
@@ -196,7 +196,7 @@ def discretised_debye_correlation(lam: float, omega_c: float, beta: float, times
                                   d_omega_per_wc: float = 0.004, omega_max_per_wc: float = 500.0) -> np.ndarray:
     """C(t) = Σ_j c_j²/(2ω_j)[coth(βω_j/2) cos ω_j t − i sin ω_j t] of X = Σ_j c_j Q_j.
 
-    Modes from the DESIGN §7.9 general rule c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) with a uniform density
+    Modes from the docs/theory.md#spin-boson-model general rule c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) with a uniform density
     ρ = 1/dω (ω_j = (j − ½)dω up to ω_max), so the sum is a Riemann sum valid for t ≪ 2π/dω; the
     neglected tail ω > ω_max contributes ≲ 2λω_c/(π ω_max t).
     """

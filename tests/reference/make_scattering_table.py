@@ -4,7 +4,7 @@ Compares ``mapdyn.validation.scattering.run_scattering`` (SQC square window, SQC
 symmetrized zero point, and Ehrenfest; 2000 trajectories, fixed seed) with the exact grid solver
 ``mapdyn.validation.exact.exact_scattering`` for the same packet ψ ∝ exp[−(x−x0)²/(4σ²) + ik(x−x0)] on the lower
 adiabat (σ = 20/k Bohr for Tully's models, 5 Bohr for the wide crossing).  Models: J. C. Tully,
-J. Chem. Phys. 93, 1061 (1990); the wide linear crossing of VALIDATION.md.
+J. Chem. Phys. 93, 1061 (1990); the wide linear crossing of docs/theory.md#validation-benchmarks.
 
 Run (about ten minutes on one core)::
 

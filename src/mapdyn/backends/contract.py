@@ -11,7 +11,7 @@ that is a pure function of its arguments: whatever it needs from the previous st
 geometry, orbitals, CI/excitation amplitudes, phases) travels in ``guess``, so a restarted or
 repeated step gives the same answer and follows the same branch.
 
-Conventions (DESIGN.md §4, §7.6):
+Conventions (docs/architecture.md#backend-contract, docs/theory.md#local-diabatization):
 
 * ``energies`` ascending; index 0 is the ground state on every backend.
 * ``couplings[k, l] = d_kl = <psi_k | grad_R psi_l>``, real and antisymmetric.
@@ -162,7 +162,7 @@ class StateMatch:
 
 
 def match_states(overlap_raw: np.ndarray, low_overlap_threshold: float = LOW_OVERLAP_THRESHOLD) -> StateMatch:
-    """Match new states to previous ones and fix their signs (DESIGN.md §7.6 step 5).
+    """Match new states to previous ones and fix their signs (docs/theory.md#local-diabatization step 5).
 
     ``overlap_raw[k, l] = <psi_k(prev)|psi_l(new, raw phase)>``.  The assignment maximises
     sum |S_{pi(l), l}| (``scipy.optimize.linear_sum_assignment`` on −|S|); the sign of new state l is

@@ -1,4 +1,4 @@
-"""Any diabatic model of the core as an adiabatic electronic backend (DESIGN.md §4, §7.5, §7.6).
+"""Any diabatic model of the core as an adiabatic electronic backend (docs/architecture.md#backend-contract, docs/theory.md#adiabatic-representation, docs/theory.md#local-diabatization).
 
 Atomic units: positions in Bohr, energies in Eh, gradients in Eh/Bohr, couplings in 1/Bohr.
 
@@ -12,7 +12,7 @@ Adiabatic data from the diabatic matrix H(R) (eigh: H U = U diag E, columns = st
 
     ∇E_k = (Uᵀ ∇H U)_kk,     d_kl = (Uᵀ ∇H U)_kl / (E_l − E_k)   (k ≠ l)
 
-(Hellmann–Feynman and its off-diagonal form, DESIGN.md §7.5), and the raw overlap with the
+(Hellmann–Feynman and its off-diagonal form, docs/theory.md#adiabatic-representation), and the raw overlap with the
 previous step is S_kl = (U_prevᵀ U)_kl, matched and sign-aligned by
 :func:`mapdyn.backends.contract.match_states`.  On the first call (no guess) the sign convention is the
 model's own (:meth:`DiabaticModel.adiabatic`: largest component of each eigenvector positive), so

@@ -1,4 +1,4 @@
-"""Method options, kept orthogonal (DESIGN.md §5a): method × window × zero-point treatment."""
+"""Method options, kept orthogonal (docs/theory.md#method-options): method × window × zero-point treatment."""
 
 from __future__ import annotations
 

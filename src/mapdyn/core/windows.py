@@ -65,7 +65,7 @@ def sample_mapping_variables(rng: np.random.Generator, nstates: int, initial_sta
                              options: MethodOptions) -> tuple[np.ndarray, np.ndarray]:
     """(x, p), each (F,), for one trajectory: actions from the window, then F uniform angles q_k.
 
-    x_k = √(2e_k) cos q_k,  p_k = −√(2e_k) sin q_k (DESIGN.md §7.2).  Draw order: actions, angles.
+    x_k = √(2e_k) cos q_k,  p_k = −√(2e_k) sin q_k (docs/theory.md#square-windows).  Draw order: actions, angles.
     """
     e = sample_actions(rng, nstates, initial_state, options)
     q = 2.0 * np.pi * rng.random(nstates)

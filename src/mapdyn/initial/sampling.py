@@ -11,7 +11,7 @@ Workflow::
     modes = normal_modes(hess.hessian, symbols, opt.positions_bohr)
     ens = sample_wigner(modes, n_trajectories=100, seed=7, temperature_kelvin=0.0)
 
-Random numbers (DESIGN.md §3): trajectory i draws from
+Random numbers (docs/architecture.md#random-streams): trajectory i draws from
 ``np.random.default_rng(np.random.SeedSequence(seed).spawn(n)[i])`` (see :func:`trajectory_rng`);
 :func:`draw_wigner` consumes, in this order, ``nvib`` standard normals for the mode coordinates Q
 (mode order = ascending frequency) and then ``nvib`` standard normals for the mode momenta P_Q.
@@ -470,7 +470,7 @@ def normal_modes(hessian: np.ndarray, symbols: Sequence[str], positions_bohr: np
 # --------------------------------------------------------------------------------------------
 
 def trajectory_rng(seed: int, n_trajectories: int, index: int) -> np.random.Generator:
-    """``default_rng(SeedSequence(seed).spawn(n_trajectories)[index])`` (DESIGN.md §3)."""
+    """``default_rng(SeedSequence(seed).spawn(n_trajectories)[index])`` (docs/architecture.md#random-streams)."""
     n = int(n_trajectories)
     if n < 1:
         raise ValueError(f"n_trajectories must be >= 1, got {n_trajectories}")
@@ -491,7 +491,7 @@ def wigner_widths(frequencies_hartree: np.ndarray, temperature_kelvin: float = 0
                   ) -> tuple[np.ndarray, np.ndarray]:
     """Variances (σ_Q², σ_P²) of the thermal harmonic Wigner function for unit-mass modes.
 
-    σ_Q² = (ħ/2ω) coth(ħω/2kT), σ_P² = (ħω/2) coth(ħω/2kT); at T = 0 coth → 1 (DESIGN.md §7.7;
+    σ_Q² = (ħ/2ω) coth(ħω/2kT), σ_P² = (ħω/2) coth(ħω/2kT); at T = 0 coth → 1 (docs/theory.md#wigner-sampling;
     Wigner, Phys. Rev. 40, 749 (1932); Hillery et al., Phys. Rep. 106, 121 (1984); from memory).
     Units: Q in sqrt(m_e)·Bohr, P_Q in sqrt(m_e)·Bohr/(ħ/Eh); ω in Eh (ħ = 1).
     """
@@ -545,7 +545,7 @@ def remove_rigid_body_motion(positions_bohr: np.ndarray, velocities: np.ndarray,
 
 def draw_wigner(modes: NormalModes, rng: np.random.Generator, temperature_kelvin: float = 0.0, *,
                 zero_linear_momentum: bool = True, zero_angular_momentum: bool = True) -> WignerSample:
-    """Draw one nuclear initial condition from the harmonic Wigner function (DESIGN.md §7.7).
+    """Draw one nuclear initial condition from the harmonic Wigner function (docs/theory.md#wigner-sampling).
 
     Draw order from ``rng``: ``nvib`` standard normals for Q, then ``nvib`` for P_Q (mode order of
     ``modes``).  ΔR = M^{-1/2} L Q, V = M^{-1/2} L P_Q; then optional removal of total linear and

@@ -1,6 +1,6 @@
 """Spin-boson and site-exciton bath models, bath discretisations, thermal Wigner bath sampling.
 
-Convention (DESIGN.md §7.9; Pauli matrices σ_z = diag(1, −1), σ_x, **no factors of ½**):
+Convention (docs/theory.md#spin-boson-model; Pauli matrices σ_z = diag(1, −1), σ_x, **no factors of ½**):
 
     H = ε σ_z + Δ σ_x + Σ_j [ P_j²/2 + ½ ω_j² Q_j² + c_j Q_j σ_z ]     (mass-weighted bath, m_j = 1)
 
@@ -92,7 +92,7 @@ def debye_modes(reorganization: float, cutoff: float, nmodes: int, rule: str = "
     rule="midpoint":  ω_j = ω_c tan[π(j − ½)/(2N)],   c_j = ω_j √(2λ/N)        (Σ c²/2ω² = λ exactly)
     rule="endpoint":  ω_j = ω_c tan[πj/(2(N+1))],     c_j = ω_j √(2λ/(N+1))    (Σ c²/2ω² = Nλ/(N+1))
 
-    Both follow from ∫_0^{ω_j} ρ dω = j − ½ (or j) and c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) (DESIGN.md §7.9,
+    Both follow from ∫_0^{ω_j} ρ dω = j − ½ (or j) and c_j² = (2/π) ω_j J(ω_j)/ρ(ω_j) (docs/theory.md#spin-boson-model,
     re-derived; the tangent rule is common practice).  The top frequency is ≈ (4N/π) ω_c: use the
     stiff-bath integrator (:mod:`mapdyn.core.harmonic_bath`) rather than a tiny time step.
     """
@@ -112,7 +112,7 @@ class SpinBoson(LinearVibronicModel):
 
     epsilon ε, delta Δ (Eh); frequencies ω_j (N,) (Eh); couplings c_j (N,) (Eh/(Bohr·√m_e)).
     σ_z = diag(1, −1), no factors of ½, unit masses.  Driving force ΔG = −2ε, Marcus
-    reorganisation λ_M = Σ 2c_j²/ω_j² = 4λ (DESIGN.md §7.9; Leggett et al. 1987).
+    reorganisation λ_M = Σ 2c_j²/ω_j² = 4λ (docs/theory.md#spin-boson-model; Leggett et al. 1987).
     """
 
     name = "spin_boson"
@@ -163,7 +163,7 @@ class SpinBoson(LinearVibronicModel):
             k = 2π Δ² (4π λ_M k_BT)^(−1/2) exp[−(ΔG + λ_M)²/(4 λ_M k_BT)]
 
         with |V| = Δ (H_12), λ_M = Σ 2c²/ω², ΔG = −2ε (R. A. Marcus, J. Chem. Phys. 24, 966 (1956);
-        golden-rule prefactor as in VALIDATION.md).  beta = 1/k_BT in 1/Eh.
+        golden-rule prefactor as in docs/theory.md#validation-benchmarks).  beta = 1/k_BT in 1/Eh.
         """
         beta = _positive("beta", beta)
         lam = self.marcus_reorganization
@@ -252,7 +252,7 @@ def thermal_bath_widths(model: LinearVibronicModel, beta: float) -> tuple[np.nda
 
         σ_Q² = coth(βω/2)/(2mω),   σ_P² = (mω/2) coth(βω/2)
 
-    (Wigner, Phys. Rev. 40, 749 (1932); Hillery et al., Phys. Rep. 106, 121 (1984); DESIGN.md §7.7).
+    (Wigner, Phys. Rev. 40, 749 (1932); Hillery et al., Phys. Rep. 106, 121 (1984); docs/theory.md#wigner-sampling).
     beta = 1/k_BT in 1/Eh; ``numpy.inf`` gives the ground state (coth → 1).
     """
     if isinstance(beta, bool) or not isinstance(beta, (int, float, np.integer, np.floating)) \

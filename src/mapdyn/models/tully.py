@@ -104,7 +104,7 @@ class ExtendedCoupling(_OneDimensionalTwoState):
 
 
 class WideLinearCrossing(_OneDimensionalTwoState):
-    """A wide, nearly linear crossing built for the Landau–Zener regime (VALIDATION.md).
+    """A wide, nearly linear crossing built for the Landau–Zener regime (docs/theory.md#validation-benchmarks).
 
     V11 = −V22 = ½ ΔF W tanh(x/W), V12 = C exp(−(x/W)²); defaults W = 20 Bohr, ΔF = 0.01 Eh/Bohr,
     C = 0.003 Eh.  Near x = 0 the diabatic slope difference is ΔF.

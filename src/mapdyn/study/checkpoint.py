@@ -1,5 +1,5 @@
 """Checkpoint files: atomic HDF5 writes with integrity checks, per-trajectory restart state and
-write-once frame chunks (DESIGN.md §6).
+write-once frame chunks (docs/architecture.md#file-formats).
 
 File rules
 ----------

@@ -15,7 +15,7 @@ Rules the executor enforces or documents:
 * **One thread per worker.**  Every worker process runs one task at a time with one OpenMP/BLAS
   thread (``nthreads=1``, ``OMP_NUM_THREADS=1``; PySCF is pinned with ``pyscf.lib.num_threads(1)``
   inside each task).  Parallelism comes from many worker processes, as in the local runner
-  (DESIGN.md §7.10b: two threads on a busy node made a step 13× slower).
+  (docs/theory.md#pyscf-pitfalls: two threads on a busy node made a step 13× slower).
 * **Lost workers.**  When a worker dies (node failure, pre-emption, walltime), the scheduler
   re-runs its tasks elsewhere.  Tasks are idempotent (a task resumes the trajectory from its last
   checkpoint or recomputes it from its own seeded stream), so a re-run gives the same result.  A

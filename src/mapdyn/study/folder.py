@@ -1,4 +1,4 @@
-"""Study folder (DESIGN.md §6): layout, manifest, status derived from the files, initial
+"""Study folder (docs/architecture.md#file-formats): layout, manifest, status derived from the files, initial
 conditions of molecular studies, results as a :class:`mapdyn.analysis.TrajectorySet`.
 
 Layout::

@@ -7,14 +7,14 @@ outcome is a list of verdict lines (``PASS``, ``WARN``, ``FAIL``, ``INFO``).
 
 Finite differences (atomic units; positions in Bohr, energies in Eh, gradients in Eh/Bohr,
 couplings in 1/Bohr).  For a coordinate q and step h, with all displaced calls warm-started from
-the reference result at R0 so that their states carry its phases (DESIGN.md §4, §7.6):
+the reference result at R0 so that their states carry its phases (docs/architecture.md#backend-contract, docs/theory.md#local-diabatization):
 
     ∂E_k/∂q ≈ [E_k(R0 + h e_q) − E_k(R0 − h e_q)] / (2h)                       (central difference)
     d_kl,q = ⟨ψ_k|∂ψ_l/∂q⟩ ≈ [S_kl(+h) − S_kl(−h)] / (2h),  S_kl(±h) = ⟨ψ_k(R0)|ψ_l(R0 ± h e_q)⟩
 
 (both O(h²); the second is the bra-fixed form of the Hammes-Schiffer–Tully estimate, J. Chem.
 Phys. 101, 4657 (1994), used by the backend tests too).  Backends without coupling vectors (the
-TDA/TDDFT path, DESIGN.md §5b) are checked for the consistency of the overlap-based couplings the
+TDA/TDDFT path, docs/theory.md#on-the-fly-step) are checked for the consistency of the overlap-based couplings the
 driver will use: the bra-fixed estimate above must be antisymmetric, and must agree with the
 midpoint estimate σ/|V| = (S' − S'ᵀ)/(2·2h), S' = ⟨ψ(R0 − h e_q)|ψ(R0 + h e_q)⟩, the form
 ``time_derivative_couplings`` applies during dynamics; two independent O(h²) estimators of the
@@ -22,7 +22,7 @@ same d_kl,q.
 
 Cost: core-hours = t_step × n_steps × n_trajectories / 3600 + initial-conditions cost, where
 t_step is the measured wall time of one warm-started backend call with gradients on one thread
-(the backend call is ~95 % of a step, DESIGN.md §7.10b).
+(the backend call is ~95 % of a step, docs/theory.md#pyscf-pitfalls).
 """
 
 from __future__ import annotations
@@ -99,7 +99,7 @@ FD_TOLERANCES: dict[str, FiniteDifferenceTolerance] = {
         "~1e-5 Eh/Bohr after division by 2h"),
     "CASSCFBackend": FiniteDifferenceTolerance(
         3e-3, 1e-4, 1e-3, 0.02,
-        "DESIGN.md §7.10b and tests/test_backend_casscf.py: SA-CASSCF per-state noise ~1e-7 Eh over 2h "
+        "docs/theory.md#pyscf-pitfalls and tests/test_backend_casscf.py: SA-CASSCF per-state noise ~1e-7 Eh over 2h "
         "(~2e-5 Eh/Bohr) plus truncation; NAC agreement 2e-5–6e-4 seen at h = 2e-3–4e-3 Bohr"),
 }
 

@@ -14,10 +14,10 @@ Everything inside is in Hartree atomic units (bond length r in Bohr, energies in
    which is ⟨ψ_1|∂ψ_2/∂r⟩ at fixed centre of mass (R_A = X − (m_B/M) r ê, R_B = X + (m_A/M) r ê,
    so ∂/∂r = (m_A/M) ê·∇_B − (m_B/M) ê·∇_A).  The NAC vectors are the backend's default full form
    (``nac_form="full"``, PySCF ``use_etfs=False``: the CSF/basis-motion term is kept, which is
-   what matches finite differences of state overlaps, DESIGN.md §7.10b).
+   what matches finite differences of state overlaps, docs/theory.md#pyscf-pitfalls).
    Sign continuity: the scan starts cold at ``start_distance`` and walks outward, then inward,
    each point warm-started from its neighbour; the backend aligns the sign of every state with
-   its overlap with the neighbour's state (DESIGN.md §4, §7.6), so d_r keeps one phase convention
+   its overlap with the neighbour's state (docs/architecture.md#backend-contract, docs/theory.md#local-diabatization), so d_r keeps one phase convention
    along the whole scan.  The smallest aligned overlap of each step is stored.
 2. **Diabatization** (:func:`adt_angle`): with the adiabatic states written in the diabatic basis as
    ψ_1 = cos θ φ_1 − sin θ φ_2, ψ_2 = sin θ φ_1 + cos θ φ_2, the derivative coupling is

@@ -2,7 +2,7 @@
 the figure script).
 
 The models are built from the parameters stored in ``src/mapdyn/data/heom_<case>.npz`` (written by
-``make_heom_reference.py``; same Hamiltonian and J(ω) conventions, DESIGN §7.9), the bath is
+``make_heom_reference.py``; same Hamiltonian and J(ω) conventions, docs/theory.md#spin-boson-model), the bath is
 discretised with :func:`mapdyn.models.spin_boson.debye_modes` (midpoint tangent rule), sampled from
 the thermal Wigner function around Q⁰ = 0 (factorised initial state, as in the HEOM run) and
 propagated with :class:`mapdyn.core.harmonic_bath.HarmonicBathIntegrator`.

@@ -5,13 +5,13 @@ Cases (each compares one number of the mapping method with its exact reference):
 * Tully models 1–3 at several momenta and the wide linear crossing — exact split-operator
   wavepacket results stored in ``data/exact_scattering.npz`` (written by
   ``tests/reference/make_exact_scattering.py``; models from J. C. Tully, J. Chem. Phys. 93, 1061
-  (1990), wide crossing and Landau–Zener from VALIDATION.md).  Observable per model: transmission on
+  (1990), wide crossing and Landau–Zener from docs/theory.md#validation-benchmarks).  Observable per model: transmission on
   the upper adiabat (model 1, wide crossing), transmission on the lower adiabat (model 2),
   reflection on the lower adiabat (model 3).  Tolerance: 0.07 (models 1, 2, wide crossing) and 0.1
-  (model 3), the accuracy expected of SQC on these models (VALIDATION.md, measured during planning).
+  (model 3), the accuracy expected of SQC on these models (measured during planning).
 * Spin-boson (symmetric and biased Debye bath) — HEOM ⟨σz⟩(t) stored in ``data/heom_*.npz``
   (Tanimura & Kubo, J. Phys. Soc. Jpn. 58, 101 (1989), QuTiP implementation); the number compared
-  is the largest |Δ⟨σz⟩| over the stored window; tolerance 0.1 (VALIDATION.md).
+  is the largest |Δ⟨σz⟩| over the stored window; tolerance 0.1 (docs/theory.md#validation-benchmarks).
 * The real-diatomic case (SA-CASSCF potentials, ``data/diatomic_grid.npz``) when its cached grid and
   comparison module are present.
 

@@ -2,10 +2,10 @@
 
 All quantities in Hartree atomic units: positions in Bohr, energies in Eh, gradients in Eh/Bohr,
 coupling vectors in 1/Bohr, dipoles in e·Bohr.  The backend follows the contract of
-:mod:`mapdyn.backends.contract` (DESIGN.md §4): ``compute`` is a pure function of its arguments and
+:mod:`mapdyn.backends.contract` (docs/architecture.md#backend-contract): ``compute`` is a pure function of its arguments and
 everything carried from one step to the next travels in a picklable :class:`CASSCFGuess`.
 
-Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
+Physics and numerics (docs/theory.md#local-diabatization, docs/theory.md#sa-casscf-gradients-and-couplings, docs/theory.md#pyscf-pitfalls):
 
 * SA-CASSCF with equal weights over ``nstates`` roots (PySCF ``state_average_``).  Spin purity is
   enforced with a spin-penalty shift (H + shift·(S² − S(S+1)), PySCF ``fix_spin_``) or with the
@@ -24,7 +24,7 @@ Physics and numerics (DESIGN.md §7.6, §7.10, §7.10b):
   integrals (:mod:`mapdyn.backends.pyscf.casscf_one_pass`), identical to the plain per-state calls.
 * Warm start from the previous orbitals, Löwdin-orthonormalised at the new geometry
   C (CᵀSC)^(−1/2); the result is guarded by max|CᵀSC − 1| < 1e-10 (raw orbitals from another
-  geometry give a converged but wrong CASSCF, DESIGN.md §7.10b).
+  geometry give a converged but wrong CASSCF, docs/theory.md#pyscf-pitfalls).
 """
 
 from __future__ import annotations
@@ -53,7 +53,7 @@ __all__ = [
     "ORTHONORMALITY_TOL",
 ]
 
-#: guard on starting orbitals, max |CᵀSC − 1| (DESIGN.md §7.10b).
+#: guard on starting orbitals, max |CᵀSC − 1| (docs/theory.md#pyscf-pitfalls).
 ORTHONORMALITY_TOL = 1e-10
 
 _NAC_FORMS = ("full", "etf")
@@ -61,7 +61,7 @@ _SPIN_PURITY = ("shift", "spin0", "none")
 
 
 def _pyscf():
-    """Import PySCF lazily and pin it to one thread (DESIGN.md §7.10b, threads)."""
+    """Import PySCF lazily and pin it to one thread (docs/theory.md#pyscf-pitfalls, threads)."""
     from pyscf import lib
 
     lib.num_threads(1)

@@ -60,7 +60,7 @@ __all__ = [
 DEFAULT_SINGULAR_TOL = 1e-3
 
 #: Tolerance on |C'ᵀ S C' − 1| for a warm-start orbital set after Löwdin orthonormalisation
-#: (DESIGN.md §7.10b: unorthonormalised warm starts converge to wrong energies).
+#: (docs/theory.md#pyscf-pitfalls: unorthonormalised warm starts converge to wrong energies).
 WARM_START_ORTHO_TOL = 1e-10
 
 
@@ -158,7 +158,7 @@ def time_derivative_couplings(overlap_aligned: np.ndarray, dt: float) -> np.ndar
 
     ``overlap_aligned[k, l] = <ψ_k(t)|ψ_l(t+Δt)>`` after sign alignment (``match_states``);
     σ_kl = <ψ_k|∂ψ_l/∂t> = V·d_kl, antisymmetric, error O(Δt²) at the midpoint.
-    Source: Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994); see DESIGN.md §7.6.
+    Source: Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994); see docs/theory.md#local-diabatization.
     ``dt`` is the time between the two geometries in atomic time units (ħ/Eh).
     """
     s = np.asarray(overlap_aligned, dtype=float)
