@@ -61,9 +61,9 @@ def test_sqc_populations_windowed_normalisation_and_no_window_counts():
     # t = 0: every resample gives P = (0, 1) → interval collapses onto the estimate
     assert p.low[0].tolist() == [0.0, 1.0] and p.high[0].tolist() == [0.0, 1.0]
     # agrees with the core estimator time by time
-    from mapdyn.core.windows import window_populations
+    from mapdyn.core.populations import ensemble_populations
     for t in range(3):
-        pops, none = window_populations(ts.actions[:, t], SQC)
+        pops, none = ensemble_populations(ts.actions[:, t], SQC)
         np.testing.assert_allclose(p.populations[t], pops, atol=1e-15)
         assert none == p.n_none[t]
 
@@ -112,9 +112,9 @@ def test_initial_state_population_follows_each_trajectorys_own_state():
 
 
 def test_from_diabatic_run_matches_core_populations():
-    from mapdyn.models.tully import tully_model
     from mapdyn.core.propagators import run_diabatic
     from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.models.tully import tully_model
 
     model = tully_model("tully1")
     state = gaussian_wavepacket_ensemble(model, 64, 7, position=-5.0, momentum=15.0, position_width=1.0,
@@ -350,8 +350,8 @@ def synthetic_molecular_set(seed=0):
 
 
 def test_report_files_exist_and_csvs_equal_memory(tmp_path):
-    from mapdyn.initial.excitation import absorption_spectrum
     from mapdyn.analysis.vibrational import FragmentAnalysis
+    from mapdyn.initial.excitation import absorption_spectrum
 
     ts, morse = synthetic_molecular_set()
     rng = np.random.default_rng(0)
@@ -505,9 +505,9 @@ products = {"transmitted on 1" = [{coordinate = 0, above = 0.0}, {state = 1}], "
 
 def test_study_folder_load_analyze_and_cli(tmp_path):
     from mapdyn.cli import main
-    from mapdyn.models.tully import tully_model
     from mapdyn.core.propagators import run_diabatic
     from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.models.tully import tully_model
 
     toml = tmp_path / "tiny.toml"
     toml.write_text(STUDY_TOML)
@@ -554,8 +554,8 @@ def test_rule_classifier_coordinates_states_and_mismatch():
 
 
 def test_study_spectrum_from_initial_conditions(tmp_path):
-    from mapdyn.study.checkpoint import write_h5
     from mapdyn.initial.excitation import absorption_spectrum
+    from mapdyn.study.checkpoint import write_h5
 
     assert SA.study_spectrum(str(tmp_path)) is None
     rng = np.random.default_rng(2)
@@ -574,11 +574,12 @@ def test_driver_frames_give_the_drivers_own_window_bookkeeping():
 
     import ase
     from ase import units
+
     from mapdyn.backends.model_adapter import ModelAdapterBackend
-    from mapdyn.units import AMU_IN_ME
+    from mapdyn.core.sampling import trajectory_generator
     from mapdyn.driver.dynamics import MappingDynamics
     from mapdyn.models.tully import tully_model
-    from mapdyn.core.sampling import trajectory_generator
+    from mapdyn.units import AMU_IN_ME
 
     model = tully_model("tully1")
     p_ase = AMU_IN_ME * units.AUT / units.Bohr

@@ -17,6 +17,7 @@ import pytest
 
 pytest.importorskip("pyscf")
 
+from mapdyn.backends.contract import BackendError  # noqa: E402
 from mapdyn.backends.pyscf.casscf import (  # noqa: E402
     ORTHONORMALITY_TOL,
     CASSCFBackend,
@@ -25,7 +26,6 @@ from mapdyn.backends.pyscf.casscf import (  # noqa: E402
     lowdin_orthonormalize,
     orthonormality_error,
 )
-from mapdyn.backends.contract import BackendError  # noqa: E402
 
 # Distorted geometries, Bohr.
 LIH_POS = np.array([[0.0, 0.0, 0.0], [1.9, 1.3, 1.1]])

@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from mapdyn.backends.callback import CallbackBackend
-from mapdyn.backends.model_adapter import ModelAdapterBackend, ModelGuess
 from mapdyn.backends.contract import Backend, BackendError, ElectronicResult, match_states
+from mapdyn.backends.model_adapter import ModelAdapterBackend, ModelGuess
 from mapdyn.core.model import DiabaticModel, as_positions
 from mapdyn.models.tully import SimpleAvoidedCrossing, tully_model
 

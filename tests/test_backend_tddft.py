@@ -13,6 +13,7 @@ import pytest
 
 pyscf = pytest.importorskip("pyscf")
 
+from mapdyn.backends.contract import BackendError  # noqa: E402
 from mapdyn.backends.pyscf.tddft import (  # noqa: E402
     TDDFTBackend,
     TDDFTGuess,
@@ -20,7 +21,6 @@ from mapdyn.backends.pyscf.tddft import (  # noqa: E402
     normalise_cis_amplitudes,
     time_derivative_couplings,
 )
-from mapdyn.backends.contract import BackendError  # noqa: E402
 
 # Distorted (C1) water, Bohr: no symmetry, so every coupling is allowed.
 WATER = np.array([[0.05, -0.03, 0.10],

@@ -9,7 +9,6 @@ an uninterrupted one bit for bit (np.array_equal, no tolerance).
 from __future__ import annotations
 
 import os
-import warnings
 
 import ase
 import numpy as np
@@ -17,13 +16,13 @@ import pytest
 from ase import units
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, read_h5, write_h5
-from mapdyn.files import atomic_write
-from mapdyn.units import AMU_IN_ME
-from mapdyn.driver.dynamics import MappingDynamics
-from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.sampling import trajectory_generator
+from mapdyn.driver.dynamics import MappingDynamics
+from mapdyn.files import atomic_write
+from mapdyn.models.tully import tully_model
+from mapdyn.study.checkpoint import CheckpointError, TrajectoryStore, read_h5, write_h5
+from mapdyn.units import AMU_IN_ME
 
 pytestmark = pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning")
 

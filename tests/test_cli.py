@@ -19,8 +19,8 @@ import time
 import numpy as np
 import pytest
 
-from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.cli import main
+from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.study.folder import Study
 
 ENV = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1")
@@ -104,10 +104,10 @@ def file_ids(paths):
 
 def test_model_study_end_to_end(tmp_path, capsys, monkeypatch):
     """run → chunks equal to run_diabatic on the same rows; report written; status; rerun is a no-op."""
-    from mapdyn.models.tully import tully_model
     from mapdyn.core.options import MethodOptions
     from mapdyn.core.propagators import run_diabatic
     from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+    from mapdyn.models.tully import tully_model
 
     toml = write(tmp_path, "m.toml", model_toml(trajectories=80))
     proc = mapdyn("run", toml, cwd=tmp_path)

@@ -152,10 +152,10 @@ def test_task_that_raises_once_is_retried(dask_executor, tmp_path):
 # The ensemble runner on Dask: same code path (run_ensemble + run_task), same files
 # ---------------------------------------------------------------------------------------------
 
-from mapdyn.study.config import load_study_config  # noqa: E402
-from mapdyn.study.runner import run_ensemble, run_task  # noqa: E402
-from mapdyn.study.folder import Study
 from mapdyn.study.analyze import load_trajectory_set  # noqa: E402
+from mapdyn.study.config import load_study_config  # noqa: E402
+from mapdyn.study.folder import Study
+from mapdyn.study.runner import run_ensemble, run_task  # noqa: E402
 
 #: batched model study: Tully model 1 (scenario of our own), 4 chunks of 100 trajectories.
 MODEL_STUDY = """
@@ -251,8 +251,8 @@ def test_killed_worker_mid_run_ensemble_completes_identically(dask_executor, tmp
                 folder = study.trajectory_folder(i)
                 marker = os.path.join(folder, "running.json")
                 if os.path.exists(marker):
-                    from mapdyn.study.checkpoint import TrajectoryStore
                     from mapdyn.files import read_json
+                    from mapdyn.study.checkpoint import TrajectoryStore
 
                     try:
                         pid = int(read_json(marker)["pid"])

@@ -7,11 +7,10 @@ import os
 import subprocess
 import sys
 
-import numpy as np
 import pytest
 
 from mapdyn.cli import main
-from mapdyn.study.config import ConfigError, load_study_config, parse_duration
+from mapdyn.study.config import load_study_config, parse_duration
 
 MODEL = """
 [study]

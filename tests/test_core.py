@@ -7,12 +7,12 @@ from scipy.integrate import solve_ivp
 
 from mapdyn.core.mapping import actions, effective_density, mapping_energy
 from mapdyn.core.model import DiabaticModel
-from mapdyn.models.tully import SimpleAvoidedCrossing, DualAvoidedCrossing
-from mapdyn.core.options import MethodOptions, SQUARE_GAMMA
+from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
+from mapdyn.core.populations import ensemble_populations
 from mapdyn.core.propagators import DiabaticIntegrator, propagate_amplitudes, run_diabatic
 from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble, trajectory_generator
-from mapdyn.core.windows import (sample_actions, sample_mapping_variables, window_assignment,
-                            window_indicators, window_populations)
+from mapdyn.core.windows import sample_actions, sample_mapping_variables, window_assignment, window_indicators
+from mapdyn.models.tully import DualAvoidedCrossing, SimpleAvoidedCrossing
 
 SQUARE = MethodOptions("sqc", "square")
 TRIANGLE = MethodOptions("sqc", "triangle")
@@ -184,7 +184,7 @@ def test_sampled_actions_lie_in_the_initial_window(options, f, i):
     rng = np.random.default_rng(0)
     e = np.array([sample_actions(rng, f, i, options) for _ in range(4000)])
     assert np.all(window_assignment(e, options) == i)
-    pops, none = window_populations(e, options)
+    pops, none = ensemble_populations(e, options)
     assert none == 0 and pops[i] == 1.0
 
 

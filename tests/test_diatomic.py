@@ -15,8 +15,17 @@ import numpy as np
 import pytest
 from scipy.interpolate import CubicSpline
 
-from mapdyn.validation.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, adt_angle, bond_coupling, diabatize,
-                             load_packaged_grid, photoexcitation_scenario, reduced_mass)
+from mapdyn.validation.diatomic import (
+    KCL_SCAN,
+    DiatomicGrid,
+    DiatomicModel,
+    adt_angle,
+    bond_coupling,
+    diabatize,
+    load_packaged_grid,
+    photoexcitation_scenario,
+    reduced_mass,
+)
 from mapdyn.validation.exact import Absorber, Grid, GridPropagator, gaussian_wavepacket
 
 

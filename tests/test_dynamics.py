@@ -19,16 +19,15 @@ import pytest
 from ase import units
 
 from mapdyn.backends.callback import CallbackBackend
-from mapdyn.backends.model_adapter import ModelAdapterBackend
-from mapdyn.driver.dynamics import (AMU_IN_ME, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics,
-                             remove_total_momentum)
 from mapdyn.backends.contract import BackendError
+from mapdyn.backends.model_adapter import ModelAdapterBackend
 from mapdyn.core.model import DiabaticModel, as_positions
-from mapdyn.models.tully import SimpleAvoidedCrossing, tully_model
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import run_diabatic
 from mapdyn.core.sampling import gaussian_wavepacket_ensemble, trajectory_generator
 from mapdyn.core.windows import sample_mapping_variables
+from mapdyn.driver.dynamics import AMU_IN_ME, GAP_WARNING, PROJECTION_WARNING, DriverState, MappingDynamics, remove_total_momentum
+from mapdyn.models.tully import SimpleAvoidedCrossing, tully_model
 
 pytestmark = [pytest.mark.filterwarnings("ignore:no coupling vectors:UserWarning"),
               pytest.mark.filterwarnings("ignore:time step does not resolve:UserWarning")]

@@ -15,10 +15,18 @@ import pytest
 import scipy.integrate
 import scipy.sparse.linalg as sla
 
-from mapdyn.validation.exact import (Absorber, ExactSettings, Grid, GridPropagator, check_convergence, exact_scattering,
-                          gaussian_wavepacket, propagate_wavepacket)
 from mapdyn.core.model import DiabaticModel, as_positions
 from mapdyn.models.tully import SimpleAvoidedCrossing, WideLinearCrossing
+from mapdyn.validation.exact import (
+    Absorber,
+    ExactSettings,
+    Grid,
+    GridPropagator,
+    check_convergence,
+    exact_scattering,
+    gaussian_wavepacket,
+    propagate_wavepacket,
+)
 
 
 class CrossingWithVibration(DiabaticModel):

@@ -19,12 +19,10 @@ square windows and t < 0.5/Δ the allowance is therefore 0.12 + 3σ.
 """
 from __future__ import annotations
 
-
 import numpy as np
 import pytest
 
 import mapdyn.validation.heom_cases as cmp  # noqa: E402
-
 from mapdyn.core.options import MethodOptions  # noqa: E402
 
 TOL = 0.1

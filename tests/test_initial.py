@@ -11,14 +11,30 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 from ase import units  # noqa: E402
 
 from mapdyn.backends.contract import ElectronicResult  # noqa: E402
-from mapdyn.initial.sampling import (  # noqa: E402
-    AMU_IN_ME, LevelOfTheoryWarning, ModeDroppedWarning, check_level_of_theory, compute_hessian,
-    draw_wigner, masses_amu_for, normal_modes, optimize_ground_state, remove_rigid_body_motion,
-    sample_wigner, trajectory_rng, wigner_widths)
-from mapdyn.initial.excitation import (  # noqa: E402
-    CROSS_SECTION_PREFACTOR_BOHR2_HARTREE, absorption_spectrum, choose_initial_states,
-    excitation_properties, oscillator_strengths, plot_absorption_spectrum, state_choice_rng)
 from mapdyn.backends.pyscf.ground_state import PySCFGroundState  # noqa: E402
+from mapdyn.initial.excitation import (  # noqa: E402
+    CROSS_SECTION_PREFACTOR_BOHR2_HARTREE,
+    absorption_spectrum,
+    choose_initial_states,
+    excitation_properties,
+    oscillator_strengths,
+    plot_absorption_spectrum,
+    state_choice_rng,
+)
+from mapdyn.initial.sampling import (  # noqa: E402
+    LevelOfTheoryWarning,
+    ModeDroppedWarning,
+    check_level_of_theory,
+    compute_hessian,
+    draw_wigner,
+    masses_amu_for,
+    normal_modes,
+    optimize_ground_state,
+    remove_rigid_body_motion,
+    sample_wigner,
+    trajectory_rng,
+    wigner_widths,
+)
 
 SYMBOLS = ["O", "H", "H"]
 # deliberately distorted water (Bohr), far enough from the minimum to need several BFGS steps

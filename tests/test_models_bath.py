@@ -8,16 +8,23 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
+from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
 from mapdyn.core.mapping import actions
-from mapdyn.models.callable import CallableModel
-from mapdyn.models.spin_boson import (ExcitonTransferModel, SpinBoson, debye_modes, debye_spectral_density,
-                                      ohmic_modes, ohmic_spectral_density, thermal_bath_ensemble,
-                                      thermal_bath_widths)
-from mapdyn.models.vibronic import LinearVibronicModel
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import DiabaticIntegrator
-from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
 from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+from mapdyn.models.callable import CallableModel
+from mapdyn.models.spin_boson import (
+    ExcitonTransferModel,
+    SpinBoson,
+    debye_modes,
+    debye_spectral_density,
+    ohmic_modes,
+    ohmic_spectral_density,
+    thermal_bath_ensemble,
+    thermal_bath_widths,
+)
+from mapdyn.models.vibronic import LinearVibronicModel
 
 TRIANGLE = MethodOptions(window="triangle")
 

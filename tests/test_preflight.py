@@ -13,11 +13,18 @@ import dataclasses
 import numpy as np
 import pytest
 
-from mapdyn.backends.model_adapter import ModelAdapterBackend
 from mapdyn.backends.contract import BackendError
+from mapdyn.backends.model_adapter import ModelAdapterBackend
 from mapdyn.models.tully import tully_model
-from mapdyn.study.preflight import (FD_TOLERANCES, CheckLine, check_backend, choose_coordinates,
-                              estimate_core_hours, finite_difference_tolerance, molecular_preflight)
+from mapdyn.study.preflight import (
+    FD_TOLERANCES,
+    CheckLine,
+    check_backend,
+    choose_coordinates,
+    estimate_core_hours,
+    finite_difference_tolerance,
+    molecular_preflight,
+)
 
 
 def _verdicts(lines, topic):

@@ -15,9 +15,9 @@ import functools
 import numpy as np
 import pytest
 
-from mapdyn.validation.exact import exact_scattering
-from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
+from mapdyn.models.tully import tully_model
+from mapdyn.validation.exact import exact_scattering
 from mapdyn.validation.scattering import compare_scattering, default_interaction_region, run_scattering
 
 NTRAJ, SEED, DT = 2000, 20261202, 4.0

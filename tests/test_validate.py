@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 
 import mapdyn.core.windows
-from mapdyn.validation import table as validate
-from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
+from mapdyn.models.tully import tully_model
+from mapdyn.validation import table as validate
 from mapdyn.validation.scattering import run_scattering
 
 TRIANGLE = MethodOptions("sqc", "triangle")

@@ -9,8 +9,6 @@ import pytest
 from scipy import integrate, optimize
 
 import mapdyn.analysis as A
-import mapdyn.study.analysis_settings as SS
-import mapdyn.study.analyze as SA
 from mapdyn.analysis import vibrational as V
 from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 

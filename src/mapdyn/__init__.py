@@ -1,7 +1,12 @@
 """mapdyn: nonadiabatic dynamics with classical mapping (MMST) oscillators and SQC windows.
 
-Internals are in Hartree atomic units; conversion to Å, eV, fs and amu happens only at the ASE
-boundary (``ase.units``).
+Internals are in Hartree atomic units; conversion to Å, eV, fs and amu happens only at the edges
+(:mod:`mapdyn.units`).  Layers and data flow: docs/architecture.md.
 """
 
-__version__ = "0.1.0"
+from importlib import metadata as _metadata
+
+try:
+    __version__: str = _metadata.version("mapdyn")
+except _metadata.PackageNotFoundError:  # running from a source tree that was never installed
+    __version__ = "0+unknown"

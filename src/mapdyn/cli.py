@@ -13,6 +13,7 @@ import sys
 import time
 from typing import Sequence
 
+from mapdyn import __version__
 from mapdyn.study.cluster import ClusterError
 
 __all__ = ["main", "build_parser"]
@@ -52,6 +53,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Nonadiabatic molecular dynamics with classical mapping (MMST) oscillators and SQC windows: "
                     "sample initial conditions, run restartable trajectory ensembles, analyse.",
         epilog=_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="version", version=f"mapdyn {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     def common_run(sp):

@@ -30,11 +30,11 @@ from concurrent.futures import ProcessPoolExecutor  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from mapdyn.models.spin_boson import SpinBoson, thermal_bath_ensemble  # noqa: E402
-from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.harmonic_bath import HarmonicBathIntegrator  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.sampling import EnsembleState  # noqa: E402
 from mapdyn.core.windows import window_indicators  # noqa: E402
+from mapdyn.models.spin_boson import SpinBoson, thermal_bath_ensemble  # noqa: E402
 
 OPTIONS = MethodOptions(window="triangle")
 DT = 0.05

@@ -25,11 +25,10 @@ import numpy as np  # noqa: E402
 from ase import Atoms, units  # noqa: E402
 
 from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
-from mapdyn.study.checkpoint import TrajectoryStore  # noqa: E402
-from mapdyn.units import AMU_IN_ME
-from mapdyn.driver.dynamics import MappingDynamics  # noqa: E402
 from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.sampling import trajectory_generator  # noqa: E402
+from mapdyn.driver.dynamics import MappingDynamics  # noqa: E402
+from mapdyn.study.checkpoint import TrajectoryStore  # noqa: E402
 
 K = 10
 SYMBOLS = ["C", "C", "H", "H", "H", "H"]

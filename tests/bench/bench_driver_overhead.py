@@ -23,11 +23,11 @@ from ase import units  # noqa: E402
 
 from mapdyn.backends.model_adapter import ModelAdapterBackend  # noqa: E402
 from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
-from mapdyn.units import AMU_IN_ME
-from mapdyn.driver.dynamics import MappingDynamics  # noqa: E402
-from mapdyn.models.tully import tully_model  # noqa: E402
 from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.sampling import trajectory_generator  # noqa: E402
+from mapdyn.driver.dynamics import MappingDynamics  # noqa: E402
+from mapdyn.models.tully import tully_model  # noqa: E402
+from mapdyn.units import AMU_IN_ME
 
 
 def timed_run(dyn: MappingDynamics, steps: int) -> tuple[float, float]:

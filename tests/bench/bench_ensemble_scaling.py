@@ -39,8 +39,8 @@ def warm_worker(study_dir: str) -> float:
 
 def run_once(template: str, workdir: str, workers: int) -> dict:
     from mapdyn.study.cluster import local_cluster_executor
-    from mapdyn.study.runner import run_ensemble
     from mapdyn.study.folder import Study
+    from mapdyn.study.runner import run_ensemble
 
     folder = os.path.join(workdir, f"run_{workers}w")
     shutil.copytree(template, folder)

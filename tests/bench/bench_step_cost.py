@@ -17,8 +17,8 @@ import time  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from mapdyn.backends.pyscf.casscf_one_pass import one_pass_gradients_and_couplings  # noqa: E402
 from mapdyn.backends.pyscf.casscf import CASSCFBackend  # noqa: E402
+from mapdyn.backends.pyscf.casscf_one_pass import one_pass_gradients_and_couplings  # noqa: E402
 
 REPEAT = 3
 ANGSTROM = 1.0 / 0.52917721092

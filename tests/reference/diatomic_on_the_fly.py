@@ -33,12 +33,18 @@ os.environ.setdefault("OMP_NUM_THREADS", "1")
 import numpy as np
 from ase import Atoms, units
 
-from mapdyn.validation.diatomic import KCL_SCAN, DiatomicGrid, DiatomicModel, atomic_masses_amu, load_packaged_grid, \
-    photoexcitation_scenario
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import run_diabatic
 from mapdyn.core.sampling import gaussian_wavepacket_ensemble
 from mapdyn.core.windows import window_assignment
+from mapdyn.validation.diatomic import (
+    KCL_SCAN,
+    DiatomicGrid,
+    DiatomicModel,
+    atomic_masses_amu,
+    load_packaged_grid,
+    photoexcitation_scenario,
+)
 
 ROOT = os.path.abspath(os.path.join(os.path.dirname(__file__), "..", ".."))
 

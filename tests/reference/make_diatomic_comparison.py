@@ -31,13 +31,20 @@ import time
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 import numpy as np
-
-from mapdyn.validation.diatomic import (KCL_SCAN, DiatomicGrid, DiatomicModel, kcl_scan_distances, packaged_grid_path,
-                             photoexcitation_scenario, run_exact_photoexcitation, run_mapping_photoexcitation,
-                             scan_diatomic)
-from mapdyn.core.options import MethodOptions
-
 from ase import units
+
+from mapdyn.core.options import MethodOptions
+from mapdyn.validation.diatomic import (
+    KCL_SCAN,
+    DiatomicGrid,
+    DiatomicModel,
+    kcl_scan_distances,
+    packaged_grid_path,
+    photoexcitation_scenario,
+    run_exact_photoexcitation,
+    run_mapping_photoexcitation,
+    scan_diatomic,
+)
 
 AU_TIME_IN_FS = units.AUT / units.fs  # one atomic unit of time in fs (ase.units)
 EV = units.Hartree  # eV per Eh (ase.units)

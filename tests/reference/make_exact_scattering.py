@@ -31,8 +31,8 @@ from pathlib import Path
 
 import numpy as np
 
-from mapdyn.validation.exact import ExactSettings, check_convergence
 from mapdyn.models.tully import tully_model
+from mapdyn.validation.exact import ExactSettings, check_convergence
 
 OUT = Path(__file__).resolve().parents[2] / "src" / "mapdyn" / "data" / "exact_scattering.npz"
 START = {"tully1": -12.0, "tully2": -16.0, "tully3": -15.0, "wide_crossing": -85.0}

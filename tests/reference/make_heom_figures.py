@@ -17,9 +17,8 @@ from pathlib import Path
 import numpy as np
 
 import mapdyn.validation.heom_cases as cmp  # noqa: E402
-
+from mapdyn.analysis.plots import new_figure, save_figure  # noqa: E402
 from mapdyn.core.options import MethodOptions  # noqa: E402
-from mapdyn.analysis.plots import STATE_COLOURS, new_figure, save_figure  # noqa: E402
 
 FIG_DIR = Path(__file__).resolve().parents[2] / "examples" / "figures"
 AUT_PER_FS = 41.341373335  # a.u. of time per fs (CODATA 2018)

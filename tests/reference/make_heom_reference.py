@@ -53,8 +53,8 @@ from pathlib import Path
 
 import numpy as np
 import qutip
-from qutip.solver.heom import BosonicBath, DrudeLorentzBath, HEOMSolver
 from qutip.core.environment import DrudeLorentzEnvironment
+from qutip.solver.heom import BosonicBath, DrudeLorentzBath, HEOMSolver
 
 DATA_DIR = Path(__file__).resolve().parents[2] / "src" / "mapdyn" / "data"
 CITATION = "Y. Tanimura & R. Kubo, J. Phys. Soc. Jpn. 58, 101 (1989); QuTiP qutip.solver.heom"

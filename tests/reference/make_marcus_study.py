@@ -39,10 +39,10 @@ from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
 
-from mapdyn.models.spin_boson import SpinBoson, thermal_bath_ensemble  # noqa: E402
-from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.harmonic_bath import HarmonicBathIntegrator  # noqa: E402
+from mapdyn.core.options import MethodOptions  # noqa: E402
 from mapdyn.core.windows import window_indicators  # noqa: E402
+from mapdyn.models.spin_boson import SpinBoson, thermal_bath_ensemble  # noqa: E402
 
 BETA = 1.0
 CUTOFF = 0.25

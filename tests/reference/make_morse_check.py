@@ -5,16 +5,19 @@ Bohr–Sommerfeld quantisation with the ½ is exact for the Morse oscillator (P.
 second figure bins a synthetic ensemble with known level populations (0.45/0.30/0.15/0.10) with
 histogram boxes and symmetric windows.  Run: ``python tests/reference/make_morse_check.py``.
 """
-from pathlib import Path
 import sys
+from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 OUT = HERE.parents[1] / "examples" / "figures"
 import numpy as np
+
 sys.path.insert(0, str(HERE.parent))
-from test_vibrational import MORSE, MU, morse_turning_points, cartesian_pair
-from mapdyn.analysis import vibrational as V
+from test_vibrational import MORSE, MU, cartesian_pair, morse_turning_points
+
 from mapdyn.analysis import plots
+from mapdyn.analysis import vibrational as V
+
 rng = np.random.default_rng(1)
 levels = MORSE.levels(MU)
 rows = []

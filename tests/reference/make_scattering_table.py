@@ -24,9 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from mapdyn.validation.exact import exact_scattering
-from mapdyn.models.tully import tully_model
 from mapdyn.core.options import MethodOptions
+from mapdyn.models.tully import tully_model
+from mapdyn.validation.exact import exact_scattering
 from mapdyn.validation.scattering import run_scattering
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -116,8 +116,9 @@ def main(argv=None) -> int:
 
     import matplotlib
     matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
     import io
+
+    import matplotlib.pyplot as plt
     model = tully_model("tully2")
     ex_curve = np.array([[exact_scattering(model, k, START["tully2"], 20.0 / k).transmission[f] for f in (0, 1)]
                          for k in FIGURE_EXACT_MOMENTA])

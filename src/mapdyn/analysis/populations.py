@@ -8,7 +8,7 @@ import numpy as np
 
 from mapdyn.analysis.statistics import _resample_weights, bootstrap_ratio
 from mapdyn.analysis.trajectories import TrajectorySet
-from mapdyn.core.windows import window_indicators
+from mapdyn.core.populations import population_weights
 from mapdyn.units import AU_TIME_IN_FS
 
 
@@ -45,17 +45,11 @@ class PopulationSeries:
 
 def _state_weights(tset: TrajectorySet) -> tuple[np.ndarray, np.ndarray, str]:
     """Per-trajectory numerators (n, T, F) and denominators (n, T) of the population ratio."""
-    e = tset.actions
     mask = tset.frame_mask
-    n, T, F = e.shape
-    if tset.options.method == "ehrenfest":
-        num = np.where(mask[..., None], e, 0.0)
-        den = num.sum(axis=2)
-        return num, den, "Ehrenfest: P_f = Σ_j e_jf / Σ_j Σ_k e_jk over trajectories with a frame"
-    flat = np.where(mask[..., None], e, 0.0).reshape(n * T, F)
-    ind = window_indicators(flat, tset.options).reshape(n, T, F) & mask[..., None]
-    num = ind.astype(float)
+    num = np.where(mask[..., None], population_weights(tset.actions, tset.options), 0.0)
     den = num.sum(axis=2)
+    if tset.options.method == "ehrenfest":
+        return num, den, "Ehrenfest: P_f = Σ_j e_jf / Σ_j Σ_k e_jk over trajectories with a frame"
     g = tset.options.window_gamma
     return num, den, (f"SQC {tset.options.window} windows (γ = {g:.6g}), windowed normalisation "
                       "P_f = N_f / Σ_f' N_f'; trajectories in no window counted separately")

@@ -47,11 +47,12 @@ and two force contractions (one of each for ``averaged=False``), all O(n·D·F²
 
 from __future__ import annotations
 
+from typing import Any, Protocol
+
 import numpy as np
 from scipy.linalg.blas import dgemm as _dgemm
 
 from mapdyn.core.mapping import effective_density, mapping_energy
-from mapdyn.core.model import DiabaticModel
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import propagate_amplitudes
 from mapdyn.core.sampling import EnsembleState
@@ -83,6 +84,26 @@ def harmonic_flow_coefficients(omega2: np.ndarray, t: float):
     return C, S, W
 
 
+class HarmonicBathModel(Protocol):
+    """What the integrator needs of a model: H = V0(R) + H_sys(R) with a harmonic reference V0
+    (frequencies ω (N,) in 1/a.u. time, masses (N,) in electron masses), and the system part with
+    its contracted gradient (Eh, Eh/Bohr)."""
+
+    nstates: int
+    masses: Any
+    harmonic_frequencies: Any
+    couplings: Any
+    constant: Any
+
+    def hamiltonian(self, R: np.ndarray) -> np.ndarray: ...
+
+    def contract_gradient(self, R: np.ndarray, rho: np.ndarray) -> np.ndarray: ...
+
+    def system_hamiltonian(self, R: np.ndarray) -> np.ndarray: ...
+
+    def system_contract_gradient(self, R: np.ndarray, rho: np.ndarray) -> np.ndarray: ...
+
+
 class HarmonicBathIntegrator:
     """Batched MMST step with the harmonic reference V0 integrated exactly (see module docstring).
 
@@ -93,7 +114,8 @@ class HarmonicBathIntegrator:
     averaged : time-averaged H_sys in the oscillator steps (default; see module docstring).
     """
 
-    def __init__(self, model: DiabaticModel, options: MethodOptions, dt: float, averaged: bool = True):
+    def __init__(self, model: HarmonicBathModel, options: MethodOptions, dt: float,
+                 averaged: bool = True):
         if not np.isfinite(dt) or dt <= 0:
             raise ValueError(f"dt={dt!r} is not allowed; the time step must be a positive number of a.u.")
         for attr in ("harmonic_frequencies", "system_hamiltonian", "system_contract_gradient"):
@@ -114,8 +136,8 @@ class HarmonicBathIntegrator:
         if not isinstance(averaged, bool):
             raise ValueError(f"averaged={averaged!r} is not allowed; it must be True or False")
         self.averaged = averaged
-        self._R_cached = None
-        self._fast = None
+        self._R_cached: np.ndarray | None = None
+        self._fast: dict[str, np.ndarray] | None = None
         if self._linear and averaged and hasattr(model, "couplings") and hasattr(model, "constant"):
             self._fast = self._fast_coefficients(np.asarray(model.couplings, dtype=float))
 
@@ -263,6 +285,7 @@ class HarmonicBathIntegrator:
         Ehrenfest) with precomputed coefficient matrices (identical algebra, fewer passes):
         H_sys(R̄⁻) and H_sys(R̄⁺) both come from R·[M_R | M_R'] and P·[M_P | M_P'] at the step start."""
         c, half = self._fast, 0.5 * self.dt
+        assert c is not None
         n, F, _ = rho0.shape
         F2 = F * F
         R, P = state.R, state.P
@@ -321,6 +344,7 @@ class HarmonicBathIntegrator:
     def _step_two_state_unit_trace(self, state: EnsembleState, rho0: np.ndarray) -> None:
         """:meth:`_step_averaged_unit_trace` for F = 2 with the oscillator algebra in real columns."""
         c, half = self._fast, 0.5 * self.dt
+        assert c is not None
         n = rho0.shape[0]
         R, P = state.R, state.P
         r0 = rho0.reshape(n, 4)

@@ -22,8 +22,8 @@ import numpy as np
 from mapdyn.core.mapping import actions, effective_density, mapping_energy
 from mapdyn.core.model import DiabaticModel
 from mapdyn.core.options import MethodOptions
+from mapdyn.core.populations import ensemble_populations
 from mapdyn.core.sampling import EnsembleState
-from mapdyn.core.windows import ehrenfest_populations, window_indicators
 
 __all__ = ["propagate_amplitudes", "DiabaticIntegrator", "DiabaticRun", "run_diabatic", "adiabatic_actions"]
 
@@ -73,7 +73,7 @@ class DiabaticIntegrator:
         else:
             self._needs_gamma = False
         self.model, self.options, self.dt = model, options, float(dt)
-        self._R_cached = None
+        self._R_cached: np.ndarray | None = None
 
     def density(self, state: EnsembleState) -> np.ndarray:
         return effective_density(state.x, state.p, self.options, state.gamma_adjusted)
@@ -131,14 +131,7 @@ class DiabaticRun:
         if basis not in ("adiabatic", "diabatic"):
             raise ValueError(f"basis={basis!r} is not allowed; choose adiabatic or diabatic")
         e = self.actions_adiabatic if basis == "adiabatic" else self.actions_diabatic
-        T, n, F = e.shape
-        if self.options.method == "ehrenfest":
-            return np.array([ehrenfest_populations(e[t]) for t in range(T)]), np.zeros(T, dtype=int)
-        counts = np.array([window_indicators(e[t], self.options).sum(axis=0) for t in range(T)], dtype=float)
-        total = counts.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            pops = counts / total[:, None]
-        return pops, (n - total).astype(int)
+        return ensemble_populations(e, self.options)
 
 
 def run_diabatic(model: DiabaticModel, state: EnsembleState, options: MethodOptions, dt: float,

@@ -26,8 +26,6 @@ __all__ = [
     "sample_mapping_variables",
     "window_indicators",
     "window_assignment",
-    "window_populations",
-    "ehrenfest_populations",
 ]
 
 
@@ -77,7 +75,7 @@ def window_indicators(e: np.ndarray, options: MethodOptions) -> np.ndarray:
     """Boolean (n, F): trajectory inside the window of state f at these actions.
 
     Windows do not overlap, so each row has at most one True.  For Ehrenfest every trajectory is
-    counted with weight e_k instead (see :func:`ehrenfest_populations`); this function then raises.
+    counted with weight e_k instead (see :mod:`mapdyn.core.populations`); this function then raises.
     """
     e = np.asarray(e, dtype=float)
     if e.ndim != 2:
@@ -109,21 +107,3 @@ def window_assignment(e: np.ndarray, options: MethodOptions) -> np.ndarray:
     rows, cols = np.nonzero(ind)
     out[rows] = cols
     return out
-
-
-def window_populations(e: np.ndarray, options: MethodOptions) -> tuple[np.ndarray, int]:
-    """Normalised SQC populations P_f = N_f / Σ_f' N_f' (shape (F,)) and the count in no window.
-
-    Returns NaN populations when no trajectory is in any window.
-    """
-    ind = window_indicators(e, options)
-    counts = ind.sum(axis=0).astype(float)
-    total = counts.sum()
-    pops = counts / total if total > 0 else np.full(counts.shape, np.nan)
-    return pops, int(ind.shape[0] - total)
-
-
-def ehrenfest_populations(e: np.ndarray) -> np.ndarray:
-    """Mean-field populations ⟨e_k⟩ / ⟨Σ e⟩ over the ensemble, shape (F,)."""
-    e = np.asarray(e, dtype=float)
-    return e.mean(axis=0) / e.sum(axis=1).mean()

@@ -31,9 +31,9 @@ def make_backend(config: StudyConfig):
         from mapdyn.study.config import _resolve_callback
 
         return CallbackBackend(_resolve_callback(e.function, os.getcwd()), e.states, config.molecule.natoms)
-    from pyscf import lib
+    from mapdyn.backends.pyscf.common import pin_threads
 
-    lib.num_threads(1)
+    pin_threads(1)
     symbols = list(config.molecule.symbols)
     if e.backend == "casscf":
         from mapdyn.backends.pyscf.casscf import CASSCFBackend

@@ -38,8 +38,9 @@ import dataclasses
 import difflib
 import functools
 import os
-import sys
 from typing import Any, Callable, Mapping
+
+from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
 
 __all__ = [
     "ClusterError",
@@ -57,7 +58,6 @@ __all__ = [
 SYSTEMS = ("slurm", "pbs", "local")
 
 #: environment every worker gets (one OpenMP / BLAS thread per process).
-SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 #: keys allowed in a ``[cluster]`` section and what each one means (used for messages and --help).
 CLUSTER_KEYS = {
@@ -86,7 +86,7 @@ class ClusterError(RuntimeError):
     """The cluster could not be reached or started; the message is one line saying why."""
 
 
-def _did_you_mean(key: str, allowed) -> str:
+def did_you_mean(key: str, allowed) -> str:
     close = difflib.get_close_matches(key, list(allowed), n=1)
     return f" (did you mean '{close[0]}'?)" if close else ""
 
@@ -171,7 +171,7 @@ def cluster_settings(section: Mapping[str, Any] | None = None, *, scheduler: str
     section = dict(section or {})
     for key in section:
         if key not in CLUSTER_KEYS:
-            raise ValueError(f"cluster.{key} is not a known key{_did_you_mean(key, CLUSTER_KEYS)}; "
+            raise ValueError(f"cluster.{key} is not a known key{did_you_mean(key, CLUSTER_KEYS)}; "
                              f"allowed: {', '.join(CLUSTER_KEYS)}")
     if scheduler is not None:  # --scheduler wins: drop what only a started cluster would use
         for key in ("scheduler_file", "system", "workers_per_job", "walltime", "queue", "account",
@@ -239,14 +239,7 @@ def single_threaded_call(fn: Callable, *args, **kwargs):
     processes); PySCF's own pool is set directly when PySCF is loaded, and every backend pins it
     again itself.
     """
-    os.environ.update(SINGLE_THREAD_ENV)
-    if "pyscf" in sys.modules:
-        try:
-            from pyscf import lib
-
-            lib.num_threads(1)
-        except Exception:  # pragma: no cover - PySCF partially imported; backends pin it anyway
-            pass
+    use_single_thread()
     return fn(*args, **kwargs)
 
 

@@ -39,7 +39,6 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import hashlib
 import importlib
 import importlib.util
@@ -52,6 +51,8 @@ from typing import Any, Mapping
 import numpy as np
 
 from mapdyn.core.options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+from mapdyn.study.input_values import ConfigError, Section, did_you_mean, parse_duration, parse_energy, show_value
+from mapdyn.units import BOHR_IN_ANGSTROM
 
 __all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "InitialConfig",
            "DynamicsConfig", "EnsembleConfig", "load_study_config", "parse_study", "parse_duration",
@@ -64,158 +65,6 @@ MODEL_NAMES = ("tully1", "tully2", "tully3", "wide_crossing")
 #: Two atoms closer than this (Å) are refused as overlapping (no bond is shorter than ~0.5 Å;
 #: H2 is 0.74 Å — common knowledge).
 MIN_ATOM_DISTANCE_ANGSTROM = 0.3
-
-_AU_TIME_FS = None  # filled lazily from ase.units
-
-
-def _units():
-    from ase import units
-
-    return units
-
-
-_TIME_UNITS_FS = {"fs": 1.0, "as": 1e-3, "ps": 1e3}
-_ENERGY_UNITS = ("eh", "hartree", "ev")
-
-
-class ConfigError(ValueError):
-    """Invalid study input; ``key`` is the dotted key at fault (or the file), the message one line."""
-
-    def __init__(self, key: str, message: str):
-        self.key = key
-        self.message = message
-        if message.startswith(("=", "is ", "section ", "applies ", "needs ", "gives ")):
-            text = f"{key} {message}"
-        elif message.startswith((" ", ":")):
-            text = f"{key}{message}"
-        else:
-            text = f"{key}: {message}"
-        super().__init__(text)
-
-    def __reduce__(self):
-        return (type(self), (self.key, self.message))
-
-
-def _did_you_mean(word: str, allowed) -> str:
-    hint = difflib.get_close_matches(word, list(allowed), n=1, cutoff=0.6)
-    return f" (did you mean '{hint[0]}'?)" if hint else ""
-
-
-def _show(value: Any) -> str:
-    text = repr(value) if not isinstance(value, str) else f'"{value}"'
-    return text if len(text) <= 60 else text[:57] + "..."
-
-
-def _number_with_unit(text: Any, key: str, what: str, example: str, unit_pattern: str) -> tuple[float, str]:
-    """Split "<number> <unit>" → (value, unit as written); one-line ConfigError naming ``key`` otherwise."""
-    if isinstance(text, bool) or not isinstance(text, str):
-        raise ConfigError(key, f"= {_show(text)}: give {what} with a unit as a string, e.g. {example}")
-    m = re.fullmatch(r"\s*([-+0-9.eE]+)\s*(" + unit_pattern + r")\s*", text)
-    if not m:
-        raise ConfigError(key, f"= {_show(text)}: cannot read {what}; write a number and a unit, e.g. {example}")
-    try:
-        return float(m.group(1)), m.group(2)
-    except ValueError:
-        raise ConfigError(key, f"= {_show(text)}: {m.group(1)!r} is not a number") from None
-
-
-def parse_duration(text: Any, key: str = "duration") -> float:
-    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time."""
-    value, written = _number_with_unit(text, key, "a duration", '"0.5 fs" or "20 au" (fs, as, ps, au)', r"[A-Za-z.]+")
-    unit = written.lower().replace(".", "")
-    if unit in _TIME_UNITS_FS:
-        au = value * _TIME_UNITS_FS[unit] * _units().fs / _units().AUT if math.isfinite(value) else value
-    elif unit in ("au", "aut"):
-        au = value
-    else:
-        raise ConfigError(key, f"= {_show(text)}: unknown time unit {written!r}; use fs, as, ps or au{_did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
-    if not math.isfinite(au) or au <= 0:
-        raise ConfigError(key, f"= {_show(text)}: must be a positive duration, e.g. \"0.5 fs\"")
-    return float(au)
-
-
-def parse_energy(text: Any, key: str) -> float:
-    """An energy string ("1e-3 Eh", "0.03 eV") → Eh (positive)."""
-    value, written = _number_with_unit(text, key, "an energy", '"1e-3 Eh" or "0.03 eV" (Eh, eV)', r"[A-Za-z]+")
-    unit = written.lower()
-    if unit not in _ENERGY_UNITS:
-        raise ConfigError(key, f"= {_show(text)}: unknown energy unit {written!r}; use Eh or eV")
-    eh = value / _units().Hartree if unit == "ev" else value
-    if not math.isfinite(eh) or eh <= 0:
-        raise ConfigError(key, f"= {_show(text)}: must be a positive energy, e.g. \"1e-3 Eh\"")
-    return float(eh)
-
-
-class _Section:
-    """Reads keys of one TOML table, remembering which were used; ``finish`` refuses the rest."""
-
-    def __init__(self, name: str, table: Any, allowed: tuple[str, ...], elsewhere: Mapping[str, str] | None = None):
-        if not isinstance(table, Mapping):
-            raise ConfigError(name, f"must be a table ([{name}]), got {_show(table)}")
-        self.name, self.table, self.allowed = name, dict(table), allowed
-        self.elsewhere = dict(elsewhere or {})
-        for key in self.table:
-            if key not in allowed:
-                if key in self.elsewhere:
-                    raise ConfigError(f"{name}.{key}", f"is not used {self.elsewhere[key]}")
-                raise ConfigError(f"{name}.{key}", f" is not a known key{_did_you_mean(key, allowed)}; allowed: {', '.join(allowed)}")
-
-    def key(self, k: str) -> str:
-        return f"{self.name}.{k}"
-
-    def has(self, k: str) -> bool:
-        return k in self.table
-
-    def raw(self, k: str, default: Any = None) -> Any:
-        return self.table.get(k, default)
-
-    def required(self, k: str, what: str) -> Any:
-        if k not in self.table:
-            raise ConfigError(self.key(k), f"is missing; give {what}")
-        return self.table[k]
-
-    def string(self, k: str, default: str | None = None, required: bool = False, what: str = "a string") -> str | None:
-        if required:
-            v = self.required(k, what)
-        else:
-            v = self.table.get(k, default)
-        if v is not None and (not isinstance(v, str) or not v.strip()):
-            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
-        return v
-
-    def choice(self, k: str, allowed, default: str | None = None, required: bool = False) -> str | None:
-        v = self.required(k, "one of " + ", ".join(allowed)) if required else self.table.get(k, default)
-        if v is None:
-            return None
-        if not isinstance(v, str) or v not in allowed:
-            raise ConfigError(self.key(k), f"= {_show(v)}: choose one of {', '.join(allowed)}{_did_you_mean(str(v), allowed)}")
-        return v
-
-    def integer(self, k: str, default: int | None = None, minimum: int | None = None, required: bool = False,
-                what: str = "an integer") -> int | None:
-        v = self.required(k, what) if required else self.table.get(k, default)
-        if v is None:
-            return None
-        if isinstance(v, bool) or not isinstance(v, int):
-            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
-        if minimum is not None and v < minimum:
-            raise ConfigError(self.key(k), f"= {v}: must be {what} (>= {minimum})")
-        return int(v)
-
-    def number(self, k: str, default: float | None = None, required: bool = False, what: str = "a number") -> float | None:
-        v = self.required(k, what) if required else self.table.get(k, default)
-        if v is None:
-            return None
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise ConfigError(self.key(k), f"= {_show(v)}: must be {what}")
-        return float(v)
-
-    def boolean(self, k: str, default: bool) -> bool:
-        v = self.table.get(k, default)
-        if not isinstance(v, bool):
-            raise ConfigError(self.key(k), f"= {_show(v)}: must be true or false")
-        return v
-
 
 # ----------------------------------------------------------------------------------------------
 # dataclasses
@@ -379,10 +228,9 @@ _DYNAMICS_KEYS = ("time_step", "duration", "checkpoint_every", "record_every", "
 _ENSEMBLE_KEYS = ("trajectories", "seed", "workers", "batch")
 
 
-def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
+def _parse_molecule(sec: Section, base_dir: str) -> MoleculeConfig:
     from ase.data import atomic_numbers
 
-    units = _units()
     has_file, has_inline = sec.has("geometry"), sec.has("atoms")
     if has_file == has_inline:
         raise ConfigError("molecule", "give exactly one of 'geometry' (a file ase.io reads) or 'atoms' (inline list)")
@@ -393,16 +241,16 @@ def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
         name = sec.string("geometry", what="a file name (any format ase.io reads, e.g. .xyz)")
         path = name if os.path.isabs(name) else os.path.join(base_dir, name)
         if not os.path.isfile(path):
-            raise ConfigError("molecule.geometry", f"= {_show(name)}: file not found (looked for {path})")
+            raise ConfigError("molecule.geometry", f"= {show_value(name)}: file not found (looked for {path})")
         try:
             import ase.io
 
             atoms = ase.io.read(path)
         except Exception as err:  # ase raises many types for unreadable files
             first = str(err).splitlines()[0] if str(err) else type(err).__name__
-            raise ConfigError("molecule.geometry", f"= {_show(name)}: ase.io cannot read it ({first})") from None
+            raise ConfigError("molecule.geometry", f"= {show_value(name)}: ase.io cannot read it ({first})") from None
         if len(atoms) == 0:
-            raise ConfigError("molecule.geometry", f"= {_show(name)}: the file holds no atoms")
+            raise ConfigError("molecule.geometry", f"= {show_value(name)}: the file holds no atoms")
         symbols = tuple(atoms.get_chemical_symbols())
         pos_ang = atoms.get_positions()
         source = os.path.abspath(path)
@@ -415,13 +263,13 @@ def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
         for j, row in enumerate(rows):
             if (not isinstance(row, list) or len(row) != 4 or not isinstance(row[0], str)
                     or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in row[1:])):
-                raise ConfigError("molecule.atoms", f"row {j} = {_show(row)}: must be [symbol, x, y, z] with numbers")
+                raise ConfigError("molecule.atoms", f"row {j} = {show_value(row)}: must be [symbol, x, y, z] with numbers")
             if row[0] not in atomic_numbers or row[0] == "X":
-                raise ConfigError("molecule.atoms", f"row {j}: unknown element {row[0]!r}{_did_you_mean(row[0], [s for s in atomic_numbers if s != 'X'])}")
+                raise ConfigError("molecule.atoms", f"row {j}: unknown element {row[0]!r}{did_you_mean(row[0], [s for s in atomic_numbers if s != 'X'])}")
             symbols_l.append(row[0])
             pos_l.append([float(v) for v in row[1:]])
         symbols = tuple(symbols_l)
-        pos_ang = np.array(pos_l) * (units.Bohr if length == "bohr" else 1.0)
+        pos_ang = np.array(pos_l) * (BOHR_IN_ANGSTROM if length == "bohr" else 1.0)
         source = "inline"
     key = "molecule.geometry" if has_file else "molecule.atoms"
     if len(symbols) > 1:
@@ -438,7 +286,7 @@ def _parse_molecule(sec: _Section, base_dir: str) -> MoleculeConfig:
         raise ConfigError("molecule.charge", f"= {charge}: leaves {nelec} electrons")
     if (nelec - spin) % 2:
         raise ConfigError("molecule.spin", f"= {spin}: {nelec} electrons cannot have 2S = {spin} (parity)")
-    return MoleculeConfig(symbols, np.asarray(pos_ang, dtype=float) / units.Bohr, charge, spin, source)
+    return MoleculeConfig(symbols, np.asarray(pos_ang, dtype=float) / BOHR_IN_ANGSTROM, charge, spin, source)
 
 
 def _check_basis(basis: str, symbols, key: str) -> None:
@@ -453,7 +301,7 @@ def _check_basis(basis: str, symbols, key: str) -> None:
                 if not gto.basis.load(basis, s):
                     raise KeyError(s)
     except Exception:
-        raise ConfigError(key, f"= {_show(basis)}: PySCF has no such basis for {', '.join(sorted(set(symbols)))} "
+        raise ConfigError(key, f"= {show_value(basis)}: PySCF has no such basis for {', '.join(sorted(set(symbols)))} "
                           f"(e.g. \"sto-3g\", \"6-31g*\", \"cc-pvdz\")") from None
 
 
@@ -461,31 +309,31 @@ def _resolve_callback(spec: str, base_dir: str):
     """"file.py:name" (relative to the input file) or "package.module:name" → the callable."""
     key = "electronic.function"
     if ":" not in spec:
-        raise ConfigError(key, f"= {_show(spec)}: write \"file.py:function\" or \"package.module:function\"")
+        raise ConfigError(key, f"= {show_value(spec)}: write \"file.py:function\" or \"package.module:function\"")
     target, name = spec.rsplit(":", 1)
     if target.endswith(".py"):
         path = target if os.path.isabs(target) else os.path.join(base_dir, target)
         if not os.path.isfile(path):
-            raise ConfigError(key, f"= {_show(spec)}: file not found (looked for {path})")
+            raise ConfigError(key, f"= {show_value(spec)}: file not found (looked for {path})")
         modname = "mapdyn_user_" + hashlib.sha1(os.path.abspath(path).encode()).hexdigest()[:12]
         try:
             loader_spec = importlib.util.spec_from_file_location(modname, path)
             module = importlib.util.module_from_spec(loader_spec)
             loader_spec.loader.exec_module(module)
         except Exception as err:
-            raise ConfigError(key, f"= {_show(spec)}: importing the file failed ({type(err).__name__}: {err})") from None
+            raise ConfigError(key, f"= {show_value(spec)}: importing the file failed ({type(err).__name__}: {err})") from None
     else:
         try:
             module = importlib.import_module(target)
         except Exception as err:
-            raise ConfigError(key, f"= {_show(spec)}: cannot import {target!r} ({type(err).__name__})") from None
+            raise ConfigError(key, f"= {show_value(spec)}: cannot import {target!r} ({type(err).__name__})") from None
     fn = getattr(module, name, None)
     if not callable(fn):
-        raise ConfigError(key, f"= {_show(spec)}: {target} has no function {name!r}")
+        raise ConfigError(key, f"= {show_value(spec)}: {target} has no function {name!r}")
     return fn
 
 
-def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: str) -> ElectronicConfig:
+def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: str) -> ElectronicConfig:
     backend = sec.choice("backend", BACKENDS, required=True)
     own = _ELEC_BY_BACKEND[backend]
     for k in sec.table:
@@ -502,15 +350,15 @@ def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: 
 
         for k, v in params.items():
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-                raise ConfigError(f"electronic.parameters.{k}", f"= {_show(v)}: must be a number (atomic units)")
+                raise ConfigError(f"electronic.parameters.{k}", f"= {show_value(v)}: must be a number (atomic units)")
         try:
             model = tully_model(name, **params)
-        except TypeError as err:
+        except TypeError:
             import inspect
 
             allowed = [p for p in inspect.signature(type(tully_model(name)).__init__).parameters if p != "self"]
             bad = next((k for k in params if k not in allowed), "?")
-            raise ConfigError(f"electronic.parameters.{bad}", f" is not a parameter of {name}{_did_you_mean(bad, allowed)}; allowed: {', '.join(allowed)}") from None
+            raise ConfigError(f"electronic.parameters.{bad}", f" is not a parameter of {name}{did_you_mean(bad, allowed)}; allowed: {', '.join(allowed)}") from None
         states = sec.integer("states", model.nstates, what="an integer")
         if states != model.nstates:
             raise ConfigError("electronic.states", f"= {states}: model {name} has {model.nstates} states")
@@ -561,7 +409,7 @@ def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: 
 
             libxc.parse_xc(functional)
         except Exception:
-            raise ConfigError("electronic.functional", f"= {_show(functional)}: PySCF does not know this functional "
+            raise ConfigError("electronic.functional", f"= {show_value(functional)}: PySCF does not know this functional "
                               f"(e.g. \"hf\", \"pbe0\", \"b3lyp\")") from None
     response = sec.choice("response", ("tda", "full"), "tda")
     grid = sec.integer("grid_level", 3, minimum=0, what="a DFT grid level 0..9")
@@ -579,20 +427,20 @@ def _parse_electronic(sec: _Section, molecule: MoleculeConfig | None, base_dir: 
     return ElectronicConfig("tddft", states, basis, options, level_of_theory=f"{name}/{basis}")
 
 
-def _vector(sec: _Section, k: str, ndof: int, default=None, positive: bool = False, what: str = "a number") -> tuple:
+def _vector(sec: Section, k: str, ndof: int, default=None, positive: bool = False, what: str = "a number") -> tuple:
     v = sec.raw(k, default)
     if v is None:
         raise ConfigError(sec.key(k), f"is missing; give {what}")
     vals = v if isinstance(v, list) else [v]
     if (len(vals) not in (1, ndof) or
             not all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) for x in vals)):
-        raise ConfigError(sec.key(k), f"= {_show(v)}: must be {what} (or a list of {ndof})")
+        raise ConfigError(sec.key(k), f"= {show_value(v)}: must be {what} (or a list of {ndof})")
     if positive and any(x <= 0 for x in vals):
-        raise ConfigError(sec.key(k), f"= {_show(v)}: must be positive")
+        raise ConfigError(sec.key(k), f"= {show_value(v)}: must be positive")
     return tuple(float(x) for x in (vals * ndof if len(vals) == 1 else vals))
 
 
-def _parse_initial(sec: _Section, elec: ElectronicConfig) -> InitialConfig:
+def _parse_initial(sec: Section, elec: ElectronicConfig) -> InitialConfig:
     F = elec.states
     if elec.backend == "model":
         state = sec.integer("state", 0, minimum=0, what=f"an electronic state index 0..{F - 1}")
@@ -623,7 +471,7 @@ def _parse_initial(sec: _Section, elec: ElectronicConfig) -> InitialConfig:
                          temperature_kelvin=temp, excitation=excitation)
 
 
-def _parse_method(sec: _Section, elec: ElectronicConfig) -> MethodOptions:
+def _parse_method(sec: Section, elec: ElectronicConfig) -> MethodOptions:
     method = sec.choice("method", METHODS, "sqc")
     window = sec.choice("window", WINDOWS, "square")
     zero = sec.choice("zero_point", ZERO_POINTS, "symmetrized")
@@ -642,11 +490,11 @@ def _parse_method(sec: _Section, elec: ElectronicConfig) -> MethodOptions:
         raise ConfigError(f"method.{key}", str(err)) from None
 
 
-def _parse_dynamics(sec: _Section, elec: ElectronicConfig) -> DynamicsConfig:
+def _parse_dynamics(sec: Section, elec: ElectronicConfig) -> DynamicsConfig:
     dt = parse_duration(sec.required("time_step", "a time step with a unit, e.g. \"0.5 fs\""), "dynamics.time_step")
     total = parse_duration(sec.required("duration", "the simulated time with a unit, e.g. \"100 fs\""), "dynamics.duration")
     if total < dt * (1 - 1e-9):
-        raise ConfigError("dynamics.duration", f"= {_show(sec.raw('duration'))}: shorter than one time step")
+        raise ConfigError("dynamics.duration", f"= {show_value(sec.raw('duration'))}: shorter than one time step")
     ck = sec.integer("checkpoint_every", 10, minimum=1, what="a number of steps >= 1")
     rec = sec.integer("record_every", 1, minimum=1, what="a number of steps >= 1")
     drift = sec.raw("drift_threshold", "1e-3 Eh")
@@ -666,21 +514,21 @@ def _parse_dynamics(sec: _Section, elec: ElectronicConfig) -> DynamicsConfig:
     ratio = total / dt
     nsteps = int(round(ratio))
     if abs(ratio - nsteps) > 1e-6 * max(1.0, ratio):
-        raise ConfigError("dynamics.duration", f"= {_show(sec.raw('duration'))}: not a whole number of time steps "
-                          f"({ratio:.6g} × {_show(sec.raw('time_step'))})")
+        raise ConfigError("dynamics.duration", f"= {show_value(sec.raw('duration'))}: not a whole number of time steps "
+                          f"({ratio:.6g} × {show_value(sec.raw('time_step'))})")
     if nsteps % rec:
         raise ConfigError("dynamics.record_every", f"= {rec}: the {nsteps} steps are not a whole number of recording intervals")
     return DynamicsConfig(dt, total, nsteps, ck, rec, drift_eh, stop, substeps, prop)
 
 
-def _parse_ensemble(sec: _Section) -> EnsembleConfig:
+def _parse_ensemble(sec: Section) -> EnsembleConfig:
     n = sec.integer("trajectories", required=True, minimum=1, what="the number of trajectories (>= 1)")
     seed = sec.integer("seed", required=True, minimum=0, what="a non-negative integer random seed")
     w = sec.raw("workers", "auto")
     if w == "auto":
         workers = max(1, os.cpu_count() or 1)
     elif isinstance(w, bool) or not isinstance(w, int) or w < 1:
-        raise ConfigError("ensemble.workers", f"= {_show(w)}: must be a number of processes >= 1 or \"auto\"")
+        raise ConfigError("ensemble.workers", f"= {show_value(w)}: must be a number of processes >= 1 or \"auto\"")
     else:
         workers = int(w)
     batch = sec.integer("batch", 200, minimum=1, what="a number of model trajectories per task (>= 1)")
@@ -689,12 +537,12 @@ def _parse_ensemble(sec: _Section) -> EnsembleConfig:
 
 def _parse_analysis(table: Any) -> dict:
     if not isinstance(table, Mapping):
-        raise ConfigError("analysis", f"must be a table ([analysis]), got {_show(table)}")
+        raise ConfigError("analysis", f"must be a table ([analysis]), got {show_value(table)}")
     from mapdyn.study.analysis_settings import ANALYSIS_KEYS, settings_from_table
 
     for k in table:
         if k not in ANALYSIS_KEYS:
-            raise ConfigError(f"analysis.{k}", f" is not a known key{_did_you_mean(k, ANALYSIS_KEYS)}; "
+            raise ConfigError(f"analysis.{k}", f" is not a known key{did_you_mean(k, ANALYSIS_KEYS)}; "
                               f"allowed: {', '.join(ANALYSIS_KEYS)}")
     try:
         settings_from_table({k: v for k, v in table.items() if k != "fragments"})
@@ -705,7 +553,7 @@ def _parse_analysis(table: Any) -> dict:
 
 def _parse_cluster(table: Any) -> dict:
     if not isinstance(table, Mapping):
-        raise ConfigError("cluster", f"must be a table ([cluster]), got {_show(table)}")
+        raise ConfigError("cluster", f"must be a table ([cluster]), got {show_value(table)}")
     from mapdyn.study.cluster import cluster_settings
 
     try:
@@ -722,14 +570,14 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     the [analysis] and [cluster] tables (done once when the study was created)."""
     for k in data:
         if k not in SECTIONS:
-            raise ConfigError(k, f" is not a known section{_did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
+            raise ConfigError(k, f" is not a known section{did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
     for required in ("electronic", "dynamics", "ensemble"):
         if required not in data:
             raise ConfigError(required, f"section is missing; add a [{required}] table")
-    study = _Section("study", data.get("study", {}), _STUDY_KEYS)
+    study = Section("study", data.get("study", {}), _STUDY_KEYS)
     name = study.string("name", default_name, what="a non-empty name")
     if not re.fullmatch(r"[A-Za-z0-9_.\-]+", name):
-        raise ConfigError("study.name", f"= {_show(name)}: use letters, digits, '_', '-', '.' only (it names folders)")
+        raise ConfigError("study.name", f"= {show_value(name)}: use letters, digits, '_', '-', '.' only (it names folders)")
     description = study.string("description", "", what="a string") if study.has("description") else ""
     folder = study.string("folder", os.path.join("runs", name), what="a folder path")
     electronic_table = data["electronic"]
@@ -738,19 +586,19 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     if "molecule" in data:
         if backend == "model":
             raise ConfigError("molecule", "is not used with electronic.backend = \"model\" (the model defines the coordinates)")
-        mol = _parse_molecule(_Section("molecule", data["molecule"], _MOLECULE_KEYS), base_dir)
+        mol = _parse_molecule(Section("molecule", data["molecule"], _MOLECULE_KEYS), base_dir)
     all_elec = tuple(dict.fromkeys(_ELEC_COMMON + sum(_ELEC_BY_BACKEND.values(), ())))
-    elec = _parse_electronic(_Section("electronic", electronic_table, all_elec), mol, base_dir)
+    elec = _parse_electronic(Section("electronic", electronic_table, all_elec), mol, base_dir)
     if elec.backend == "model":
-        init_sec = _Section("initial", data.get("initial", {}), _INITIAL_MODEL,
+        init_sec = Section("initial", data.get("initial", {}), _INITIAL_MODEL,
                             {k: "with electronic.backend = \"model\"" for k in _INITIAL_MOLECULE if k not in _INITIAL_MODEL})
     else:
-        init_sec = _Section("initial", data.get("initial", {}), _INITIAL_MOLECULE,
+        init_sec = Section("initial", data.get("initial", {}), _INITIAL_MOLECULE,
                             {k: "for molecules (it is a model-study key)" for k in _INITIAL_MODEL if k not in _INITIAL_MOLECULE})
     initial = _parse_initial(init_sec, elec)
-    method = _parse_method(_Section("method", data.get("method", {}), _METHOD_KEYS), elec)
-    dynamics = _parse_dynamics(_Section("dynamics", data["dynamics"], _DYNAMICS_KEYS), elec)
-    ensemble = _parse_ensemble(_Section("ensemble", data["ensemble"], _ENSEMBLE_KEYS))
+    method = _parse_method(Section("method", data.get("method", {}), _METHOD_KEYS), elec)
+    dynamics = _parse_dynamics(Section("dynamics", data["dynamics"], _DYNAMICS_KEYS), elec)
+    ensemble = _parse_ensemble(Section("ensemble", data["ensemble"], _ENSEMBLE_KEYS))
     if check_extras:
         analysis = _parse_analysis(data.get("analysis", {}))
         cluster = _parse_cluster(data["cluster"]) if "cluster" in data else None

@@ -28,24 +28,23 @@ import dataclasses
 import multiprocessing
 import os
 import signal
-import sys
 import time
 import traceback
 from typing import Callable, Sequence
 
 import numpy as np
 
+from mapdyn.files import write_json
 from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
 from mapdyn.study.folder import CHUNKS, Study, write_marker
-from mapdyn.files import write_json
 from mapdyn.study.initial_conditions import initial_row
+from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
 
 __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "run_task", "local_executor",
            "SerialExecutor",
-           "run_ensemble", "Progress", "SINGLE_THREAD_ENV"]
+           "run_ensemble", "Progress"]
 
-SINGLE_THREAD_ENV = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 _PARENT_PID: int | None = None
 _STUDY_CACHE: dict = {}
@@ -104,16 +103,6 @@ def _backend_for(study: Study):
         _BACKENDS.clear()
         _BACKENDS[key] = make_backend(study.config)
     return _BACKENDS[key]
-
-
-def _pin_pyscf() -> None:
-    if "pyscf" in sys.modules:
-        try:
-            from pyscf import lib
-
-            lib.num_threads(1)
-        except Exception:  # pragma: no cover
-            pass
 
 
 # ----------------------------------------------------------------------------------------------
@@ -184,7 +173,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
     import warnings
 
     t0 = time.perf_counter()
-    _pin_pyscf()
+    use_single_thread()
     study = _open(study_dir)
     folder = study.trajectory_folder(index)
     store = TrajectoryStore(folder)

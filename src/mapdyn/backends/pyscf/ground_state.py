@@ -13,6 +13,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from mapdyn.backends.contract import BackendError, ElectronicResult
+from mapdyn.backends.pyscf.common import pin_threads
 
 __all__ = ["PySCFGroundState"]
 
@@ -29,8 +30,7 @@ class PySCFGroundState:
 
     def __init__(self, symbols: Sequence[str], basis: str, *, xc: str | None = None, charge: int = 0,
                  conv_tol: float = 1e-12, grid_level: int = 3, max_cycle: int = 100):
-        from pyscf import lib
-        lib.num_threads(1)
+        pin_threads(1)
         self.symbols = list(symbols)
         self.basis = str(basis)
         self.xc = xc

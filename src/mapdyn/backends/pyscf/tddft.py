@@ -45,6 +45,7 @@ from mapdyn.backends.contract import (
     apply_state_signs,
     match_states,
 )
+from mapdyn.backends.pyscf.common import response_interception_allowed, swapped
 
 __all__ = [
     "TDDFTBackend",
@@ -221,16 +222,18 @@ class _CheckedCPHF:
 
 @contextlib.contextmanager
 def _checked_cphf():
+    """Record the Z-vector residual of PySCF's TD gradients (swap under the PySCF patch lock,
+    restored on any exit).  On an untested PySCF release nothing is swapped and no residual is
+    recorded (``checker.residuals`` stays empty)."""
     from pyscf.grad import tdrhf, tdrks
     from pyscf.scf import cphf
 
     checker = _CheckedCPHF(cphf)
-    saved = (tdrhf.cphf, tdrks.cphf)
-    tdrhf.cphf = tdrks.cphf = checker
-    try:
+    if not response_interception_allowed():
         yield checker
-    finally:
-        tdrhf.cphf, tdrks.cphf = saved
+        return
+    with swapped((tdrhf, "cphf", checker), (tdrks, "cphf", checker)):
+        yield checker
 
 
 class TDDFTBackend:
@@ -547,7 +550,7 @@ class TDDFTBackend:
                         with _checked_cphf() as checker:
                             g = np.asarray(tdg.kernel(state=k + 1))
                         res = max(checker.residuals) if checker.residuals else float("nan")
-                        ok = np.all(np.isfinite(g)) and res <= self.cphf_residual_tol
+                        ok = np.all(np.isfinite(g)) and not res > self.cphf_residual_tol  # NaN: not recorded
                         attempts.append({"what": f"state {k + 1} gradient, cphf_max_cycle={cycles}",
                                          "outcome": f"{'converged' if ok else 'not converged'} (Z-vector residual {res:.1e})"})
                         if ok:
