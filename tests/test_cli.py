@@ -18,59 +18,17 @@ import time
 
 import numpy as np
 import pytest
+from conftest import ENV, INPUTS, mapdyn, tully1_study, write
 
 from mapdyn.cli import main
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.study.folder import Study
 
-ENV = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1")
-
 
 def model_toml(trajectories=120, batch=40, duration="1000 au", engine="batched", checkpoint_every=20,
                workers=2, record_every=5) -> str:
-    engine_line = f'engine = "{engine}"\n' if engine != "batched" else ""
-    return f"""
-[study]
-name = "tully1_test"
-description = "scenario of our own: Tully model 1 test ensemble"
-[electronic]
-backend = "model"
-model = "tully1"
-{engine_line}[initial]
-position_bohr = -8.0
-momentum_au = 15.0
-width_bohr = 1.0
-state = 0
-[method]
-window = "triangle"
-[dynamics]
-time_step = "2 au"
-duration = "{duration}"
-record_every = {record_every}
-checkpoint_every = {checkpoint_every}
-[ensemble]
-trajectories = {trajectories}
-seed = 11
-workers = {workers}
-batch = {batch}
-[analysis]
-n_resamples = 99
-lifetime_resamples = 0
-"""
-
-
-def write(tmp_path, name, text):
-    path = tmp_path / name
-    path.write_text(text)
-    return str(path)
-
-
-def mapdyn(*args, cwd, check=True, timeout=600):
-    proc = subprocess.run([sys.executable, "-m", "mapdyn", *args], cwd=cwd, env=ENV, capture_output=True,
-                          text=True, timeout=timeout)
-    if check:
-        assert proc.returncode == 0, proc.stderr[-3000:]
-    return proc
+    return tully1_study(trajectories=trajectories, batch=batch, duration=duration, engine=engine,
+                        checkpoint_every=checkpoint_every, workers=workers, record_every=record_every)
 
 
 def chunk_arrays(folder):
@@ -305,7 +263,7 @@ def test_molecular_study_end_to_end_and_continuation(tmp_path):
 
 @pytest.mark.slow
 def test_shipped_tiny_molecular_study(tmp_path):
-    here = os.path.join(os.path.dirname(__file__), "..", "inputs", "ethylene_tiny.toml")
+    here = str(INPUTS / "ethylene_tiny.toml")
     proc = mapdyn("run", os.path.abspath(here), "--output", "tiny", cwd=tmp_path, timeout=3600)
     assert "failed 0" in proc.stderr
     assert (tmp_path / "tiny" / "report" / "populations.png").is_file()

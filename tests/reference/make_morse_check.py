@@ -12,7 +12,7 @@ HERE = Path(__file__).resolve().parent
 OUT = HERE.parents[1] / "examples" / "figures"
 import numpy as np
 
-sys.path.insert(0, str(HERE.parent))
+sys.path.insert(0, str(HERE.parent / "analysis"))
 from test_vibrational import MORSE, MU, cartesian_pair, morse_turning_points
 
 from mapdyn.analysis import plots

@@ -8,31 +8,13 @@ import subprocess
 import sys
 
 import pytest
+from conftest import tully1_study
 
 from mapdyn.cli import main
 from mapdyn.study.config import load_study_config, parse_duration
 
-MODEL = """
-[study]
-name = "m"
-[electronic]
-backend = "model"
-model = "tully1"
-[initial]
-position_bohr = -8.0
-momentum_au = 15.0
-width_bohr = 1.0
-state = 0
-[method]
-window = "triangle"
-[dynamics]
-time_step = "2 au"
-duration = "100 au"
-[ensemble]
-trajectories = 10
-seed = 1
-workers = 1
-"""
+MODEL = tully1_study(name="m", trajectories=10, seed=1, duration="100 au", record_every=None,
+                     checkpoint_every=None, workers=1, batch=None, analysis=False)
 
 MOLECULE = """
 [study]
@@ -182,7 +164,7 @@ def test_valid_inputs_and_units(tmp_path):
 
 
 def test_every_shipped_input_is_valid():
-    here = os.path.join(os.path.dirname(__file__), "..", "inputs")
+    here = os.path.join(os.path.dirname(__file__), "..", "..", "inputs")
     names = sorted(f for f in os.listdir(here) if f.endswith(".toml"))
     assert len(names) >= 3
     for name in names:

@@ -12,7 +12,7 @@ import pytest
 
 from mapdyn.models.spin_boson import SpinBoson
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 _spec = importlib.util.spec_from_file_location("make_marcus_study", ROOT / "tests" / "reference" / "make_marcus_study.py")
 study = importlib.util.module_from_spec(_spec)
 _spec.loader.exec_module(study)

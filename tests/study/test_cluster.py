@@ -16,6 +16,7 @@ import types
 
 import numpy as np
 import pytest
+from conftest import tully1_study  # noqa: E402
 
 distributed = pytest.importorskip("distributed")
 import cloudpickle  # noqa: E402  (a dependency of distributed)
@@ -158,51 +159,12 @@ from mapdyn.study.folder import Study
 from mapdyn.study.runner import run_ensemble, run_task  # noqa: E402
 
 #: batched model study: Tully model 1 (scenario of our own), 4 chunks of 100 trajectories.
-MODEL_STUDY = """
-[electronic]
-backend = "model"
-model = "tully1"
-[initial]
-position_bohr = -8.0
-momentum_au = 15.0
-width_bohr = 1.0
-state = 0
-[method]
-window = "triangle"
-[dynamics]
-time_step = "2 au"
-duration = "2400 au"
-record_every = 20
-[ensemble]
-trajectories = 400
-seed = 2026
-workers = 2
-batch = 100
-"""
+MODEL_STUDY = tully1_study(name=None, trajectories=400, seed=2026, duration="2400 au", record_every=20,
+                           checkpoint_every=None, workers=2, batch=100, analysis=False)
 
 #: on-the-fly model study (model adapter + driver, checkpoints every 20 steps): 4 trajectories.
-OTF_STUDY = """
-[electronic]
-backend = "model"
-model = "tully1"
-engine = "on_the_fly"
-[initial]
-position_bohr = -8.0
-momentum_au = 15.0
-width_bohr = 1.0
-state = 0
-[method]
-window = "triangle"
-[dynamics]
-time_step = "4 au"
-duration = "800 au"
-record_every = 10
-checkpoint_every = 20
-[ensemble]
-trajectories = 4
-seed = 7
-workers = 2
-"""
+OTF_STUDY = tully1_study(name=None, trajectories=4, seed=7, time_step="4 au", duration="800 au", record_every=10,
+                         checkpoint_every=20, workers=2, batch=None, engine="on_the_fly", analysis=False)
 
 
 def _study(tmp_path, text, name):

@@ -161,7 +161,7 @@ def test_check_command_on_the_tiny_molecular_study(capsys):
     from mapdyn.cli import main
     from mapdyn.study.config import load_study_config
 
-    path = os.path.join(os.path.dirname(__file__), os.pardir, "inputs", "ethylene_tiny.toml")
+    path = os.path.join(os.path.dirname(__file__), os.pardir, os.pardir, "inputs", "ethylene_tiny.toml")
     backend = load_study_config(path).electronic.backend
     code = main(["check", path])
     out = capsys.readouterr().out.splitlines()

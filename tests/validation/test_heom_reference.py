@@ -17,7 +17,7 @@ import pytest
 
 pytest.importorskip("qutip")
 
-sys.path.insert(0, str(Path(__file__).resolve().parent / "reference"))
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "reference"))
 import make_heom_reference as ref  # noqa: E402
 
 CASE_NAMES = ["spin_boson_symmetric", "spin_boson_biased", "sites7"]
