@@ -399,7 +399,7 @@ def test_report_files_exist_and_csvs_equal_memory(tmp_path):
     c = R.read_csv(rep.tables["vibrational_H2"])
     same(c["histogram"], res.vibrational[0].histogram)
     np.testing.assert_allclose(res.vibrational[0].v_continuous, np.round(res.vibrational[0].v_continuous), atol=1e-6)
-    same(c["windowed"], res.vibrational[0].windowed)
+    same(c["binned"], res.vibrational[0].binned)
     c = R.read_csv(rep.tables["spectrum"])
     same(c["cross_section_angstrom2"], spec.cross_section_angstrom2)
 

@@ -158,13 +158,13 @@ def test_synthetic_ensemble_level_populations_recovered_by_both_binnings():
     d = V.vibrational_distribution(v_cont, n_levels=4, n_resamples=499)
     counts = np.bincount(level, minlength=4)
     np.testing.assert_allclose(d.histogram, counts / n, atol=1e-12)
-    for est in (d.histogram, d.windowed):
+    for est in (d.histogram, d.binned):
         se = np.sqrt(p_true * (1 - p_true) / n) * (1.0 if est is d.histogram else 1 / np.sqrt(2 * SQUARE_GAMMA))
         assert np.all(np.abs(est - p_true) < 3 * se), (est, p_true)
-    assert d.window_half_width == SQUARE_GAMMA
+    assert d.bin_half_width == SQUARE_GAMMA
     inside = np.abs(v_cont - np.round(v_cont)) <= SQUARE_GAMMA
-    assert d.n_outside_windows == int(n - inside.sum())
-    assert np.all(d.histogram_low <= d.histogram) and np.all(d.windowed_high >= d.windowed)
+    assert d.n_outside_bins == int(n - inside.sum())
+    assert np.all(d.histogram_low <= d.histogram) and np.all(d.binned_high >= d.binned)
 
 
 def test_potential_from_curve_and_bad_inputs():
@@ -178,8 +178,8 @@ def test_potential_from_curve_and_bad_inputs():
     assert np.max(np.abs(v - np.arange(5))) < 1e-4             # spline interpolation error of a 400-point curve
     with pytest.raises(ValueError, match="r_range"):
         V.FragmentPotential.from_callable(MORSE, (2.0, 1.0))
-    with pytest.raises(ValueError, match="window_half_width"):
-        V.vibrational_distribution(np.zeros(3), window_half_width=0.7)
+    with pytest.raises(ValueError, match="bin_half_width"):
+        V.vibrational_distribution(np.zeros(3), bin_half_width=0.7)
     with pytest.raises(ValueError, match="fragment atoms"):
         V.fragment_phase_points(np.zeros((1, 2, 3)), np.zeros((1, 2, 3)), np.ones(2), (0, 0))
 
@@ -240,12 +240,12 @@ def test_fragment_analysis_from_trajectory_set_and_report(tmp_path):
     d = V.analyze_fragment(ts, frag, n_resamples=199)
     np.testing.assert_allclose(d.v_continuous, level, atol=1e-6)
     np.testing.assert_allclose(d.histogram, np.bincount(level, minlength=3) / n, atol=1e-12)
-    np.testing.assert_allclose(d.windowed, d.histogram, atol=1e-12)     # all exactly on levels
+    np.testing.assert_allclose(d.binned, d.histogram, atol=1e-12)     # all exactly on levels
     res = A.analyze(ts, vibrational=[frag], n_resamples=199, lifetime_resamples=0)
     rep = R.write_report(res, tmp_path)
     c = R.read_csv(rep.tables["vibrational_H2"])
     np.testing.assert_array_equal(c["histogram"], res.vibrational[0].histogram)
-    np.testing.assert_array_equal(c["windowed_low"], res.vibrational[0].windowed_low)
+    np.testing.assert_array_equal(c["binned_low"], res.vibrational[0].binned_low)
     c = R.read_csv(rep.tables["vibrational_H2_continuous"])
     np.testing.assert_array_equal(c["v_continuous"], res.vibrational[0].v_continuous)
     assert "Morse" in open(rep.summary, encoding="utf-8").read()

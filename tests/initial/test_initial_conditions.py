@@ -240,16 +240,16 @@ def _synthetic():
 def test_window_selection_picks_expected_states():
     exc, f = _synthetic()
     # window 4.0-5.5 eV holds (0,S2), (1,S2 dark f=0), (2,S3), (3,S2); (2,S2) at 3.9 eV is outside
-    pairs = choose_initial_states(exc, f, "window", window_ev=(4.0, 5.5), window_assignment="all_pairs")
+    pairs = choose_initial_states(exc, f, "energy_range", energy_range_ev=(4.0, 5.5), range_assignment="all_pairs")
     assert sorted(zip(pairs.sample_index.tolist(), pairs.state.tolist())) == [(0, 2), (2, 3), (3, 2)]
     np.testing.assert_allclose(pairs.weight, np.array([0.20, 0.40, 0.15])[[0, 1, 2]] / 0.75)
-    drawn = choose_initial_states(exc, f, "window", window_ev=(4.0, 5.5), seed=3)
+    drawn = choose_initial_states(exc, f, "energy_range", energy_range_ev=(4.0, 5.5), seed=3)
     assert drawn.sample_index.tolist() == [0, 2, 3]  # geometry 1 has only a dark state in the window
     assert drawn.state.tolist() == [2, 3, 2]  # one candidate each, so the draw is forced
     np.testing.assert_allclose(drawn.weight.sum(), 1.0)
     bright = choose_initial_states(exc, f, "brightest")
     assert bright.state.tolist() == [2, 3, 3, 3]
-    bright_w = choose_initial_states(exc, f, "brightest", window_ev=(2.5, 4.7))
+    bright_w = choose_initial_states(exc, f, "brightest", energy_range_ev=(2.5, 4.7))
     assert bright_w.sample_index.tolist() == [0, 1, 2, 3] and bright_w.state.tolist() == [2, 1, 2, 2]
     fixed = choose_initial_states(exc, f, "fixed", state=1)
     assert fixed.state.tolist() == [1, 1, 1, 1] and fixed.weight.sum() == pytest.approx(1.0)
@@ -260,7 +260,7 @@ def test_window_draw_probabilities_follow_oscillator_strength():
     n = 3000
     exc = np.tile(np.array([4.1, 4.5, 4.9]) / units.Hartree, (n, 1))
     f = np.tile(np.array([0.1, 0.3, 0.6]), (n, 1))
-    res = choose_initial_states(exc, f, "window", window_ev=(4.0, 5.0), seed=11)
+    res = choose_initial_states(exc, f, "energy_range", energy_range_ev=(4.0, 5.0), seed=11)
     frac = np.bincount(res.state, minlength=4)[1:] / n
     p = np.array([0.1, 0.3, 0.6])
     assert np.all(np.abs(frac - p) < 3 * np.sqrt(p * (1 - p) / n)), frac  # binomial, 3 sigma
@@ -275,16 +275,16 @@ def test_bad_inputs_name_the_parameter(water):
         sample_wigner(modes, 4, seed=1, temperature_kelvin=-1.0)
     with pytest.raises(ValueError, match="temperature_kelvin"):
         wigner_widths(modes.frequencies_hartree, -5.0)
-    with pytest.raises(ValueError, match="window_ev"):
-        choose_initial_states(exc, f, "window", window_ev=(8.0, 9.0), seed=1)
-    with pytest.raises(ValueError, match="window_ev"):
-        choose_initial_states(exc, f, "window", window_ev=(5.0, 4.0), seed=1)
+    with pytest.raises(ValueError, match="energy_range_ev"):
+        choose_initial_states(exc, f, "energy_range", energy_range_ev=(8.0, 9.0), seed=1)
+    with pytest.raises(ValueError, match="energy_range_ev"):
+        choose_initial_states(exc, f, "energy_range", energy_range_ev=(5.0, 4.0), seed=1)
     with pytest.raises(ValueError, match="rule"):
         choose_initial_states(exc, f, "most_likely")
     with pytest.raises(ValueError, match="state"):
         choose_initial_states(exc, f, "fixed", state=7)
-    with pytest.raises(ValueError, match="window_assignment"):
-        choose_initial_states(exc, f, "window", window_ev=(4.0, 5.5), window_assignment="some")
+    with pytest.raises(ValueError, match="range_assignment"):
+        choose_initial_states(exc, f, "energy_range", energy_range_ev=(4.0, 5.5), range_assignment="some")
     with pytest.raises(ValueError, match="fwhm_ev"):
         absorption_spectrum(exc, f, fwhm_ev=0.0)
     with pytest.raises(ValueError, match="line_shape"):

@@ -50,5 +50,5 @@ p_true = np.array([0.45, 0.3, 0.15, 0.1]); n = 1500
 level = rng.choice(4, size=n, p=p_true)
 v_true = level + rng.uniform(-0.5, 0.5, n)
 d = V.vibrational_distribution(v_true, n_levels=4, fragment="synthetic Morse ensemble (true 0.45/0.30/0.15/0.10)")
-print(d.histogram, d.windowed)
+print(d.histogram, d.binned)
 plots.plot_vibrational_distribution(d, str(OUT / "vibrational_synthetic_binnings.png"))

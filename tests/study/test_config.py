@@ -149,7 +149,7 @@ def test_valid_inputs_and_units(tmp_path):
     p.write_text(MODEL)
     cfg = load_study_config(p)
     assert cfg.batched and cfg.dynamics.nsteps == 50 and cfg.initial.position_bohr == (-8.0,)
-    assert cfg.method.window == "triangle" and cfg.folder == os.path.abspath(os.path.join("runs", "m"))
+    assert cfg.options.window == "triangle" and cfg.folder == os.path.abspath(os.path.join("runs", "m"))
     # 1 fs = 41.341 a.u. of time (CODATA, via ase.units: 1 a.u. = 2.4188843e-17 s)
     assert parse_duration("1 fs") == pytest.approx(41.341373, rel=1e-7)
     assert parse_duration("500 as") == pytest.approx(0.5 * parse_duration("1 fs"), rel=1e-15)

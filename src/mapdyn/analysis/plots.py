@@ -266,19 +266,19 @@ def plot_branching(branching: Any, path: str | os.PathLike, *, title: str | None
 
 
 def plot_vibrational_distribution(dist: Any, path: str | os.PathLike, *, title: str | None = None) -> str:
-    """Population per vibrational level from plain histogram boxes and from symmetric windows."""
+    """Population per vibrational level from plain histogram boxes and from symmetric bins."""
     v = np.asarray(dist.levels)
     w = 0.38
     with new_figure(1, 2, figsize=(8.6, 3.8), gridspec_kw={"width_ratios": [2.2, 1]}) as (fig, ax):
         a, b = ax[0, 0], ax[0, 1]
         err_h = np.vstack([dist.histogram - dist.histogram_low, dist.histogram_high - dist.histogram])
-        err_w = np.vstack([dist.windowed - dist.windowed_low, dist.windowed_high - dist.windowed])
+        err_w = np.vstack([dist.binned - dist.binned_low, dist.binned_high - dist.binned])
         a.bar(v - w / 2, dist.histogram, width=w, color=STATE_COLOURS[0], alpha=0.85,
               label="histogram boxes [v − ½, v + ½)")
         a.errorbar(v - w / 2, dist.histogram, yerr=err_h, fmt="none", ecolor="#33373d", capsize=2, lw=0.8)
-        a.bar(v + w / 2, dist.windowed, width=w, color=STATE_COLOURS[1], alpha=0.85,
-              label=f"windows |v − n| ≤ {dist.window_half_width:.3g}")
-        a.errorbar(v + w / 2, dist.windowed, yerr=err_w, fmt="none", ecolor="#33373d", capsize=2, lw=0.8)
+        a.bar(v + w / 2, dist.binned, width=w, color=STATE_COLOURS[1], alpha=0.85,
+              label=f"symmetric bins |v − n| ≤ {dist.bin_half_width:.3g}")
+        a.errorbar(v + w / 2, dist.binned, yerr=err_w, fmt="none", ecolor="#33373d", capsize=2, lw=0.8)
         a.set_xlabel("vibrational level v")
         a.set_ylabel("population (fraction of bound fragments)")
         a.set_xticks(v)

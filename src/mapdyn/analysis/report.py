@@ -195,14 +195,14 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     # vibrational ------------------------------------------------------------------------------
     for dist in results.vibrational:
         name = "vibrational_" + _slug(dist.fragment)
-        tab(name, ["v", "histogram", "histogram_low", "histogram_high", "windowed", "windowed_low", "windowed_high"],
-            [dist.levels, dist.histogram, dist.histogram_low, dist.histogram_high, dist.windowed,
-             dist.windowed_low, dist.windowed_high])
+        tab(name, ["v", "histogram", "histogram_low", "histogram_high", "binned", "binned_low", "binned_high"],
+            [dist.levels, dist.histogram, dist.histogram_low, dist.histogram_high, dist.binned,
+             dist.binned_low, dist.binned_high])
         tab(name + "_continuous", ["trajectory", "v_continuous", "internal_energy_hartree", "angular_momentum_au"],
             [dist.indices, dist.v_continuous, dist.internal_energy, dist.angular_momentum])
         fig(name, plots.plot_vibrational_distribution, dist,
-            note=(f"vibrational level populations of {dist.fragment} from histogram boxes and from windows "
-                  f"|v − n| ≤ {dist.window_half_width:.3g}; right: continuous Bohr–Sommerfeld v"))
+            note=(f"vibrational level populations of {dist.fragment} from histogram boxes and from symmetric bins "
+                  f"|v − n| ≤ {dist.bin_half_width:.3g}; right: continuous Bohr–Sommerfeld v"))
 
     # spectrum ---------------------------------------------------------------------------------
     spec = results.spectrum
@@ -314,8 +314,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append(f"- potential: {dist.potential_source}")
         rng_note = (f" ({dist.n_outside_range} with r outside the potential's range)"
                     if getattr(dist, "n_outside_range", 0) else "")
-        L.append(f"- {dist.n_bound} bound, {dist.n_unbound} unbound{rng_note}; windowed binning: {dist.n_outside_windows} "
-                 f"bound fragments in no window (half-width {dist.window_half_width:.4g})")
+        L.append(f"- {dist.n_bound} bound, {dist.n_unbound} unbound{rng_note}; symmetric bins: {dist.n_outside_bins} "
+                 f"bound fragments in no window (half-width {dist.bin_half_width:.4g})")
         L.append(f"- normalisation: {dist.normalisation}")
         L.append("")
     en = res.energy

@@ -22,9 +22,9 @@ trapped behind the centrifugal barrier are counted as bound and reported as *qua
 Binning of the continuous v (both stated in every result):
 
 * histogram boxes: level n collects v ∈ [n − ½, n + ½); fractions of all bound fragments.
-* symmetric windows (SQC-like): level n collects |v − n| ≤ w (default w = (√3 − 1)/2, the square
-  SQC half-width); fractions of the fragments inside any window (windowed normalisation,
-  P_n = N_n / Σ N_n'), and the number outside all windows is reported.
+* symmetric bins (SQC-like): level n collects |v − n| ≤ w (default w = (√3 − 1)/2, the square
+  SQC half-width); fractions of the fragments inside any bin (binned normalisation,
+  P_n = N_n / Σ N_n'), and the number outside all bins is reported.
 """
 
 from __future__ import annotations
@@ -293,10 +293,10 @@ def vibrational_quantum_numbers(potential: FragmentPotential, phase: PhasePoint
 class VibrationalDistribution:
     """Vibrational level populations of one fragment (see the module docstring for binning).
 
-    levels (K,) v = 0 … K−1; histogram, windowed and their *_low/*_high bounds : (K,) fractions;
+    levels (K,) v = 0 … K−1; histogram, binned and their *_low/*_high bounds : (K,) fractions;
     v_continuous (m,) (NaN = unbound); internal_energy (m,) Eh; angular_momentum (m,) ħ;
     indices (m,) trajectory indices; counts: n_bound, n_unbound (incl. n_outside_range: r outside the
-    potential's range), n_quasibound, n_outside_windows.
+    potential's range), n_quasibound, n_outside_bins.
     """
 
     fragment: str
@@ -304,10 +304,10 @@ class VibrationalDistribution:
     histogram: np.ndarray
     histogram_low: np.ndarray
     histogram_high: np.ndarray
-    windowed: np.ndarray
-    windowed_low: np.ndarray
-    windowed_high: np.ndarray
-    window_half_width: float
+    binned: np.ndarray
+    binned_low: np.ndarray
+    binned_high: np.ndarray
+    bin_half_width: float
     v_continuous: np.ndarray
     internal_energy: np.ndarray
     angular_momentum: np.ndarray
@@ -315,29 +315,29 @@ class VibrationalDistribution:
     n_bound: int
     n_unbound: int
     n_quasibound: int
-    n_outside_windows: int
+    n_outside_bins: int
     confidence_level: float
     potential_source: str
     normalisation: str
     n_outside_range: int = 0
 
 
-def vibrational_distribution(v_continuous: np.ndarray, *, window_half_width: float = SQUARE_GAMMA,
+def vibrational_distribution(v_continuous: np.ndarray, *, bin_half_width: float = SQUARE_GAMMA,
                              n_levels: int | None = None, fragment: str = "fragment",
                              internal_energy: np.ndarray | None = None, angular_momentum: np.ndarray | None = None,
                              indices: np.ndarray | None = None, quasibound: np.ndarray | None = None,
                              potential_source: str = "", confidence_level: float = 0.95, n_resamples: int = 999,
                              seed: int = 0) -> VibrationalDistribution:
-    """Bin continuous vibrational numbers (NaN = unbound) with histogram boxes and symmetric windows.
+    """Bin continuous vibrational numbers (NaN = unbound) with histogram boxes and symmetric bins.
 
     Bootstrap bounds over fragments (``scipy.stats.bootstrap`` via
     :func:`mapdyn.analysis.bootstrap_ratio`).  ``n_levels`` default: up to the largest occupied box.
     """
     from mapdyn.analysis.statistics import bootstrap_ratio
 
-    w = float(window_half_width)
+    w = float(bin_half_width)
     if not 0.0 < w <= 0.5:
-        raise ValueError(f"window_half_width={window_half_width!r} is not allowed; it must lie in (0, 0.5]")
+        raise ValueError(f"bin_half_width={bin_half_width!r} is not allowed; it must lie in (0, 0.5]")
     v = np.asarray(v_continuous, dtype=float).reshape(-1)
     m = v.size
     bound = np.isfinite(v)
@@ -369,8 +369,8 @@ def vibrational_distribution(v_continuous: np.ndarray, *, window_half_width: flo
         np.arange(m) if indices is None else np.asarray(indices, dtype=int),
         n_bound, int(m - n_bound), int(0 if quasibound is None else np.sum(quasibound)),
         int(n_bound - win.any(axis=1).sum()), float(confidence_level), potential_source,
-        (f"histogram: box [v − ½, v + ½) counts / all {n_bound} bound fragments; windows: |v − n| ≤ {w:.4g} "
-         f"counts / fragments inside any window (windowed normalisation); {m - n_bound} unbound excluded"))
+        (f"histogram: box [v − ½, v + ½) counts / all {n_bound} bound fragments; bins: |v − n| ≤ {w:.4g} "
+         f"counts / fragments inside any bin (binned normalisation); {m - n_bound} unbound excluded"))
 
 
 @dataclasses.dataclass
@@ -378,7 +378,7 @@ class FragmentAnalysis:
     """What to analyse: a diatomic fragment (two atom indices) on a potential curve.
 
     potential : :class:`FragmentPotential` (from a curve, a callable, or a backend scan);
-    name : label in reports (default "A(i)–B(j)"); window_half_width : symmetric-window w.
+    name : label in reports (default "A(i)–B(j)"); bin_half_width : symmetric-bin half-width w.
     Only finished trajectories are used unless ``include_unfinished``; with ``product`` only those
     whose final geometry was classified as that product (needs a product classifier).
     """
@@ -386,7 +386,7 @@ class FragmentAnalysis:
     atoms: tuple[int, int]
     potential: FragmentPotential
     name: str = ""
-    window_half_width: float = SQUARE_GAMMA
+    bin_half_width: float = SQUARE_GAMMA
     include_unfinished: bool = False
     product: str | None = None
 
@@ -431,7 +431,7 @@ def analyze_fragment(tset: Any, frag: FragmentAnalysis, *, confidence_level: flo
     outside = int(np.sum(~((phase.r > lo) & (phase.r < hi))))
     if frag.product is not None:
         name += f" ({frag.product})"
-    dist = vibrational_distribution(v, window_half_width=frag.window_half_width, fragment=name, internal_energy=E,
+    dist = vibrational_distribution(v, bin_half_width=frag.bin_half_width, fragment=name, internal_energy=E,
                                     angular_momentum=phase.L, indices=tset.indices[rows], quasibound=quasi,
                                     potential_source=frag.potential.source, confidence_level=confidence_level,
                                     n_resamples=n_resamples, seed=seed)

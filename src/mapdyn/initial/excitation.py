@@ -1,20 +1,20 @@
 """Initial electronic state and the nuclear-ensemble absorption spectrum.
 
-Atomic units inside (Eh, e·Bohr, Bohr²).  User-facing energy windows and spectrum axes are in eV
+Atomic units inside (Eh, e·Bohr, Bohr²).  User-facing energy ranges and spectrum axes are in eV
 (names end in ``_ev``) and converted once with ``ase.units.Hartree``.
 
 How a sample gets its initial state (:func:`choose_initial_states`):
 
 * ``rule="fixed"``: every geometry starts in adiabatic state ``state`` (1 = S1, ...), weight 1/n.
 * ``rule="brightest"``: each geometry starts in the state with the largest oscillator strength
-  f_0k (optionally only among states inside ``window_ev``), weight 1/n.  Geometries with no state
-  in the window are excluded.
-* ``rule="window"``: all states with excitation energy inside ``window_ev`` (inclusive) are
-  candidates, weighted by f_0k.  With ``window_assignment="draw"`` (default) each geometry i gets
-  one state drawn with probability f_ik / Σ_{k∈window} f_ik and carries the weight
-  w_i ∝ Σ_{k∈window} f_ik (normalised Σ w = 1); this is an unbiased estimate of the f-weighted
-  sum over (geometry, state) pairs.  With ``window_assignment="all_pairs"`` every (i, k) pair in the
-  window is returned with w_ik ∝ f_ik.  The draw for geometry i uses its own stream
+  f_0k (optionally only among states inside ``energy_range_ev``), weight 1/n.  Geometries with no state
+  in the range are excluded.
+* ``rule="energy_range"``: all states with excitation energy inside ``energy_range_ev`` (inclusive) are
+  candidates, weighted by f_0k.  With ``range_assignment="draw"`` (default) each geometry i gets
+  one state drawn with probability f_ik / Σ_{k∈range} f_ik and carries the weight
+  w_i ∝ Σ_{k∈range} f_ik (normalised Σ w = 1); this is an unbiased estimate of the f-weighted
+  sum over (geometry, state) pairs.  With ``range_assignment="all_pairs"`` every (i, k) pair in the
+  range is returned with w_ik ∝ f_ik.  The draw for geometry i uses its own stream
   ``default_rng(SeedSequence(seed).spawn(n)[i].spawn(1)[0])`` (:func:`state_choice_rng`), a child of
   trajectory i's nuclear stream, so it neither consumes nor shifts the nuclear/mapping draws.
 """
@@ -51,7 +51,7 @@ C_AU: float = 1.0 / units.alpha
 #: Crespo-Otero & Barbatti, Theor. Chem. Acc. 131, 1237 (2012) (from memory).
 CROSS_SECTION_PREFACTOR_BOHR2_HARTREE: float = 2.0 * np.pi ** 2 / C_AU
 
-_RULES = ("fixed", "brightest", "window")
+_RULES = ("fixed", "brightest", "energy_range")
 _ASSIGNMENTS = ("draw", "all_pairs")
 _SHAPES = ("gaussian", "lorentzian")
 
@@ -133,34 +133,34 @@ class InitialStates:
 
     sample_index : (m,) row of the nuclear ensemble.  state : (m,) adiabatic index (0 = ground).
     weight : (m,) statistical weight, Σ = 1 (average observables as Σ w_j O_j).
-    rule, window_ev, window_assignment : how they were chosen.
+    rule, energy_range_ev, range_assignment : how they were chosen.
     """
 
     sample_index: np.ndarray
     state: np.ndarray
     weight: np.ndarray
     rule: str
-    window_ev: tuple[float, float] | None
-    window_assignment: str | None
+    energy_range_ev: tuple[float, float] | None
+    range_assignment: str | None
 
 
-def _window_mask(exc_ev: np.ndarray, window_ev: Sequence[float] | None) -> np.ndarray:
-    if window_ev is None:
+def _energy_range_mask(exc_ev: np.ndarray, energy_range_ev: Sequence[float] | None) -> np.ndarray:
+    if energy_range_ev is None:
         return np.ones_like(exc_ev, dtype=bool)
-    w = tuple(float(v) for v in window_ev)
+    w = tuple(float(v) for v in energy_range_ev)
     if len(w) != 2 or not all(np.isfinite(w)) or not w[0] < w[1]:
-        raise ValueError(f"window_ev must be (low, high) in eV with low < high, got {window_ev}")
+        raise ValueError(f"energy_range_ev must be (low, high) in eV with low < high, got {energy_range_ev}")
     mask = (exc_ev >= w[0]) & (exc_ev <= w[1])
     if not mask.any():
-        raise ValueError(f"window_ev={w} eV contains no excitation at any geometry "
+        raise ValueError(f"energy_range_ev={w} eV contains no excitation at any geometry "
                          f"(excitations span {exc_ev.min():.3f}..{exc_ev.max():.3f} eV)")
     return mask
 
 
 def choose_initial_states(excitation_energies_hartree: np.ndarray, oscillator_strengths: np.ndarray,
                           rule: str, *, state: int | None = None,
-                          window_ev: Sequence[float] | None = None,
-                          window_assignment: str = "draw", seed: int | None = None) -> InitialStates:
+                          energy_range_ev: Sequence[float] | None = None,
+                          range_assignment: str = "draw", seed: int | None = None) -> InitialStates:
     """Choose initial adiabatic states for n geometries (see module docstring for the rules).
 
     excitation_energies_hartree, oscillator_strengths : (n, F−1), Eh and dimensionless, column
@@ -177,14 +177,14 @@ def choose_initial_states(excitation_energies_hartree: np.ndarray, oscillator_st
     n, nexc = exc.shape
     if rule not in _RULES:
         raise ValueError(f"rule must be one of {_RULES}, got {rule!r}")
-    wtuple = None if window_ev is None else (float(window_ev[0]), float(window_ev[1]))
+    wtuple = None if energy_range_ev is None else (float(energy_range_ev[0]), float(energy_range_ev[1]))
 
     if rule == "fixed":
         if state is None or not (1 <= int(state) <= nexc):
             raise ValueError(f"state must be an excited adiabatic index in 1..{nexc} for rule='fixed', got {state}")
         return InitialStates(np.arange(n), np.full(n, int(state)), np.full(n, 1.0 / n), rule, None, None)
 
-    mask = _window_mask(exc * units.Hartree, window_ev)
+    mask = _energy_range_mask(exc * units.Hartree, energy_range_ev)
 
     if rule == "brightest":
         fm = np.where(mask, f, -np.inf)
@@ -193,20 +193,20 @@ def choose_initial_states(excitation_energies_hartree: np.ndarray, oscillator_st
         states = np.argmax(fm[rows], axis=1) + 1
         return InitialStates(rows, states, np.full(rows.size, 1.0 / rows.size), rule, wtuple, None)
 
-    # rule == "window"
-    if window_ev is None:
-        raise ValueError("window_ev is required for rule='window'")
-    if window_assignment not in _ASSIGNMENTS:
-        raise ValueError(f"window_assignment must be one of {_ASSIGNMENTS}, got {window_assignment!r}")
+    # rule == "energy_range"
+    if energy_range_ev is None:
+        raise ValueError("energy_range_ev is required for rule='energy_range'")
+    if range_assignment not in _ASSIGNMENTS:
+        raise ValueError(f"range_assignment must be one of {_ASSIGNMENTS}, got {range_assignment!r}")
     fw = np.where(mask, f, 0.0)
     total = fw.sum()
     if not total > 0:
-        raise ValueError(f"window_ev={wtuple} eV: every excitation inside it has zero oscillator strength")
-    if window_assignment == "all_pairs":
+        raise ValueError(f"energy_range_ev={wtuple} eV: every excitation inside it has zero oscillator strength")
+    if range_assignment == "all_pairs":
         rows, cols = np.nonzero(mask & (fw > 0))
-        return InitialStates(rows, cols + 1, fw[rows, cols] / total, rule, wtuple, window_assignment)
+        return InitialStates(rows, cols + 1, fw[rows, cols] / total, rule, wtuple, range_assignment)
     if seed is None:
-        raise ValueError("seed is required for rule='window' with window_assignment='draw'")
+        raise ValueError("seed is required for rule='energy_range' with range_assignment='draw'")
     per_geom = fw.sum(axis=1)
     rows = np.nonzero(per_geom > 0)[0]
     states = np.empty(rows.size, dtype=int)
@@ -214,7 +214,7 @@ def choose_initial_states(excitation_energies_hartree: np.ndarray, oscillator_st
         u = state_choice_rng(seed, n, int(i)).random()
         cdf = np.cumsum(fw[i]) / per_geom[i]
         states[j] = int(min(np.searchsorted(cdf, u, side="right"), nexc - 1)) + 1
-    return InitialStates(rows, states, per_geom[rows] / total, rule, wtuple, window_assignment)
+    return InitialStates(rows, states, per_geom[rows] / total, rule, wtuple, range_assignment)
 
 
 @dataclasses.dataclass

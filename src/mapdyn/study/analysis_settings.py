@@ -14,7 +14,7 @@ from mapdyn.analysis.products import distance_rule_classifier
 # ----------------------------------------------------------------------------------------------
 ANALYSIS_KEYS = ("observables", "first_entry", "products", "fragments", "confidence_level", "n_resamples",
                   "seed", "energy_tolerance_hartree", "lifetime_delay", "lifetime_asymptote", "lifetime_resamples")
-_FRAGMENT_KEYS = ("atoms", "name", "window_half_width", "include_unfinished", "potential", "product")
+_FRAGMENT_KEYS = ("atoms", "name", "bin_half_width", "include_unfinished", "potential", "product")
 _POTENTIAL_KEYS = ("curve", "morse", "scan")
 
 
@@ -32,7 +32,7 @@ def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
 
         atoms = [0, 1]          # atom indices (0-based)
         name = "H2"             # optional
-        window_half_width = 0.366   # optional (default (√3 − 1)/2)
+        bin_half_width = 0.366   # optional (default (√3 − 1)/2)
         product = "H2 + X"      # optional: only trajectories classified as this product
         potential.curve = "h2_curve.csv"   # two columns r/Bohr, V/Eh (relative to the study folder), or
         potential.morse = {D = 0.1745, a = 1.028, r_e = 1.401}   # Eh, 1/Bohr, Bohr, or
@@ -76,7 +76,7 @@ def fragment_from_table(table: Mapping[str, Any], *, folder: str | None = None,
         cache = os.path.join(folder, "fragments", _slug_name(name) + ".npz") if folder else None
         potential = vib.scan_fragment_potential(backend_factory(frag_symbols), grid, state=int(spec.get("state", 0)),
                                                 cache_path=cache)
-    return vib.FragmentAnalysis(atoms, potential, name, float(table.get("window_half_width", vib.SQUARE_GAMMA)),
+    return vib.FragmentAnalysis(atoms, potential, name, float(table.get("bin_half_width", vib.SQUARE_GAMMA)),
                                 bool(table.get("include_unfinished", False)),
                                 None if table.get("product") is None else str(table["product"]))
 

@@ -110,7 +110,7 @@ def load_trajectory_set(study: Study):
     T = grid_steps.size
     status_map = {e.index: e for e in study.status().entries}
     F = cfg.electronic.states
-    meta = {"study": study.name, "method": cfg.method.describe(), "time_step_au": dt,
+    meta = {"study": study.name, "method": cfg.options.describe(), "time_step_au": dt,
             "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
     if study.batched:
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
@@ -140,7 +140,7 @@ def load_trajectory_set(study: Study):
             raise StudyError(f"{study.folder}: no results yet")
         model = make_model(cfg)
         init_state = cfg.initial.state
-        return TrajectorySet(times=times, actions=np.concatenate(acts), options=cfg.method,
+        return TrajectorySet(times=times, actions=np.concatenate(acts), options=cfg.options,
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
                              coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
@@ -193,7 +193,7 @@ def load_trajectory_set(study: Study):
                   masses=np.asarray(model.masses))
     else:
         kw = dict(positions=np.array(rows_R), momenta=np.array(rows_P), symbols=symbols, masses=masses)
-    return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.method,
+    return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.options,
                          initial_states=np.array(init_states), energies=np.array(rows_e), status=tuple(stat),
                          reasons=tuple(reasons), indices=np.array(idx), metadata=meta, **kw)
 

@@ -163,7 +163,7 @@ class StudyConfig:
     folder: str
     electronic: ElectronicConfig
     initial: InitialConfig
-    method: MethodOptions
+    options: MethodOptions
     dynamics: DynamicsConfig
     ensemble: EnsembleConfig
     molecule: MoleculeConfig | None = None

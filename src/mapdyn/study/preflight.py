@@ -437,8 +437,8 @@ def _batched_model_cost(config: Any, probe_steps: int = 50) -> tuple[float, int]
     init = config.initial
     state = gaussian_wavepacket_ensemble(model, n, config.ensemble.seed, position=init.position_bohr,
                                          momentum=init.momentum_au, position_width=init.width_bohr,
-                                         initial_state=init.state, options=config.method, basis=init.basis)
-    integ = DiabaticIntegrator(model, config.method, config.dynamics.time_step_au)
+                                         initial_state=init.state, options=config.options, basis=init.basis)
+    integ = DiabaticIntegrator(model, config.options, config.dynamics.time_step_au)
     integ.step(state)  # first call outside the timing (allocation, caches)
     t0 = time.perf_counter()
     for _ in range(probe_steps):

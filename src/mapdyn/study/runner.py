@@ -140,7 +140,7 @@ def _fresh_driver(study: Study, index: int):
         rng.bit_generator.state = rng_state
         atoms = Atoms(list(cfg.molecule.symbols), positions=pos * units.Bohr, masses=masses / AMU_IN_ME)
         atoms.set_momenta(mom / p_ase)
-    return MappingDynamics(atoms, backend, d.time_step_au * units.AUT, int(state), cfg.method, rng=rng,
+    return MappingDynamics(atoms, backend, d.time_step_au * units.AUT, int(state), cfg.options, rng=rng,
                            electronic_propagation=d.propagation, substeps=d.substeps,
                            drift_threshold=d.drift_threshold_hartree, stop_on_drift=d.stop_on_drift,
                            record_interval=d.record_every, on_backend_error="stop")
@@ -163,7 +163,7 @@ def _restored_driver(study: Study, state):
         masses = initial_row(study, 0)[4]
     atoms = Atoms(symbols, positions=state.positions * units.Bohr, masses=masses / AMU_IN_ME)
     return MappingDynamics(atoms, backend, d.time_step_au * units.AUT, int(state.settings["initial_state"]),
-                           cfg.method, electronic_propagation=d.propagation, substeps=d.substeps,
+                           cfg.options, electronic_propagation=d.propagation, substeps=d.substeps,
                            drift_threshold=d.drift_threshold_hartree, stop_on_drift=d.stop_on_drift,
                            record_interval=d.record_every, on_backend_error="stop", restart_state=state)
 
@@ -269,8 +269,8 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
         else:
             state = gaussian_wavepacket_ensemble(model, count, cfg.ensemble.seed, np.array(init.position_bohr),
                                                  np.array(init.momentum_au), np.array(init.width_bohr), init.state,
-                                                 cfg.method, basis=init.basis, first_index=first)
-        run = run_diabatic(model, state, cfg.method, cfg.dynamics.time_step_au, target - step,
+                                                 cfg.options, basis=init.basis, first_index=first)
+        run = run_diabatic(model, state, cfg.options, cfg.dynamics.time_step_au, target - step,
                            record_every=cfg.dynamics.record_every, record_nuclei=True)
         keep = slice(1, None) if segs else slice(None)  # a continuation's first frame repeats the last one
         f = run.final
