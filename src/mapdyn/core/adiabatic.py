@@ -74,7 +74,8 @@ def interpolated_propagator(H0: np.ndarray, H1: np.ndarray, dt: float, substeps:
 
 
 def velocity_couplings(couplings: np.ndarray, velocity: np.ndarray) -> np.ndarray:
-    """σ_kl = V·d_kl (F, F) in 1/a.u. time from d (F, F, N, 3) in 1/Bohr and V (N, 3) in Bohr/a.u. time."""
+    """σ_kl = ⟨ψ_k|dψ_l/dt⟩ = V·d_kl (chain rule) (F, F) in 1/a.u. time, from d (F, F, N, 3) in
+    1/Bohr and V (N, 3) in Bohr/a.u. time."""
     return np.einsum("klna,na->kl", np.asarray(couplings), velocity)
 
 
