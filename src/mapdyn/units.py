@@ -34,3 +34,7 @@ def fs_to_au(t_fs: float) -> float:
 def au_to_fs(t_au: float) -> float:
     """Time in atomic units → fs."""
     return t_au * AU_TIME_IN_FS
+
+
+#: ASE's momentum unit (amu·Å per ASE time unit) in atomic units of momentum.
+ASE_MOMENTUM_IN_AU: float = AMU_IN_ME * AU_TIME_IN_ASE / BOHR_IN_ANGSTROM

@@ -1,44 +1,24 @@
 """On-the-fly mapping dynamics of one trajectory: an ASE MolecularDynamics subclass.
 
 Internals in Hartree atomic units (positions Bohr, kinetic momenta a.u., energies Eh, time a.u.);
-ASE units (Å, eV, amu, ASE time) only at the boundary, converted with :mod:`ase.units`.
+ASE units (Å, eV, amu, ASE time) only at the boundary, converted with :mod:`ase.units`.  The
+physics is in :mod:`mapdyn.core.adiabatic` (equations and sources in
+docs/theory.md#adiabatic-representation); this class holds the state, calls the backend and
+applies the run policies (:mod:`mapdyn.driver.observers`).  One step (velocity-Verlet shape, one
+backend call):
 
-Equations (DESIGN.md §5b, §7.5, §7.6; Cotton, Liang & Miller, J. Chem. Phys. 147, 064112 (2017)
-for the adiabatic representation with kinetic momentum P = M dR/dt):
-
-    dR/dt = P/M,   i dz_k/dt = E_k z_k − i Σ_l σ_kl z_l,   σ_kl = V·d_kl,
-    dP/dt = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩,   ⟨ψ_k|∇H|ψ_l⟩ = δ_kl ∇E_k + (E_l − E_k) d_kl,
-
-ρ_kl = ½(x_k x_l + p_k p_l) − γ_k δ_kl in the adiabatic basis (:func:`mapdyn.core.mapping.effective_density`),
-conserved energy Σ P²/2M + Σ_k ρ_kk E_k.  One step (velocity-Verlet shape, one backend call):
-
-1. P ← P + F(t) Δt/2;  R ← R + Δt P/M  (V = P/M is the mid-step velocity);
+1. P ← P + F̄(t) Δt/2;  R ← R + Δt P/M  (V = P/M is the mid-step velocity);
 2. backend at the new R (warm-started from the previous ``guess``);
-3. oscillators through the step: with an overlap matrix S, local diabatization (Granucci, Persico
-   & Toniolo, J. Chem. Phys. 114, 10608 (2001), from memory; DESIGN §7.6): T = Löwdin(S) = U Wᵀ
-   from S = U Σ Wᵀ, H_d(0) = diag E(t), H_d(Δt) = T diag E(t+Δt) Tᵀ, linear interpolation,
-   exponential-midpoint substeps, z_ad(t+Δt) = Tᵀ z_d; without S, the same substeps with
-   H_eff = diag E − i V·d interpolated between the two ends;
-4. F(t+Δt);  P ← P + F Δt/2.
+3. oscillators through the step: local diabatization when the backend gives overlaps with the
+   previous step, else the coupling-vector Hamiltonian diag E − iV·d;
+4. F̄(t+Δt);  P ← P + F̄ Δt/2.
 
-Force averaging (``force_averaging=True``, the default; own scheme, DESIGN §5b): the coherences
-ρ_kl (k ≠ l) rotate as e^{−i(E_k − E_l)t}, so when ΔE·Δt is not small, kicks with ρ(t) sample the
-off-diagonal force at a nearly fixed phase and the energy drifts.  Each half kick instead uses ρ̄, the
-mean of ρ over the adjacent electronic half step with frozen energies (the opening kick over
-[t, t+Δt/2] with E(t), the closing kick over [t+Δt/2, t+Δt] with E(t+Δt), closed form
-ρ̄_kl = ½ Re(z_k z_l* e^{∓iω_kl Δt/4}) sinc(ω_kl Δt/4), ω_kl = E_k − E_l).  The two kicks then give
-the nuclei Δt·(mean ρ over the step), the same energy the oscillators exchange; the scheme is
-symmetric under time reversal (P → −P, z → z*), reduces to the plain kicks as Δt → 0 (second order
-is kept) and costs no backend call.  A one-time warning, recorded in :attr:`MappingDynamics.metadata`,
-reports when max ΔE_kl·Δt > ``GAP_PHASE_LIMIT`` (1 rad) between states with |V·d_kl|·Δt >
-``GAP_COUPLING_FLOOR`` (1e-3): the step does not resolve the electronic gap.
-
-No coupling vectors (TDA/TDDFT-like backends, DESIGN §5b): σ(t+Δt/2) = (S − Sᵀ)/(2Δt)
-(Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994)), the force uses the velocity-projected
-coupling d_kl ≈ σ_kl V/|V|² with σ and V at the force time extrapolated linearly from the last two
-mid-steps (one extra gradient-free backend call at t = 0 supplies the first), and the off-diagonal
-force is dropped when |V| is below ``velocity_floor``.  This misses the force component
-perpendicular to V; a warning is issued once and recorded in :attr:`MappingDynamics.metadata`.
+F̄ uses ρ averaged over the adjacent electronic half step (``force_averaging=True``, the default;
+docs/theory.md#force-averaging), else ρ(t).  Without coupling vectors the force uses the
+velocity-projected coupling with σ and V extrapolated from the last two mid-steps, one extra
+gradient-free backend call at t = 0 supplying the first (docs/theory.md#velocity-projected-couplings).
+Warnings issued once (no coupling vectors, unresolved electronic gap) are recorded in
+:attr:`MappingDynamics.metadata`.
 
 The complete propagation state is a :class:`DriverState` (``get_state``/``set_state``), so a
 checkpoint writer can save and restore it exactly.
@@ -59,31 +39,31 @@ from ase.calculators.singlepoint import SinglePointCalculator
 from ase.md.md import MolecularDynamics
 
 from mapdyn.backends.contract import BackendError, ElectronicResult
+from mapdyn.core.adiabatic import (
+    GAP_COUPLING_FLOOR,
+    GAP_PHASE_LIMIT,
+    GAP_WARNING,
+    PROJECTION_WARNING,
+    adiabatic_force,
+    averaged_density,
+    extrapolate_projection,
+    gap_resolution_message,
+    mapping_potential_energy,
+    mapping_total_energy,
+    projected_force,
+    propagate_local_diabatization,
+    propagate_with_couplings,
+    remove_total_momentum,
+    sigma_from_overlap,
+)
 from mapdyn.core.mapping import actions, effective_density
 from mapdyn.core.options import MethodOptions
-from mapdyn.core.windows import (
-    sample_mapping_variables,
-    window_assignment,
-    window_indicators,
-)
-from mapdyn.units import AMU_IN_ME
+from mapdyn.core.windows import sample_mapping_variables
+from mapdyn.driver.observers import DriftMonitor, FrameRecorder, frame_atoms, write_frames_extxyz
+from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
-           "PROJECTION_WARNING", "GAP_WARNING"]
-
-#: ASE momentum unit (amu·Å/ASE time) in atomic units of momentum.
-_ASE_MOMENTUM_IN_AU = AMU_IN_ME * units.AUT / units.Bohr
-
-#: Prefix of the once-per-run warning that the step does not resolve the electronic gap.
-GAP_WARNING = "time step does not resolve the electronic gap"
-#: ΔE·Δt (rad) above which the gap warning is issued (one electronic period = 2π rad).
-GAP_PHASE_LIMIT = 1.0
-#: |V·d_kl|·Δt below which a pair counts as uncoupled for the gap warning.
-GAP_COUPLING_FLOOR = 1e-3
-
-PROJECTION_WARNING = ("no coupling vectors from the backend: the off-diagonal force uses the "
-                      "velocity-projected coupling d ≈ σ V/|V|², which misses the force component "
-                      "perpendicular to the velocity (exact in one dimension)")
+           "PROJECTION_WARNING", "GAP_WARNING", "GAP_PHASE_LIMIT", "GAP_COUPLING_FLOOR"]
 
 _PROPAGATIONS = ("auto", "overlap", "coupling")
 _ON_ERROR = ("raise", "stop")
@@ -126,49 +106,6 @@ class DriverState:
         return copy.deepcopy(self)
 
 
-def remove_total_momentum(positions: np.ndarray, momenta: np.ndarray, masses: np.ndarray,
-                          linear: bool = True, angular: bool = True) -> np.ndarray:
-    """Momenta (N, 3) with zero total linear and/or angular momentum (about the centre of mass).
-
-    P_i ← P_i − m_i P_tot/M;  P_i ← P_i − m_i ω × r_i with ω = I⁻¹ L (pseudo-inverse for linear
-    molecules), r_i relative to the centre of mass (common practice).  Any consistent units.
-    """
-    R = np.asarray(positions, dtype=float)
-    P = np.array(momenta, dtype=float)
-    m = np.asarray(masses, dtype=float).reshape(-1, 1)
-    if linear:
-        P -= m * P.sum(axis=0) / m.sum()
-    if angular and R.shape[0] > 1:
-        r = R - (m * R).sum(axis=0) / m.sum()
-        L = np.cross(r, P).sum(axis=0)
-        inertia = (m[:, 0] * (r * r).sum(axis=1)).sum() * np.eye(3) - np.einsum("i,ik,il->kl", m[:, 0], r, r)
-        omega = np.linalg.pinv(inertia, rcond=1e-10) @ L
-        P -= m * np.cross(omega[None, :], r)
-    return P
-
-
-def _lowdin(S: np.ndarray) -> np.ndarray:
-    """Orthogonal matrix closest to S: T = S (SᵀS)^(−1/2) = U Wᵀ from S = U Σ Wᵀ (Löwdin)."""
-    u, _, wt = np.linalg.svd(S)
-    return u @ wt
-
-
-def _interpolated_propagator(H0: np.ndarray, H1: np.ndarray, dt: float, substeps: int) -> np.ndarray:
-    """Π_j exp(−i H(τ_j) h), h = Δt/n, τ_j = (j + ½)h, H(τ) = H0 + (τ/Δt)(H1 − H0) (Hermitian (F, F)).
-
-    Exponential midpoint rule on each substep (second order in h); the factors for later substeps
-    multiply from the left.
-    """
-    w = (np.arange(substeps) + 0.5) / substeps
-    Hs = H0[None] + w[:, None, None] * (H1 - H0)[None]
-    lam, U = np.linalg.eigh(Hs)
-    factors = np.einsum("jkm,jm,jlm->jkl", U, np.exp(-1j * lam * (dt / substeps)), U.conj())
-    out = factors[0]
-    for j in range(1, substeps):
-        out = factors[j] @ out
-    return out
-
-
 class MappingDynamics(MolecularDynamics):
     """MMST/SQC trajectory propagated on the fly (see the module docstring for the equations).
 
@@ -181,7 +118,8 @@ class MappingDynamics(MolecularDynamics):
         (:mod:`mapdyn.backends.contract`).
     timestep : ASE time units (``0.5 * ase.units.fs``; a.u. → ``dt_au * ase.units.AUT``).
     initial_state : adiabatic state index the trajectory starts in (0 = ground state).
-    options : :class:`MethodOptions`; ``zero_point="fixed"`` is refused on this path (DESIGN §5a);
+    options : :class:`MethodOptions`; ``zero_point="fixed"`` is refused on this path (it rescales
+        the whole bonding potential per trajectory);
         ``"adjusted"`` takes γ_k = e_k(0) − δ_{k,initial_state} in the adiabatic basis at t = 0.
     rng : the trajectory's generator, positioned after the nuclear draws; the mapping variables are
         drawn from it with :func:`sample_mapping_variables` (actions, then angles).
@@ -275,7 +213,11 @@ class MappingDynamics(MolecularDynamics):
         if np.any(self.masses_au <= 0):
             raise ValueError("atoms have non-positive masses; set them with atoms.set_masses (amu)")
         self._M = self.masses_au[:, None]
-        self.frames: list[dict] = []
+        self.recorder = FrameRecorder(options, self.masses_au, self.record_interval)
+        self.drift_monitor = DriftMonitor(self.drift_threshold, self.stop_on_drift)
+        #: mid-step σ (F, F) of the last step in 1/a.u. time (the t = 0 probe's before the first
+        #: step on the no-NAC path; None otherwise), recorded in the frames.
+        self.step_sigma: np.ndarray | None = None
         self.timings = {"steps": 0, "step_seconds": 0.0, "backend_seconds": 0.0, "backend_calls": 0}
         self._observed_initial = False
         self._settings = {"timestep_au": self.dt_au, "nstates": self.nstates, "natoms": len(atoms),
@@ -287,6 +229,8 @@ class MappingDynamics(MolecularDynamics):
             self.set_state(restart_state)
             return
         self._state = self._initial_state(atoms, rng, mapping_variables, zero_linear_momentum, zero_angular_momentum)
+        if self._state.sigma_history:
+            self.step_sigma = self._state.sigma_history[-1][1]
         self._sync_atoms()
         self._record_frame()
 
@@ -296,7 +240,7 @@ class MappingDynamics(MolecularDynamics):
         if not 0 <= self.initial_state < f:
             raise ValueError(f"initial_state={self.initial_state!r} is not allowed; it must be an integer in 0..{f - 1}")
         R = atoms.get_positions() / units.Bohr
-        P = atoms.get_momenta() * _ASE_MOMENTUM_IN_AU
+        P = atoms.get_momenta() * ASE_MOMENTUM_IN_AU
         if zero_linear or zero_angular:
             P = remove_total_momentum(R, P, self.masses_au, linear=zero_linear, angular=zero_angular)
         rng_state = None
@@ -332,7 +276,7 @@ class MappingDynamics(MolecularDynamics):
                     raise ValueError("the backend gives neither coupling vectors nor overlaps with the previous "
                                      "step; nonadiabatic dynamics needs one of them")
                 S = np.asarray(probe.overlap_prev)
-                history.append((0.5 * delta, (S - S.T) / (2.0 * delta), V0.copy()))
+                history.append((0.5 * delta, sigma_from_overlap(S, delta), V0.copy()))
             else:
                 history.append((0.0, np.zeros((f, f)), V0.copy()))
         state = DriverState(step=0, time=0.0, positions=R, momenta=P, x=x, p=p, gamma_adjusted=gamma,
@@ -348,85 +292,41 @@ class MappingDynamics(MolecularDynamics):
         """ρ (F, F) in the adiabatic basis with the chosen zero-point treatment (dimensionless)."""
         return effective_density(x[None], p[None], self.options, None if gamma is None else gamma[None])[0]
 
-    def _extrapolate(self, history: list, t: float) -> tuple[np.ndarray, np.ndarray]:
-        tb, sb, vb = history[-1]
-        if len(history) < 2:
-            return sb, vb
-        ta, sa, va = history[-2]
-        w = (t - tb) / (tb - ta)
-        return sb + w * (sb - sa), vb + w * (vb - va)
-
     def averaged_density(self, x: np.ndarray, p: np.ndarray, gamma: np.ndarray | None, energies: np.ndarray,
                          window: float) -> np.ndarray:
-        """ρ̄ (F, F): ρ averaged over the free electronic motion during ``window`` (a.u. time, signed).
-
-        With frozen energies z_k(τ) = z_k e^{−iE_k τ}, so ρ_kl(τ) = ½ Re(z_k z_l* e^{−iω_kl τ}),
-        ω_kl = E_k − E_l (Eh), and the mean over τ ∈ [0, h] (h < 0: [h, 0]) is
-
-            ρ̄_kl = ½ Re(z_k z_l* e^{−iω_kl h/2}) sinc(ω_kl h/2),   sinc(u) = sin(u)/u,
-
-        (own derivation, elementary integral).  The diagonal (ω = 0) is unchanged, so the
-        zero-point treatment is untouched; ρ̄ → ρ as h → 0.
-        """
-        rho = self.density(x, p, gamma)
-        E = np.asarray(energies, dtype=float)
-        omega = E[:, None] - E[None, :]
-        u = 0.5 * omega * window
-        z = x + 1j * p
-        coherence = 0.5 * np.real(z[:, None] * z[None, :].conj() * np.exp(-1j * u)) * np.sinc(u / np.pi)
-        idx = np.arange(rho.shape[0])
-        off = idx[:, None] != idx[None, :]
-        rho[off] = coherence[off]
-        return rho
+        """ρ̄ (F, F): ρ averaged over the free electronic motion during ``window`` (a.u. time, signed;
+        energies in Eh); see :func:`mapdyn.core.adiabatic.averaged_density`."""
+        return averaged_density(self.density(x, p, gamma), x, p, energies, window)
 
     def _force(self, result: ElectronicResult, x, p, gamma, t: float, history: list,
                window: float = 0.0) -> np.ndarray:
-        """F = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr, (N, 3)), §7.5; projected d on the no-NAC path.
+        """F = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr, (N, 3)); projected d on the no-NAC path.
 
         ``window`` (a.u. time, signed): with force averaging on, the off-diagonal ρ is the mean
-        over the adjacent electronic half step (:meth:`averaged_density`); 0 gives ρ(t).
+        over the adjacent electronic half step; 0 gives ρ(t).
         """
         if self.force_averaging and window != 0.0:
             rho = self.averaged_density(x, p, gamma, result.energies, window)
         else:
             rho = self.density(x, p, gamma)
-        E = np.asarray(result.energies)
-        G = np.asarray(result.gradients)
-        F = -np.einsum("k,kna->na", np.diag(rho).copy(), G)
-        weight = rho * (E[None, :] - E[:, None])  # ρ_kl (E_l − E_k), symmetric
-        np.fill_diagonal(weight, 0.0)
         if result.couplings is not None:
-            F -= np.einsum("kl,klna->na", weight, np.asarray(result.couplings))
-        else:
-            sigma, V = self._extrapolate(history, t)
-            v2 = float(np.sum(V * V))
-            if np.sqrt(v2) > self.velocity_floor:
-                F -= np.sum(weight * sigma) * V / v2
-        return F
+            return adiabatic_force(rho, result.energies, result.gradients, result.couplings)
+        sigma, V = extrapolate_projection(history, t)
+        return projected_force(rho, result.energies, result.gradients, sigma, V, self.velocity_floor)
 
     def _check_gap_resolution(self, st: DriverState, energies: np.ndarray, sigma: np.ndarray) -> None:
-        """Warn once (recorded in the state) when max ΔE_kl·Δt > GAP_PHASE_LIMIT over pairs with
-        |σ_kl|·Δt > GAP_COUPLING_FLOOR (σ_kl = V·d_kl at mid-step)."""
+        """Warn once (recorded in the state) when the step does not resolve the electronic gap."""
         if any(w.startswith(GAP_WARNING) for w in st.warnings):
             return
-        E = np.asarray(energies, dtype=float)
-        phase = np.abs(E[:, None] - E[None, :]) * self.dt_au
-        coupled = np.abs(np.asarray(sigma)) * self.dt_au > GAP_COUPLING_FLOOR
-        np.fill_diagonal(coupled, False)
-        if np.any(coupled) and phase[coupled].max() > GAP_PHASE_LIMIT:
-            k, l = np.unravel_index(np.argmax(np.where(coupled, phase, -1.0)), phase.shape)
-            msg = (f"{GAP_WARNING}: max ΔE·Δt = {phase[k, l]:.2f} rad > {GAP_PHASE_LIMIT} between coupled states "
-                   f"{min(k, l)} and {max(k, l)} (|V·d|·Δt = {abs(sigma[k, l]) * self.dt_au:.1e}) at step {st.step}"
-                   + ("; forces are averaged over the electronic half steps" if self.force_averaging else
-                      "; force_averaging is off, expect energy drift"))
+        msg = gap_resolution_message(energies, sigma, self.dt_au, st.step, self.force_averaging)
+        if msg is not None:
             st.warnings.append(msg)
             warnings.warn(msg, stacklevel=4)
 
     def _total_energy(self, state: DriverState) -> float:
         """Σ P²/2M + Σ_k ρ_kk E_k (Eh)."""
         rho = self.density(state.x, state.p, state.gamma_adjusted)
-        kin = 0.5 * float(np.sum(state.momenta ** 2 / self._M))
-        return kin + float(np.dot(np.diag(rho), state.result.energies))
+        return mapping_total_energy(state.momenta, self.masses_au, rho, state.result.energies)
 
     def _call_backend(self, R: np.ndarray, guess, need_gradients: bool) -> ElectronicResult:
         t0 = _time.perf_counter()
@@ -440,30 +340,35 @@ class MappingDynamics(MolecularDynamics):
             raise ValueError(f"backend returned {result.nstates} states, expected nstates={self.nstates}")
         return result
 
+    def _step_backend(self, st: DriverState, R: np.ndarray) -> ElectronicResult | None:
+        """Result with gradients at R, or None when a backend failure stopped the trajectory."""
+        try:
+            new = self._call_backend(R, st.result.guess, True)
+        except BackendError as exc:
+            if self.on_backend_error == "raise":
+                raise
+            st.stopped, st.stop_reason = True, f"backend failure at step {st.step + 1}: {exc}"
+            return None
+        if new.gradients is None:
+            raise ValueError("the backend returned no gradients with need_gradients=True")
+        return new
+
     def _propagate_oscillators(self, old: ElectronicResult, new: ElectronicResult, z: np.ndarray,
-                               V: np.ndarray) -> tuple[np.ndarray, np.ndarray, str]:
-        """z (F,) adiabatic at t → adiabatic at t+Δt; also σ at mid-step (1/a.u. time)."""
-        dt, n = self.dt_au, self.substeps
+                               V: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """z (F,) adiabatic at t → adiabatic at t+Δt, and σ at mid-step (1/a.u. time)."""
         mode = self.electronic_propagation
         if mode == "auto":
             mode = "overlap" if new.overlap_prev is not None else "coupling"
         if mode == "overlap":
             if new.overlap_prev is None:
                 raise ValueError("electronic_propagation='overlap' but the backend returned no overlap_prev")
-            S = np.asarray(new.overlap_prev, dtype=float)
-            T = _lowdin(S)
-            H0 = np.diag(np.asarray(old.energies, dtype=float))
-            H1 = T @ np.diag(np.asarray(new.energies, dtype=float)) @ T.T
-            z_d = _interpolated_propagator(H0, H1, dt, n) @ z
-            return T.T @ z_d, (S - S.T) / (2.0 * dt), mode
+            return propagate_local_diabatization(z, old.energies, new.energies, new.overlap_prev,
+                                                 self.dt_au, self.substeps)
         if old.couplings is None or new.couplings is None:
             raise ValueError("the backend gives neither overlaps with the previous step nor coupling vectors; "
                              "nonadiabatic dynamics needs one of them")
-        s0 = np.einsum("klna,na->kl", np.asarray(old.couplings), V)
-        s1 = np.einsum("klna,na->kl", np.asarray(new.couplings), V)
-        H0 = np.diag(np.asarray(old.energies, dtype=float)) - 1j * s0
-        H1 = np.diag(np.asarray(new.energies, dtype=float)) - 1j * s1
-        return _interpolated_propagator(H0, H1, dt, n) @ z, 0.5 * (s0 + s1), mode
+        return propagate_with_couplings(z, old.energies, new.energies, old.couplings, new.couplings, V,
+                                        self.dt_au, self.substeps)
 
     def step(self) -> None:
         """Advance the trajectory by one time step (one backend call)."""
@@ -479,36 +384,22 @@ class MappingDynamics(MolecularDynamics):
         P_half = st.momenta + 0.5 * dt * F_open
         V = P_half / self._M
         R_new = st.positions + dt * V
-        try:
-            new = self._call_backend(R_new, st.result.guess, True)
-        except BackendError as exc:
-            if self.on_backend_error == "raise":
-                raise
-            st.stopped, st.stop_reason = True, f"backend failure at step {st.step + 1}: {exc}"
+        new = self._step_backend(st, R_new)
+        if new is None:
             return
-        if new.gradients is None:
-            raise ValueError("the backend returned no gradients with need_gradients=True")
-        z, sigma_mid, _ = self._propagate_oscillators(st.result, new, st.x + 1j * st.p, V)
-        t_new = (st.step + 1) * dt
+        z, sigma_mid = self._propagate_oscillators(st.result, new, st.x + 1j * st.p, V)
         history = st.sigma_history
         if new.couplings is None:
             history = (history + [(st.time + 0.5 * dt, sigma_mid, V.copy())])[-2:]
         x, p = z.real.copy(), z.imag.copy()
+        t_new = (st.step + 1) * dt
         F_new = self._force(new, x, p, st.gamma_adjusted, t_new, history, -0.5 * dt)  # closing kick
         self._check_gap_resolution(st, new.energies, sigma_mid)
         st.momenta = P_half + 0.5 * dt * F_new
         st.positions, st.x, st.p, st.result, st.force = R_new, x, p, new, F_new
-        st.sigma_history = history
-        st.step += 1
-        st.time = t_new
-        self._last_sigma = sigma_mid
-        drift = self._total_energy(st) - st.energy_reference
-        if self.drift_threshold is not None and st.drift_flag is None and abs(drift) > self.drift_threshold:
-            st.drift_flag = {"step": st.step, "time_au": st.time, "drift_Eh": drift,
-                             "threshold_Eh": self.drift_threshold}
-            if self.stop_on_drift:
-                st.stopped = True
-                st.stop_reason = f"energy drift {drift:.3e} Eh exceeds {self.drift_threshold:.3e} Eh at step {st.step}"
+        st.sigma_history, st.step, st.time = history, st.step + 1, t_new
+        self.step_sigma = sigma_mid
+        self.drift_monitor.check(st, self._total_energy(st) - st.energy_reference)
         self.timings["steps"] += 1
         self.timings["step_seconds"] += _time.perf_counter() - t_start
 
@@ -532,7 +423,7 @@ class MappingDynamics(MolecularDynamics):
                 break
             self.nsteps = self._state.step
             self._sync_atoms()
-            if self.nsteps % self.record_interval == 0:
+            if self.recorder.due(self.nsteps):
                 self._record_frame()
             self.log()
             self.call_observers()
@@ -589,6 +480,15 @@ class MappingDynamics(MolecularDynamics):
                 "warnings": list(st.warnings), "drift_flag": copy.deepcopy(st.drift_flag),
                 "stopped": st.stopped, "stop_reason": st.stop_reason, "steps": st.step}
 
+    @property
+    def frames(self) -> list[dict]:
+        """Recorded frames (see the class docstring); the recorder's list, cleared by checkpoint writers."""
+        return self.recorder.frames
+
+    @frames.setter
+    def frames(self, value: list[dict]) -> None:
+        self.recorder.frames = value
+
     def actions(self) -> np.ndarray:
         """Adiabatic oscillator actions e_k (F,) (dimensionless)."""
         return actions(self._state.x[None], self._state.p[None])[0]
@@ -597,68 +497,23 @@ class MappingDynamics(MolecularDynamics):
         """Conserved MMST energy Σ P²/2M + Σ_k ρ_kk E_k in Eh."""
         return self._total_energy(self._state)
 
-    def _populations(self, e: np.ndarray) -> tuple[np.ndarray, int]:
-        if self.options.method == "ehrenfest":
-            return e / e.sum(), -1
-        ind = window_indicators(e[None], self.options)[0]
-        return ind.astype(float), int(window_assignment(e[None], self.options)[0])
-
     def _record_frame(self) -> None:
         st = self._state
-        e = self.actions()
-        pops, window = self._populations(e)
-        r = st.result
-        rho = self.density(st.x, st.p, st.gamma_adjusted)
-        kin = 0.5 * float(np.sum(st.momenta ** 2 / self._M))
-        sigma = getattr(self, "_last_sigma", None)
-        if st.step == 0 and st.sigma_history:
-            sigma = st.sigma_history[-1][1]
-        self.frames.append({
-            "step": st.step, "time_au": st.time,
-            "positions_bohr": st.positions.copy(), "momenta_au": st.momenta.copy(),
-            "energies_Eh": np.asarray(r.energies, dtype=float).copy(),
-            "actions": e, "populations": pops, "window": window,
-            "kinetic_energy_Eh": kin, "potential_energy_Eh": float(np.dot(np.diag(rho), r.energies)),
-            "total_energy_Eh": kin + float(np.dot(np.diag(rho), r.energies)),
-            "drift_Eh": kin + float(np.dot(np.diag(rho), r.energies)) - st.energy_reference,
-            "coupling_norms": None if r.couplings is None else np.linalg.norm(
-                np.asarray(r.couplings).reshape(self.nstates, self.nstates, -1), axis=2),
-            "sigma": None if sigma is None else np.array(sigma),
-            "min_overlap": r.diagnostics.get("min_overlap"), "swap": bool(r.diagnostics.get("swap", False)),
-            "permutation": r.diagnostics.get("permutation"),
-        })
+        self.recorder.record(st, self.density(st.x, st.p, st.gamma_adjusted), self.step_sigma)
 
     def _sync_atoms(self) -> None:
         st = self._state
         self.atoms.set_positions(st.positions * units.Bohr)
-        self.atoms.set_momenta(st.momenta / _ASE_MOMENTUM_IN_AU)
+        self.atoms.set_momenta(st.momenta / ASE_MOMENTUM_IN_AU)
         rho = self.density(st.x, st.p, st.gamma_adjusted)
-        epot = float(np.dot(np.diag(rho), st.result.energies)) * units.Hartree
+        epot = mapping_potential_energy(rho, st.result.energies) * units.Hartree
         self.atoms.calc = SinglePointCalculator(self.atoms, energy=epot,
                                                 forces=st.force * units.Hartree / units.Bohr)
 
     def frame_atoms(self, frame: dict) -> Atoms:
         """An ase.Atoms of a recorded frame (Å, ASE momenta) with its electronic data in ``info``."""
-        a = Atoms(self.atoms.get_chemical_symbols(), positions=frame["positions_bohr"] * units.Bohr,
-                  masses=self.masses_au / AMU_IN_ME, pbc=False)
-        a.set_momenta(frame["momenta_au"] / _ASE_MOMENTUM_IN_AU)
-        a.info.update({"step": int(frame["step"]), "time_fs": frame["time_au"] * units.AUT / units.fs,
-                       "energies_Eh": frame["energies_Eh"], "actions": frame["actions"],
-                       "populations": frame["populations"], "window": int(frame["window"]),
-                       "total_energy_Eh": frame["total_energy_Eh"]})
-        if frame["coupling_norms"] is not None:
-            iu = np.triu_indices(self.nstates, 1)
-            a.info["coupling_norms_upper"] = frame["coupling_norms"][iu]
-        return a
+        return frame_atoms(frame, self.atoms.get_chemical_symbols(), self.masses_au)
 
     def write_geometries(self, path: str) -> None:
         """Write all recorded frames as extxyz (atomically: temp file, fsync, os.replace)."""
-        from ase.io import write
-
-        path = os.fspath(path)
-        tmp = path + ".tmp"
-        with open(tmp, "w") as fh:
-            write(fh, [self.frame_atoms(f) for f in self.frames], format="extxyz")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
+        write_frames_extxyz(path, [self.frame_atoms(f) for f in self.frames])

@@ -1,0 +1,127 @@
+"""What the on-the-fly driver records beside the propagation: frames, the drift policy, extxyz files.
+
+Frames are plain dicts in atomic units (keys listed in :class:`FrameRecorder`); :func:`frame_atoms`
+turns one into an ``ase.Atoms`` (Å, ASE momenta) and :func:`write_frames_extxyz` writes them.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from typing import TYPE_CHECKING
+
+import numpy as np
+from ase import Atoms, units
+
+from mapdyn.core.adiabatic import mapping_potential_energy, nuclear_kinetic_energy
+from mapdyn.core.mapping import actions
+from mapdyn.core.options import MethodOptions
+from mapdyn.core.populations import population_weights
+from mapdyn.core.windows import window_assignment
+from mapdyn.files import atomic_open
+from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
+
+if TYPE_CHECKING:
+    from mapdyn.driver.dynamics import DriverState
+
+__all__ = ["FrameRecorder", "DriftMonitor", "frame_atoms",
+           "write_frames_extxyz"]
+
+def state_populations(e: np.ndarray, options: MethodOptions) -> tuple[np.ndarray, int]:
+    """Populations (F,) from actions e (F,) and the window index: SQC indicators 0/1 and the
+    assigned window (−1 = none), or e_k/Σe and −1 for Ehrenfest (weights of
+    :func:`mapdyn.core.populations.population_weights`)."""
+    w = population_weights(e[None], options)[0]
+    if options.method == "ehrenfest":
+        return w / w.sum(), -1
+    return w, int(window_assignment(e[None], options)[0])
+
+
+@dataclasses.dataclass
+class FrameRecorder:
+    """Records one frame dict per call into :attr:`frames` (atomic units).
+
+    Keys: ``step``, ``time_au``, ``positions_bohr`` (N, 3), ``momenta_au`` (N, 3), ``energies_Eh``
+    (F,), ``actions`` (F,), ``populations`` (F,), ``window``, ``kinetic_energy_Eh``,
+    ``potential_energy_Eh``, ``total_energy_Eh``, ``drift_Eh``, ``coupling_norms`` (F, F) |d_kl| in
+    1/Bohr or None, ``sigma`` (F, F) mid-step σ in 1/a.u. time or None, ``min_overlap``, ``swap``,
+    ``permutation``.  masses_au: (N,) electron masses.
+    """
+
+    options: MethodOptions
+    masses_au: np.ndarray
+    interval: int = 1
+    frames: list = dataclasses.field(default_factory=list)
+
+    def due(self, step: int) -> bool:
+        return step % self.interval == 0
+
+    def record(self, st: DriverState, rho: np.ndarray, sigma: np.ndarray | None) -> None:
+        """Append the frame of ``st`` with density ρ (F, F) and the mid-step σ of the last step."""
+        e = actions(st.x[None], st.p[None])[0]
+        pops, window = state_populations(e, self.options)
+        r = st.result
+        kin = nuclear_kinetic_energy(st.momenta, self.masses_au)
+        pot = mapping_potential_energy(rho, r.energies)
+        nstates = len(e)
+        self.frames.append({
+            "step": st.step, "time_au": st.time,
+            "positions_bohr": st.positions.copy(), "momenta_au": st.momenta.copy(),
+            "energies_Eh": np.asarray(r.energies, dtype=float).copy(),
+            "actions": e, "populations": pops, "window": window,
+            "kinetic_energy_Eh": kin, "potential_energy_Eh": pot,
+            "total_energy_Eh": kin + pot, "drift_Eh": kin + pot - st.energy_reference,
+            "coupling_norms": None if r.couplings is None else np.linalg.norm(
+                np.asarray(r.couplings).reshape(nstates, nstates, -1), axis=2),
+            "sigma": None if sigma is None else np.array(sigma),
+            "min_overlap": r.diagnostics.get("min_overlap"), "swap": bool(r.diagnostics.get("swap", False)),
+            "permutation": r.diagnostics.get("permutation"),
+        })
+
+
+@dataclasses.dataclass
+class DriftMonitor:
+    """Flags (and optionally stops) a trajectory whose |E(t) − E(0)| exceeds ``threshold`` (Eh).
+
+    threshold None: monitor only.  The first crossing is recorded in ``state.drift_flag``
+    ({step, time_au, drift_Eh, threshold_Eh}); with ``stop`` the state is marked stopped.
+    """
+
+    threshold: float | None
+    stop: bool = False
+
+    def check(self, st: DriverState, drift: float) -> None:
+        """Apply the policy to ``st`` for the current drift (Eh)."""
+        if self.threshold is None or st.drift_flag is not None or not abs(drift) > self.threshold:
+            return
+        st.drift_flag = {"step": st.step, "time_au": st.time, "drift_Eh": drift, "threshold_Eh": self.threshold}
+        if self.stop:
+            st.stopped = True
+            st.stop_reason = f"energy drift {drift:.3e} Eh exceeds {self.threshold:.3e} Eh at step {st.step}"
+
+
+def frame_atoms(frame: dict, symbols: list[str], masses_au: np.ndarray) -> Atoms:
+    """An ase.Atoms of a recorded frame (Å, ASE momenta) with its electronic data in ``info``.
+
+    ``info``: step, time_fs, energies_Eh, actions, populations, window, total_energy_Eh and, with
+    coupling vectors, coupling_norms_upper (upper triangle of |d_kl|, 1/Bohr).
+    """
+    a = Atoms(symbols, positions=frame["positions_bohr"] * units.Bohr,
+              masses=masses_au / AMU_IN_ME, pbc=False)
+    a.set_momenta(frame["momenta_au"] / ASE_MOMENTUM_IN_AU)
+    a.info.update({"step": int(frame["step"]), "time_fs": frame["time_au"] * units.AUT / units.fs,
+                   "energies_Eh": frame["energies_Eh"], "actions": frame["actions"],
+                   "populations": frame["populations"], "window": int(frame["window"]),
+                   "total_energy_Eh": frame["total_energy_Eh"]})
+    if frame["coupling_norms"] is not None:
+        iu = np.triu_indices(len(frame["energies_Eh"]), 1)
+        a.info["coupling_norms_upper"] = frame["coupling_norms"][iu]
+    return a
+
+
+def write_frames_extxyz(path: str | os.PathLike, images: list[Atoms]) -> None:
+    """Write ``images`` as extxyz, atomically (:func:`mapdyn.files.atomic_open`)."""
+    from ase.io import write
+
+    with atomic_open(path, "w") as fh:
+        write(fh, images, format="extxyz")
