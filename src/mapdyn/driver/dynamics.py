@@ -60,6 +60,7 @@ from mapdyn.core.mapping import actions, effective_density
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.windows import sample_mapping_variables
 from mapdyn.driver.observers import DriftMonitor, FrameRecorder, frame_atoms, write_frames_extxyz
+from mapdyn.driver.state import DriverState
 from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
@@ -67,43 +68,6 @@ __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
 
 _PROPAGATIONS = ("auto", "overlap", "coupling")
 _ON_ERROR = ("raise", "stop")
-
-
-@dataclasses.dataclass
-class DriverState:
-    """Everything needed to continue a trajectory exactly (atomic units).
-
-    step : steps taken; time : a.u.; positions (N, 3) Bohr; momenta (N, 3) kinetic momenta a.u.;
-    x, p : (F,) mapping variables in the adiabatic basis of ``positions``; gamma_adjusted : (F,)
-    or None; result : the backend result at ``positions`` (its ``guess`` warm-starts the next
-    call); force : (N, 3) Eh/Bohr at ``positions``; sigma_history : up to two
-    (time a.u., σ (F, F) 1/a.u. time, velocity (N, 3) Bohr/a.u. time) mid-step entries;
-    energy_reference : Eh at step 0; drift_flag : None or {step, time_au, drift_Eh}; stopped,
-    stop_reason; rng_state : the trajectory generator's state after the initial draws (or None);
-    warnings : messages issued once per run; settings : what the state was made with (checked on
-    restore).
-    """
-
-    step: int
-    time: float
-    positions: np.ndarray
-    momenta: np.ndarray
-    x: np.ndarray
-    p: np.ndarray
-    gamma_adjusted: np.ndarray | None
-    result: ElectronicResult
-    force: np.ndarray
-    sigma_history: list
-    energy_reference: float
-    drift_flag: dict | None = None
-    stopped: bool = False
-    stop_reason: str | None = None
-    rng_state: dict | None = None
-    warnings: list = dataclasses.field(default_factory=list)
-    settings: dict = dataclasses.field(default_factory=dict)
-
-    def copy(self) -> "DriverState":
-        return copy.deepcopy(self)
 
 
 class MappingDynamics(MolecularDynamics):

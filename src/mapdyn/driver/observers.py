@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import dataclasses
 import os
-from typing import TYPE_CHECKING
 
 import numpy as np
 from ase import Atoms, units
@@ -18,11 +17,9 @@ from mapdyn.core.mapping import actions
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.populations import population_weights
 from mapdyn.core.windows import window_assignment
+from mapdyn.driver.state import DriverState
 from mapdyn.files import atomic_open
 from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
-
-if TYPE_CHECKING:
-    from mapdyn.driver.dynamics import DriverState
 
 __all__ = ["FrameRecorder", "DriftMonitor", "frame_atoms",
            "write_frames_extxyz"]
