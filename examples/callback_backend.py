@@ -27,9 +27,9 @@ import numpy as np
 from ase import units
 
 from mapdyn.backends.callback import CallbackBackend
-from mapdyn.driver.dynamics import MappingDynamics
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.sampling import trajectory_generator
+from mapdyn.driver.dynamics import MappingDynamics
 
 D, A_MORSE, R_E = 0.10, 1.0, 2.5          # Eh, 1/Bohr, Bohr
 C_REP, A_REP, B_REP, R_0 = 0.03, 0.25, 1.2, 2.0

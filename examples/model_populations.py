@@ -8,10 +8,10 @@ prints the final adiabatic populations for three momenta and each method.  Runs 
 
 import numpy as np
 
-from mapdyn.models.tully import SimpleAvoidedCrossing
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.propagators import run_diabatic
 from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+from mapdyn.models.tully import SimpleAvoidedCrossing
 
 
 def main() -> None:

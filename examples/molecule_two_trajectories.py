@@ -16,11 +16,11 @@ import numpy as np
 from ase import Atoms, units
 
 from mapdyn.backends.pyscf.casscf import CASSCFBackend
-from mapdyn.driver.dynamics import MappingDynamics
-from mapdyn.initial.sampling import compute_hessian, draw_wigner, normal_modes, optimize_ground_state
 from mapdyn.backends.pyscf.ground_state import PySCFGroundState
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.sampling import trajectory_generator
+from mapdyn.driver.dynamics import MappingDynamics
+from mapdyn.initial.sampling import compute_hessian, draw_wigner, normal_modes, optimize_ground_state
 
 BOHR = units.Bohr  # Å per Bohr
 

@@ -226,7 +226,7 @@ def _cmd_resume(args) -> int:
 
     try:
         study = _open_study(args.folder)
-        study.config
+        _ = study.config  # reads and checks the stored input before any work
     except (StudyError, ConfigError) as err:
         return _error(str(err))
     return _execute(study, args)

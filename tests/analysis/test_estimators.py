@@ -235,8 +235,8 @@ def test_geometric_observables_match_ase_atoms_methods():
         for j in range(ts.ntraj):
             for t in range(ts.times.size):
                 atoms = Atoms("COHH", positions=ts.positions[j, t] * Bohr)
-                ref = {"distance": lambda: atoms.get_distance(0, 1), "angle": lambda: atoms.get_angle(0, 1, 2),
-                       "dihedral": lambda: atoms.get_dihedral(0, 1, 2, 3)}[obs.kind]()
+                ref = {"distance": lambda: atoms.get_distance(0, 1), "angle": lambda: atoms.get_angle(0, 1, 2),  # noqa: B023
+                       "dihedral": lambda: atoms.get_dihedral(0, 1, 2, 3)}[obs.kind]()  # noqa: B023
                 assert vals[j, t] == pytest.approx(ref, rel=1e-10, abs=1e-9)   # reference library: ASE
         series = A.observable_series(ts, obs)
         np.testing.assert_allclose(series.mean, vals.mean(axis=0), rtol=1e-12)
@@ -499,8 +499,9 @@ batch = 15
 [analysis]
 n_resamples = 99
 lifetime_resamples = 10
-products = {"transmitted on 1" = [{coordinate = 0, above = 0.0}, {state = 1}], "transmitted on 0" = [{coordinate = 0, above = 0.0}, {state = 0}], reflected = [{coordinate = 0, below = 0.0}]}
-"""
+""" + (
+    'products = {"transmitted on 1" = [{coordinate = 0, above = 0.0}, {state = 1}], '
+    '"transmitted on 0" = [{coordinate = 0, above = 0.0}, {state = 0}], reflected = [{coordinate = 0, below = 0.0}]}\n')
 
 
 def test_study_folder_load_analyze_and_cli(tmp_path):

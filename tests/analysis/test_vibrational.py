@@ -89,10 +89,10 @@ def test_centrifugal_term_isotropic_oscillator():
     # a random point between the turning points of V_eff
     r, pr = [], []
     for Ek, Lk in zip(E, L):
-        veff = lambda x: 0.5 * mu * omega ** 2 * x ** 2 + Lk ** 2 / (2 * mu * x ** 2)
+        veff = lambda x, Lk=Lk: 0.5 * mu * omega ** 2 * x ** 2 + Lk ** 2 / (2 * mu * x ** 2)
         rmin = np.sqrt(Lk / (mu * omega)) if Lk > 0 else 1e-2
-        lo = optimize.brentq(lambda x: veff(x) - Ek, 1e-3, rmin) if Lk > 0 else 1e-2
-        hi = optimize.brentq(lambda x: veff(x) - Ek, rmin, 50.0)
+        lo = optimize.brentq(lambda x, f=veff, E=Ek: f(x) - E, 1e-3, rmin) if Lk > 0 else 1e-2
+        hi = optimize.brentq(lambda x, f=veff, E=Ek: f(x) - E, rmin, 50.0)
         rk = rng.uniform(lo, hi)
         r.append(rk)
         pr.append(np.sqrt(2 * mu * (Ek - veff(rk))))

@@ -1,4 +1,5 @@
-"""Any diabatic model of the core as an adiabatic electronic backend (docs/architecture.md#backend-contract, docs/theory.md#adiabatic-representation, docs/theory.md#local-diabatization).
+"""Any diabatic model of the core as an adiabatic electronic backend (docs/architecture.md#backend-contract,
+docs/theory.md#adiabatic-representation, docs/theory.md#local-diabatization).
 
 Atomic units: positions in Bohr, energies in Eh, gradients in Eh/Bohr, couplings in 1/Bohr.
 

@@ -7,7 +7,8 @@ Meyer & Miller, J. Chem. Phys. 70, 3214 (1979); Stock & Thoss, Phys. Rev. Lett. 
 
     H = Σ P²/2M + Σ_kl ρ_kl H_kl(R),   ρ_kl = ½(x_k x_l + p_k p_l) − γ_k δ_kl
 
-with the zero-point parameters γ_k chosen by the zero-point treatment (docs/theory.md#method-options, docs/theory.md#mapping-hamiltonian, docs/theory.md#zero-point-treatments):
+with the zero-point parameters γ_k chosen by the zero-point treatment (docs/theory.md#mapping-hamiltonian,
+docs/theory.md#zero-point-treatments):
 
 * ``fixed``:        γ_k = γ (one number, plain MMST form);
 * ``symmetrized``:  γ_k = (Σ_m e_m − 1)/F (trace-subtracted form, Tr ρ = 1; Cotton & Miller,

@@ -398,7 +398,7 @@ class MappingDynamics(MolecularDynamics):
     def run(self, steps: int = 50) -> bool:
         """Run ``steps`` steps (fewer if the trajectory stops); True when all were taken."""
         done = steps == 0
-        for done in self.irun(steps):
+        for done in self.irun(steps):  # noqa: B007 - the generator's last value is the answer
             pass
         return bool(done) and not self._state.stopped
 

@@ -263,7 +263,8 @@ def absorption_spectrum(excitation_energies_hartree: np.ndarray, oscillator_stre
     exc = np.asarray(excitation_energies_hartree, dtype=float)
     f = np.asarray(oscillator_strengths, dtype=float)
     if exc.ndim != 2 or f.shape != exc.shape or exc.size == 0:
-        raise ValueError(f"excitation_energies_hartree and oscillator_strengths must both have shape (n, F-1), got {exc.shape} and {f.shape}")
+        raise ValueError("excitation_energies_hartree and oscillator_strengths must both have shape (n, F-1), "
+                         f"got {exc.shape} and {f.shape}")
     if line_shape not in _SHAPES:
         raise ValueError(f"line_shape must be one of {_SHAPES}, got {line_shape!r}")
     if not (np.isfinite(fwhm_ev) and fwhm_ev > 0):

@@ -43,7 +43,7 @@ import numpy as np
 
 from mapdyn.files import atomic_write
 
-__all__ = ["CheckpointError", "write_h5", "read_h5", "file_digest", 
+__all__ = ["CheckpointError", "write_h5", "read_h5", "file_digest",
            "frames_to_arrays", "TrajectoryStore", "RestartPoint", "STATE_FILE", "PREVIOUS_STATE_FILE",
            "FORMAT_VERSION"]
 

@@ -265,7 +265,8 @@ def _parse_molecule(sec: Section, base_dir: str) -> MoleculeConfig:
                     or not all(isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) for v in row[1:])):
                 raise ConfigError("molecule.atoms", f"row {j} = {show_value(row)}: must be [symbol, x, y, z] with numbers")
             if row[0] not in atomic_numbers or row[0] == "X":
-                raise ConfigError("molecule.atoms", f"row {j}: unknown element {row[0]!r}{did_you_mean(row[0], [s for s in atomic_numbers if s != 'X'])}")
+                elements = [s for s in atomic_numbers if s != 'X']
+                raise ConfigError("molecule.atoms", f"row {j}: unknown element {row[0]!r}{did_you_mean(row[0], elements)}")
             symbols_l.append(row[0])
             pos_l.append([float(v) for v in row[1:]])
         symbols = tuple(symbols_l)
@@ -358,7 +359,8 @@ def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: s
 
             allowed = [p for p in inspect.signature(type(tully_model(name)).__init__).parameters if p != "self"]
             bad = next((k for k in params if k not in allowed), "?")
-            raise ConfigError(f"electronic.parameters.{bad}", f" is not a parameter of {name}{did_you_mean(bad, allowed)}; allowed: {', '.join(allowed)}") from None
+            raise ConfigError(f"electronic.parameters.{bad}", f" is not a parameter of {name}{did_you_mean(bad, allowed)}; "
+                              f"allowed: {', '.join(allowed)}") from None
         states = sec.integer("states", model.nstates, what="an integer")
         if states != model.nstates:
             raise ConfigError("electronic.states", f"= {states}: model {name} has {model.nstates} states")

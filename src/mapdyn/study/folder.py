@@ -37,7 +37,7 @@ from mapdyn.study.checkpoint import (
 )
 from mapdyn.study.config import ConfigError, StudyConfig, load_study_config
 
-__all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus", 
+__all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus",
            "write_json", "read_json", "STUDY_TOML", "MANIFEST",
            "INITIAL_CONDITIONS"]
 

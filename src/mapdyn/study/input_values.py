@@ -64,7 +64,8 @@ def parse_duration(text: Any, key: str = "duration") -> float:
     elif unit in ("au", "aut"):
         au = value
     else:
-        raise ConfigError(key, f"= {show_value(text)}: unknown time unit {written!r}; use fs, as, ps or au{did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
+        raise ConfigError(key, f"= {show_value(text)}: unknown time unit {written!r}; use fs, as, ps or au"
+                                f"{did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
     if not math.isfinite(au) or au <= 0:
         raise ConfigError(key, f"= {show_value(text)}: must be a positive duration, e.g. \"0.5 fs\"")
     return float(au)

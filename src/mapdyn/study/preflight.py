@@ -7,7 +7,7 @@ outcome is a list of verdict lines (``PASS``, ``WARN``, ``FAIL``, ``INFO``).
 
 Finite differences (atomic units; positions in Bohr, energies in Eh, gradients in Eh/Bohr,
 couplings in 1/Bohr).  For a coordinate q and step h, with all displaced calls warm-started from
-the reference result at R0 so that their states carry its phases (docs/architecture.md#backend-contract, docs/theory.md#local-diabatization):
+the reference result at R0 so that their states carry its phases (docs/theory.md#state-matching-and-phases):
 
     ∂E_k/∂q ≈ [E_k(R0 + h e_q) − E_k(R0 − h e_q)] / (2h)                       (central difference)
     d_kl,q = ⟨ψ_k|∂ψ_l/∂q⟩ ≈ [S_kl(+h) − S_kl(−h)] / (2h),  S_kl(±h) = ⟨ψ_k(R0)|ψ_l(R0 ± h e_q)⟩

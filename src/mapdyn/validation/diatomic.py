@@ -17,7 +17,7 @@ Everything inside is in Hartree atomic units (bond length r in Bohr, energies in
    what matches finite differences of state overlaps, docs/theory.md#pyscf-pitfalls).
    Sign continuity: the scan starts cold at ``start_distance`` and walks outward, then inward,
    each point warm-started from its neighbour; the backend aligns the sign of every state with
-   its overlap with the neighbour's state (docs/architecture.md#backend-contract, docs/theory.md#local-diabatization), so d_r keeps one phase convention
+   its overlap with the neighbour's state (docs/theory.md#state-matching-and-phases), so d_r keeps one phase convention
    along the whole scan.  The smallest aligned overlap of each step is stored.
 2. **Diabatization** (:func:`adt_angle`): with the adiabatic states written in the diabatic basis as
    ψ_1 = cos θ φ_1 − sin θ φ_2, ψ_2 = sin θ φ_1 + cos θ φ_2, the derivative coupling is
