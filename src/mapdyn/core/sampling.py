@@ -73,6 +73,25 @@ def _as_dof_vector(name: str, value, ndof: int, positive: bool = False) -> np.nd
     return v
 
 
+
+def gaussian_phase_space(R0: np.ndarray, sR: np.ndarray, P0: np.ndarray, sP: np.ndarray, nstates: int,
+                         initial_state: int, options: MethodOptions, ntraj: int, seed: int,
+                         first_index: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Independent Gaussian draws R = R0 + σ_R ξ, P = P0 + σ_P ξ' (a.u.) and mapping variables in
+    the initial window, trajectory j from stream ``first_index + j`` in the order coordinates,
+    momenta, actions, angles (docs/architecture.md#random-streams).  Returns R, P (n, D), x, p (n, F)."""
+    D = R0.shape[0]
+    R = np.empty((ntraj, D))
+    P = np.empty((ntraj, D))
+    x = np.empty((ntraj, nstates))
+    p = np.empty((ntraj, nstates))
+    for j in range(ntraj):
+        rng = trajectory_generator(seed, first_index + j)
+        R[j] = R0 + sR * rng.standard_normal(D)
+        P[j] = P0 + sP * rng.standard_normal(D)
+        x[j], p[j] = sample_mapping_variables(rng, nstates, initial_state, options)
+    return R, P, x, p
+
 def gaussian_wavepacket_ensemble(model: DiabaticModel, ntraj: int, seed: int, position, momentum,
                                  position_width, initial_state: int, options: MethodOptions,
                                  basis: str = "adiabatic", first_index: int = 0) -> EnsembleState:
@@ -94,15 +113,7 @@ def gaussian_wavepacket_ensemble(model: DiabaticModel, ntraj: int, seed: int, po
     k = _as_dof_vector("momentum", momentum, D)
     sR = _as_dof_vector("position_width", position_width, D, positive=True)
     sP = np.where(sR > 0, 0.5 / np.where(sR > 0, sR, 1.0), 0.0)
-    R = np.empty((ntraj, D))
-    P = np.empty((ntraj, D))
-    x = np.empty((ntraj, F))
-    p = np.empty((ntraj, F))
-    for j in range(ntraj):
-        rng = trajectory_generator(seed, first_index + j)
-        R[j] = R0 + sR * rng.standard_normal(D)
-        P[j] = k + sP * rng.standard_normal(D)
-        x[j], p[j] = sample_mapping_variables(rng, F, initial_state, options)
+    R, P, x, p = gaussian_phase_space(R0, sR, k, sP, F, initial_state, options, ntraj, seed, first_index)
     occ = np.zeros((ntraj, F))
     occ[:, initial_state] = 1.0
     if basis == "adiabatic":

@@ -20,8 +20,7 @@ from __future__ import annotations
 import numpy as np
 
 from mapdyn.core.options import MethodOptions
-from mapdyn.core.sampling import EnsembleState, trajectory_generator
-from mapdyn.core.windows import sample_mapping_variables
+from mapdyn.core.sampling import EnsembleState, gaussian_phase_space
 from mapdyn.models.vibronic import LinearVibronicModel
 
 __all__ = [
@@ -302,15 +301,7 @@ def thermal_bath_ensemble(model: LinearVibronicModel, ntraj: int, seed: int, bet
         Q0 = np.asarray(bath_center, dtype=float)
         if Q0.shape != (D,) or not np.all(np.isfinite(Q0)):
             raise ValueError(f"bath_center must be 'zero', 'donor' or a finite array of shape ({D},), got shape {Q0.shape}")
-    R = np.empty((ntraj, D))
-    P = np.empty((ntraj, D))
-    x = np.empty((ntraj, F))
-    p = np.empty((ntraj, F))
-    for j in range(ntraj):
-        rng = trajectory_generator(seed, first_index + j)
-        R[j] = Q0 + sQ * rng.standard_normal(D)
-        P[j] = sP * rng.standard_normal(D)
-        x[j], p[j] = sample_mapping_variables(rng, F, initial_state, options)
+    R, P, x, p = gaussian_phase_space(Q0, sQ, np.zeros(D), sP, F, initial_state, options, ntraj, seed, first_index)
     gamma_adj = None
     if options.method == "sqc" and options.zero_point == "adjusted":
         occ = np.zeros((ntraj, F))
