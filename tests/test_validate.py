@@ -78,3 +78,13 @@ def test_swapped_windows_make_cases_fail(monkeypatch):
 def test_bad_trajectory_count():
     with pytest.raises(ValueError, match="ntraj"):
         validate.run_validation(TRIANGLE, quick=True, ntraj=3)
+
+
+def test_closed_channel_row_is_the_upper_transmission_against_zero():
+    """Tully 1 at k = 6: the upper adiabat (asymptotically 0.01 Eh above ε_0 = −0.01 Eh at both ends)
+    needs k ≥ √(2·2000·0.02) ≈ 8.9, far above the packet (σ_p = 0.15), so the exact value is 0
+    (also the energy-resolved solver's value, test_stationary.py); the row reports run_scattering's T1."""
+    case = _case("tully1 k=6 T1 (closed)")
+    exact, value, diff, err = case.run(TRIANGLE, 300, 3)
+    direct = run_scattering(tully_model("tully1"), 6.0, -12.0, 20.0 / 6.0, TRIANGLE, ntraj=300, seed=3)
+    assert exact == 0.0 and value == diff == direct.transmission[1] and err == direct.transmission_error[1]
