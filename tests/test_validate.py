@@ -36,7 +36,7 @@ def test_exact_agreement_row_is_the_stationary_solver_against_the_stored_wavepac
     case = _case("tully3 k=30 R0 stat/wp")
     exact, stored, diff, _ = case.run(TRIANGLE, 10, 0)
     ref = validate._load_npz("exact_scattering.npz")
-    i = [j for j, m in enumerate(ref["model"]) if m == "tully3" and ref["momentum"][j] == 30.0][0]
+    i = next(j for j, m in enumerate(ref["model"]) if m == "tully3" and ref["momentum"][j] == 30.0)
     assert stored == ref["reflection"][i, 0]
     assert exact == packet_probabilities(tully_model("tully3"), 30.0, float(ref["position_width"][i])).reflection[0]
     assert diff == abs(stored - exact) <= case.tolerance

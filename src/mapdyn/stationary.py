@@ -38,6 +38,7 @@ All quantities in Hartree atomic units (Bohr, a.u. of momentum, Eh).
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import math
 
 import numpy as np
@@ -139,7 +140,6 @@ def channel_probabilities(model: DiabaticModel, energy: float, lower: float, upp
     rhs[0] = -A[0] @ U_l[:, initial_state] * (1.0 / lam0 - 1.0 / mu_l[initial_state])
     bw = 2 * f - 1
     ab = np.zeros((2 * bw + 1, n * f), dtype=complex)
-    rows_in = np.arange(f)
     for s in range(f):
         for t in range(f):
             # diagonal block: row F n + s, column F n + t
@@ -148,7 +148,6 @@ def channel_probabilities(model: DiabaticModel, energy: float, lower: float, upp
             ab[bw + s - t - f, f * np.arange(1, n) + t] = A[1:, s, t]
             # lower block: row F (n+1) + s, column F n + t, value A_n[s, t]
             ab[bw + s - t + f, f * np.arange(n - 1) + t] = A[:-1, s, t]
-    del rows_in
     psi = scipy.linalg.solve_banded((bw, bw), ab, rhs.reshape(-1), check_finite=False).reshape(n, f)
 
     phi_l = U_l.T @ psi[0]
@@ -215,7 +214,7 @@ def packet_probabilities(model: DiabaticModel, momentum: float, position_width: 
                         | ({0.0} if p_lo == 0.0 else set()))
     cuts = [p_lo] + [t for t in thresholds if p_lo < t < p_hi] + [p_hi]
     ps, ws = [], []
-    for a, b in zip(cuts[:-1], cuts[1:]):
+    for a, b in itertools.pairwise(cuts):
         near_a = a in thresholds
         near_b = b in thresholds
         if near_a and near_b:
