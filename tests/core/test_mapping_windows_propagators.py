@@ -195,9 +195,10 @@ def test_square_window_is_a_box_of_half_width_gamma():
 
 
 def test_triangle_window_geometry():
-    """Two-state triangle: e_occ ∈ [1, 2], e_unocc ∈ [0, 2 − e_occ] (docs/theory.md#triangle-windows)."""
-    e = np.array([[1.5, 0.49], [1.5, 0.51], [0.99, 0.0], [1.0, 1.0 - 1e-9], [0.2, 1.7]])
-    assert window_assignment(e, TRIANGLE).tolist() == [0, -1, -1, 0, 1]
+    """Two-state triangle: e_occ ≥ 1 and e_unocc < 1 (docs/theory_windows.md); on the set reachable
+    from the sampled triangle (Σ e ≤ 2, conserved) this is e_occ ∈ [1, 2], e_unocc ∈ [0, 2 − e_occ]."""
+    e = np.array([[1.5, 0.49], [1.5, 0.5], [0.99, 0.0], [1.0, 1.0 - 1e-9], [0.2, 1.7], [1.0, 1.0]])
+    assert window_assignment(e, TRIANGLE).tolist() == [0, 0, -1, 0, 1, -1]
 
 
 def test_triangle_mean_actions_two_states():
@@ -209,12 +210,13 @@ def test_triangle_mean_actions_two_states():
     assert np.all(np.abs(e.mean(axis=0) - [4 / 3, 1 / 3]) < 4 * se)
 
 
-def test_pyramid_mean_actions_many_states():
-    """Our F-state choice (uniform in the unit pyramid): ⟨e_i⟩ = 1 + 1/(F+1), ⟨e_j⟩ = F/(2(F+1))."""
+def test_triangle_mean_actions_many_states():
+    """F-state triangle sampling (pairwise two-state triangle, docs/theory_windows.md): ⟨e_i⟩ = 4/3,
+    ⟨e_j⟩ = 1/3 = γ for every F."""
     rng = np.random.default_rng(2)
     f = 4
     e = np.array([sample_actions(rng, f, 0, TRIANGLE) for _ in range(40000)])
-    expected = np.array([1 + 1 / (f + 1)] + [f / (2 * (f + 1))] * (f - 1))
+    expected = np.array([4 / 3] + [1 / 3] * (f - 1))
     se = e.std(axis=0) / np.sqrt(len(e))
     assert np.all(np.abs(e.mean(axis=0) - expected) < 4 * se)
 

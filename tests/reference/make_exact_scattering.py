@@ -37,7 +37,7 @@ from mapdyn.validation.exact import ExactSettings, check_convergence
 OUT = Path(__file__).resolve().parents[2] / "src" / "mapdyn" / "data" / "exact_scattering.npz"
 START = {"tully1": -12.0, "tully2": -16.0, "tully3": -15.0, "wide_crossing": -85.0}
 TULLY_MOMENTA = {"tully1": (10.0, 13.0, 16.0, 20.0, 25.0, 30.0), "tully2": (16.0, 20.0, 25.0, 30.0, 40.0),
-                 "tully3": (5.0, 10.0, 12.0, 15.0, 20.0, 25.0)}
+                 "tully3": (5.0, 10.0, 12.0, 15.0, 20.0, 25.0, 30.0)}
 WIDE_CROSSING_SPEEDS = (0.015, 0.02, 0.03)  # speed at the crossing, a.u.
 WIDE_WIDTH = 5.0
 MASS, LZ_COUPLING, LZ_SLOPE = 2000.0, 0.003, 0.01

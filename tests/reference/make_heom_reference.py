@@ -1,4 +1,4 @@
-"""Exact HEOM reference data for the spin-boson and 7-site excitation-transfer validation cases.
+"""Exact HEOM reference data for the spin-boson, 7-site and 3-site excitation-transfer validation cases.
 
 Method: hierarchical equations of motion, Y. Tanimura & R. Kubo, J. Phys. Soc. Jpn. 58, 101 (1989),
 as implemented in QuTiP's ``qutip.solver.heom`` (QuTiP 5.x; reference library, test-only dependency).
@@ -88,6 +88,14 @@ def _sites7_hamiltonian_invcm() -> np.ndarray:
     return h
 
 
+def _sites3_hamiltonian_invcm() -> np.ndarray:
+    """3-site downhill chain of our own invention (cm⁻¹): site 1 → 2 → 3 with a weak 1–3 shortcut, so
+    that all three populations matter and the F-state windows are exercised with F = 3."""
+    return np.array([[200.0, 80.0, 20.0],
+                     [80.0, 100.0, -60.0],
+                     [20.0, -60.0, 0.0]])
+
+
 CASES: dict[str, dict] = {
     # energies in units of Δ, times in units of 1/Δ (ħ = 1): equivalently Hartree atomic units with Δ = 1 Eh
     "spin_boson_symmetric": dict(
@@ -108,6 +116,12 @@ CASES: dict[str, dict] = {
         temperature_k=300.0, t_max_fs=1000.0, n_times=201,
         shallow=dict(depth=4, n_matsubara=1), deep=dict(depth=5, n_matsubara=1),
         matsubara_check=dict(depth=4, n_matsubara=2),
+    ),
+    "sites3": dict(
+        kind="sites", h_invcm=_sites3_hamiltonian_invcm(), lam_invcm=50.0, omega_c_invcm=100.0,
+        temperature_k=300.0, t_max_fs=500.0, n_times=101,
+        shallow=dict(depth=5, n_matsubara=1), deep=dict(depth=7, n_matsubara=2),
+        matsubara_check=dict(depth=5, n_matsubara=3),
     ),
 }
 

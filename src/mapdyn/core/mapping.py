@@ -14,7 +14,8 @@ docs/theory.md#zero-point-treatments):
 * ``symmetrized``:  γ_k = (Σ_m e_m − 1)/F (trace-subtracted form, Tr ρ = 1; Cotton & Miller,
   J. Chem. Phys. 139, 234112 (2013), form from memory, algebra verified in tests);
 * ``adjusted``:     γ_k = e_k(0) − N_k, fixed per trajectory (Cotton & Miller, J. Chem. Phys. 150,
-  194110 (2019), formula from memory);
+  194110 (2019): per-trajectory zero point making the initial nuclear force that of the initial
+  state, as its abstract states; the per-state formula is from memory; docs/theory_windows.md §2);
 * Ehrenfest:        γ_k = 0 with Σ e = 1.
 """
 

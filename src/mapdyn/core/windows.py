@@ -6,13 +6,16 @@ Square windows (Cotton & Miller, J. Phys. Chem. A 117, 7190 (2013); formulas fro
     W_i(e) = Π_k h(γ − |e_k − γ − δ_ki|),   γ = (√3 − 1)/2,
 i.e. e_k ∈ [δ_ki, δ_ki + 2γ].
 
-Triangle windows (Cotton & Miller, J. Chem. Phys. 145, 144108 (2016) for F = 2; the F-state form
-follows Cotton & Miller, J. Chem. Phys. 150, 104101 (2019) as recalled, from memory, unverified):
-    W_i(e) = h(e_i − 1) · Π_{j≠i} h(e_j) h(2 − e_i − e_j),   γ = 1/3.
-For F = 2 this is exactly the two-state triangle (corner e = (1, 0), hypotenuse e_1 + e_2 = 2).
-For F > 2 the region is the "unit pyramid" e_i ∈ [1, 2], e_j ∈ [0, 2 − e_i]; we sample it
-uniformly, which gives ⟨e_i⟩ = 1 + 1/(F+1), ⟨e_j⟩ = F/(2(F+1)) (= 4/3, 1/3 for F = 2).  This is our
-documented choice for F > 2.
+Triangle windows, F states (Cotton & Miller, J. Chem. Phys. 145, 144108 (2016) for F = 2; the
+F-state generalisation of Cotton & Miller, J. Chem. Phys. 150, 104101 (2019); the published equations
+could not be checked here, the form below is recalled from memory and derived in docs/theory_windows.md):
+    W_i(e) = h(e_i − 1) · Π_{j≠i} h(1 − e_j),   γ = 1/3,
+and the initial actions of state i are drawn so that every pair (e_i, e_j) is uniform in the
+two-state triangle {e_i ≥ 1, e_j ≥ 0, e_i + e_j ≤ 2}:
+    e_i = 1 + u,  u ∈ [0, 1] with density 2(1 − u);   e_j = (1 − u) ξ_j,  ξ_j ~ U(0, 1) independent,
+so ⟨e_i⟩ = 4/3 = 1 + γ and ⟨e_j⟩ = 1/3 = γ for every F.  For F = 2 this is the two-state triangle: the
+sampled point is uniform in it, and because Σ_k e_k is conserved (≤ 2), a trajectory with e_i ≥ 1
+has e_j ≤ 1 and e_j ≥ 0 automatically.
 """
 
 from __future__ import annotations
@@ -39,7 +42,8 @@ def _check_state(nstates: int, initial_state: int) -> None:
 
 def sample_actions(rng: np.random.Generator, nstates: int, initial_state: int,
                    options: MethodOptions) -> np.ndarray:
-    """Actions e (F,) for one trajectory, uniform in the initial state's window.
+    """Actions e (F,) for one trajectory drawn in the initial state's window (square: uniform in the box;
+    triangle: the pairwise-triangle distribution of the module docstring).
 
     Draws exactly ``nstates`` uniforms from ``rng`` (so the stream position after the call does not
     depend on the window shape).  Ehrenfest: e = δ_{k,i} (the uniforms are still drawn).
@@ -52,8 +56,8 @@ def sample_actions(rng: np.random.Generator, nstates: int, initial_state: int,
         return occ
     if options.window == "square":
         return occ + 2.0 * options.window_gamma * xi
-    # unit pyramid: u = e_i − 1 has density ∝ (1 − u)^(F−1) → u = 1 − ξ^(1/F); e_j = (1 − u) ξ_j
-    one_minus_u = xi[initial_state] ** (1.0 / nstates)
+    # pairwise two-state triangle: 1 − u = √ξ_i has density 2(1 − u) (docs/theory_windows.md)
+    one_minus_u = np.sqrt(xi[initial_state])
     e = one_minus_u * xi
     e[initial_state] = 2.0 - one_minus_u
     return e
@@ -92,12 +96,11 @@ def window_indicators(e: np.ndarray, options: MethodOptions) -> np.ndarray:
             others = np.delete(empty, i, axis=1).all(axis=1)
             inside[:, i] = occupied[:, i] & others
         return inside
-    inside = np.empty((n, f), dtype=bool)
-    nonneg = e >= 0.0
-    for i in range(f):
-        pair_ok = nonneg & (e[:, i:i + 1] + e <= 2.0)
-        inside[:, i] = (e[:, i] >= 1.0) & np.delete(pair_ok, i, axis=1).all(axis=1)
-    return inside
+    occupied = e >= 1.0
+    below = ~occupied
+    n_below = below.sum(axis=1, keepdims=True)
+    # state i: e_i ≥ 1 and all F − 1 others < 1
+    return occupied & (n_below == f - 1)
 
 
 def window_assignment(e: np.ndarray, options: MethodOptions) -> np.ndarray:

@@ -14,6 +14,14 @@ Cases (each compares one number of the mapping method with its exact reference):
   is the largest |Δ⟨σz⟩| over the stored window; tolerance 0.1 (docs/theory.md#validation-benchmarks).
 * The real-diatomic case (SA-CASSCF potentials, ``data/diatomic_grid.npz``) when its cached grid and
   comparison module are present.
+* Closed channels ("(closed)" rows): upper-state transmission of Tully 1 at k = 6 and Tully 3 at
+  k = 20, energetically closed for every momentum within 8σ_P of k, so the exact value is 0 (checked
+  from the asymptotic energies when the row runs).  Tolerance 0.1 (the model-3 accuracy); measured
+  leakage per window and zero point is in docs/theory_windows.md §2.
+* Exact against exact ("stat/wp" rows): for every stored scattering case, the row's observable from
+  the energy-resolved solver :mod:`mapdyn.validation.stationary` (column "exact", computed when the row runs)
+  against the stored wavepacket value (column "method"); tolerance 1e-3.  These rows do not depend
+  on the method options.
 
 A case passes when |method − exact| ≤ tolerance; the standard error is printed beside it (the
 tolerances are ≥ 5 standard errors at the default ensemble sizes, so the statistical noise alone
@@ -146,6 +154,47 @@ def _diatomic_case() -> ValidationCase | None:
     return ValidationCase("KCl first pass P(ground)", run, 0.07, quick=False)
 
 
+CLOSED_CHANNEL_CASES = (("tully1", 6.0, -12.0), ("tully3", 20.0, -15.0))
+CLOSED_CHANNEL_TOLERANCE = 0.1
+EXACT_AGREEMENT_TOLERANCE = 1e-3
+
+
+def _closed_channel_case(model_name: str, k: float, x0: float) -> ValidationCase:
+    """Upper-state transmission where that channel is energetically closed (exact value 0)."""
+    sigma = 20.0 / k
+
+    def run(options: MethodOptions, ntraj: int, seed: int):
+        model = tully_model(model_name)
+        far = np.array([[-1e3], [1e3]])
+        e_far = model.adiabatic(far)[0]
+        p_max = k + 8.0 * 0.5 / sigma
+        if p_max ** 2 / (2 * float(model.masses[0])) + e_far[0, 0] >= e_far[1, 1]:
+            raise RuntimeError(f"{model_name} k={k:g}: the upper transmission channel is not closed")
+        res = run_scattering(model, k, x0, sigma, options, ntraj=ntraj, seed=seed)
+        value = float(res.transmission[1])
+        return 0.0, value, value, float(res.transmission_error[1])
+
+    return ValidationCase(f"{model_name} k={k:g} T1 (closed)", run, CLOSED_CHANNEL_TOLERANCE, quick=False)
+
+
+def _exact_agreement_case(ref: dict, i: int) -> ValidationCase:
+    """Energy-resolved solver against the stored wavepacket result on the row's observable."""
+    model_name = str(ref["model"][i])
+    channel, state = SCATTERING_OBSERVABLE[model_name]
+    k = float(ref["momentum"][i])
+    stored = float(ref[channel][i, state])
+
+    def run(options: MethodOptions, ntraj: int, seed: int):
+        from mapdyn.validation.stationary import packet_probabilities
+        r = packet_probabilities(tully_model(model_name), k, float(ref["position_width"][i]),
+                                 initial_state=int(ref["initial_state"][i]))
+        exact = float(getattr(r, channel)[state])
+        return exact, stored, abs(stored - exact), 0.0
+
+    label = f"{model_name} k={k:.3g} {channel[0].upper()}{state} stat/wp"
+    return ValidationCase(label, run, EXACT_AGREEMENT_TOLERANCE, quick=False)
+
+
 def builtin_cases() -> list[ValidationCase]:
     """All built-in cases whose reference data are present."""
     cases: list[ValidationCase] = []
@@ -166,6 +215,13 @@ def builtin_cases() -> list[ValidationCase]:
     c = _diatomic_case()
     if c is not None:
         cases.append(c)
+    cases.extend(_closed_channel_case(*args) for args in CLOSED_CHANNEL_CASES)
+    if ref is not None:
+        for i in range(len(ref["model"])):
+            c = _exact_agreement_case(ref, i)
+            # --quick keeps the near-threshold one (Tully 3, k = 30: upper transmission opens at k ≈ 28.3)
+            c.quick = str(ref["model"][i]) == "tully3" and float(ref["momentum"][i]) == 30.0
+            cases.append(c)
     return cases
 
 
