@@ -195,7 +195,7 @@ def test_square_window_is_a_box_of_half_width_gamma():
 
 
 def test_triangle_window_geometry():
-    """Two-state triangle: e_occ ≥ 1 and e_unocc < 1 (docs/theory_windows.md); on the set reachable
+    """Two-state triangle: e_occ ≥ 1 and e_unocc < 1 (docs/theory.md#triangle-windows-for-more-than-two-states); on the set reachable
     from the sampled triangle (Σ e ≤ 2, conserved) this is e_occ ∈ [1, 2], e_unocc ∈ [0, 2 − e_occ]."""
     e = np.array([[1.5, 0.49], [1.5, 0.5], [0.99, 0.0], [1.0, 1.0 - 1e-9], [0.2, 1.7], [1.0, 1.0]])
     assert window_assignment(e, TRIANGLE).tolist() == [0, 0, -1, 0, 1, -1]
@@ -211,7 +211,7 @@ def test_triangle_mean_actions_two_states():
 
 
 def test_triangle_mean_actions_many_states():
-    """F-state triangle sampling (pairwise two-state triangle, docs/theory_windows.md): ⟨e_i⟩ = 4/3,
+    """F-state triangle sampling (pairwise two-state triangle, docs/theory.md#triangle-windows-for-more-than-two-states): ⟨e_i⟩ = 4/3,
     ⟨e_j⟩ = 1/3 = γ for every F."""
     rng = np.random.default_rng(2)
     f = 4

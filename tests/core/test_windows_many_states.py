@@ -1,4 +1,4 @@
-"""F-state triangle windows and their sampling (docs/theory_windows.md).
+"""F-state triangle windows and their sampling (docs/theory.md#triangle-windows-for-more-than-two-states).
 
 Source of the construction: Cotton & Miller, J. Chem. Phys. 150, 104101 (2019), generalising the
 two-state triangle of J. Chem. Phys. 145, 144108 (2016); the published equations could not be checked

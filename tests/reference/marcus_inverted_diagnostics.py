@@ -8,7 +8,7 @@ Prints, for each driving force and zero-point treatment:
   (δ = ½Δ(e_2 − e_1)) and where those trajectories are read: acceptor window, donor window, no window.
 
     OMP_NUM_THREADS=1 python tests/reference/marcus_inverted_diagnostics.py [--ntraj 2000 --t-end 600]
-(about one minute per driving force and treatment on one core).  Numbers are in docs/theory_windows.md §4.
+(about one minute per driving force and treatment on one core).  Numbers are in docs/theory.md#marcus-inverted-regime.
 """
 from __future__ import annotations
 

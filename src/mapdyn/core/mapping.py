@@ -15,7 +15,7 @@ docs/theory.md#zero-point-treatments):
   J. Chem. Phys. 139, 234112 (2013), form from memory, algebra verified in tests);
 * ``adjusted``:     γ_k = e_k(0) − N_k, fixed per trajectory (Cotton & Miller, J. Chem. Phys. 150,
   194110 (2019): per-trajectory zero point making the initial nuclear force that of the initial
-  state, as its abstract states; the per-state formula is from memory; docs/theory_windows.md §2);
+  state, as its abstract states; the per-state formula is from memory; docs/theory.md#closed-channels);
 * Ehrenfest:        γ_k = 0 with Σ e = 1.
 """
 

@@ -8,7 +8,7 @@ i.e. e_k ∈ [δ_ki, δ_ki + 2γ].
 
 Triangle windows, F states (Cotton & Miller, J. Chem. Phys. 145, 144108 (2016) for F = 2; the
 F-state generalisation of Cotton & Miller, J. Chem. Phys. 150, 104101 (2019); the published equations
-could not be checked here, the form below is recalled from memory and derived in docs/theory_windows.md):
+could not be checked here, the form below is recalled from memory and derived in docs/theory.md#triangle-windows-for-more-than-two-states):
     W_i(e) = h(e_i − 1) · Π_{j≠i} h(1 − e_j),   γ = 1/3,
 and the initial actions of state i are drawn so that every pair (e_i, e_j) is uniform in the
 two-state triangle {e_i ≥ 1, e_j ≥ 0, e_i + e_j ≤ 2}:
@@ -56,7 +56,7 @@ def sample_actions(rng: np.random.Generator, nstates: int, initial_state: int,
         return occ
     if options.window == "square":
         return occ + 2.0 * options.window_gamma * xi
-    # pairwise two-state triangle: 1 − u = √ξ_i has density 2(1 − u) (docs/theory_windows.md)
+    # pairwise two-state triangle: 1 − u = √ξ_i has density 2(1 − u) (docs/theory.md#triangle-windows-for-more-than-two-states)
     one_minus_u = np.sqrt(xi[initial_state])
     e = one_minus_u * xi
     e[initial_state] = 2.0 - one_minus_u

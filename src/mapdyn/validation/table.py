@@ -17,7 +17,7 @@ Cases (each compares one number of the mapping method with its exact reference):
 * Closed channels ("(closed)" rows): upper-state transmission of Tully 1 at k = 6 and Tully 3 at
   k = 20, energetically closed for every momentum within 8σ_P of k, so the exact value is 0 (checked
   from the asymptotic energies when the row runs).  Tolerance 0.1 (the model-3 accuracy); measured
-  leakage per window and zero point is in docs/theory_windows.md §2.
+  leakage per window and zero point is in docs/theory.md#closed-channels.
 * Exact against exact ("stat/wp" rows): for every stored scattering case, the row's observable from
   the energy-resolved solver :mod:`mapdyn.validation.stationary` (column "exact", computed when the row runs)
   against the stored wavepacket value (column "method"); tolerance 1e-3.  These rows do not depend
