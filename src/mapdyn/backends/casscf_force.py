@@ -31,7 +31,7 @@ import numpy as np
 
 from .casscf_response import _DM2_SUBSCRIPTS, _dense_eri_pass, _intercept, _Tape
 
-__all__ = ["weighted_force", "weighted_active_densities"]
+__all__ = ["weighted_active_densities", "weighted_force"]
 
 #: |W| = |Σ_k ρ̄_kk| above which the core term is carried by scaling the active densities by 1/W
 #: (one gradient expression); below it the core term is evaluated separately.

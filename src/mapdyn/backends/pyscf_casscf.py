@@ -674,7 +674,7 @@ class CASSCFBackend:
         diagnostics["timings"] = timings
         new_guess = CASSCFGuess(positions_bohr=pos.copy(), mo_coeff=mo.copy(), ci=ci_aligned,
                                 energies=energies.copy(), signature=self.signature)
-        self._remember(new_guess, mc)
+        self._remember(new_guess, mc, signs)
         result = ElectronicResult(energies=energies, gradients=gradients, couplings=couplings,
                                   overlap_prev=overlap, transition_dipoles=dipoles, spin_squared=spin_sq,
                                   guess=new_guess, converged=converged, diagnostics=diagnostics)
@@ -781,19 +781,19 @@ class CASSCFBackend:
             h.update(np.ascontiguousarray(a, dtype=float).tobytes())
         return h.digest()
 
-    def _remember(self, guess: CASSCFGuess, mc) -> None:
-        """Keep the converged solver of ``guess`` (CI vectors in the returned phases) for phase two."""
-        mc.ci = [np.array(c, copy=True) for c in guess.ci]
-        mc.fcisolver.e_states = [float(e) for e in guess.energies]
-        self._wavefunctions[self._guess_key(guess)] = mc
+    def _remember(self, guess: CASSCFGuess, mc, signs: np.ndarray) -> None:
+        """Keep the converged solver of ``guess`` and the signs s_l that align its CI vectors
+        (ψ_l returned = s_l ψ_l of the solver) for phase two."""
+        self._wavefunctions[self._guess_key(guess)] = (mc, np.array(signs, dtype=float))
         while len(self._wavefunctions) > 2:
             self._wavefunctions.pop(next(iter(self._wavefunctions)))
 
     def _wavefunction(self, guess: CASSCFGuess):
-        """The converged SA-CASSCF of ``guess``: the kept solver, or one rebuilt from its orbitals/CI."""
-        mc = self._wavefunctions.get(self._guess_key(guess))
-        if mc is not None:
-            return mc
+        """(solver, signs): the converged SA-CASSCF of ``guess`` as kept by :meth:`compute`, or one
+        rebuilt from the guess's orbitals and (aligned) CI vectors with signs 1."""
+        kept = self._wavefunctions.get(self._guess_key(guess))
+        if kept is not None:
+            return kept
         mol = self._build_mol(np.asarray(guess.positions_bohr, dtype=float))
         guess = self._check_guess(guess, mol)
         mc = self._make_mc(self._host_scf(mol))
@@ -801,7 +801,7 @@ class CASSCFBackend:
         mc.ci = [np.array(c, copy=True) for c in guess.ci]
         mc.fcisolver.e_states = [float(e) for e in guess.energies]
         mc.converged = True
-        return mc
+        return mc, np.ones(self.nstates)
 
     def force(self, result: ElectronicResult, weights: np.ndarray) -> np.ndarray:
         """Phase two: F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ in Eh/Bohr at the geometry of ``result``.
@@ -816,17 +816,18 @@ class CASSCFBackend:
         if not isinstance(result, ElectronicResult) or not isinstance(result.guess, CASSCFGuess):
             raise ValueError("result must be an ElectronicResult from this backend's compute")
         t0 = time.perf_counter()
-        mc = self._wavefunction(result.guess)
+        mc, signs = self._wavefunction(result.guess)
+        w_solver = w * (signs[:, None] * signs[None, :])[None]  # ⟨ψ_k|∇H|ψ_l⟩ = s_k s_l × solver's
         if self.offers_force:
             from mapdyn.backends.casscf_force import weighted_force
 
-            forces, info = weighted_force(mc, w, use_etfs=self.nac_form == "etf", conv_rtol=self.lagrange_rtol)
+            forces, info = weighted_force(mc, w_solver, use_etfs=self.nac_form == "etf", conv_rtol=self.lagrange_rtol)
             if not info["converged"]:
                 warnings.warn("SA-CASSCF weighted Lagrange equations did not converge", RuntimeWarning, stacklevel=2)
             parts = info["timings"]
         else:
             grads, nacs, _ = self._gradients_and_couplings(mc, parts := {})
-            forces = contract_force(result.energies, grads, nacs, w)
+            forces = contract_force(result.energies, grads, nacs, w_solver)
         timings = result.diagnostics.setdefault("timings", {})
         timings["force"] = time.perf_counter() - t0
         timings["force_parts"] = parts
