@@ -40,15 +40,71 @@ _SCALE_FLOOR = 0.1
 
 class _ScaledTape(_Tape):
     """A tape whose recorded two-particle densities are multiplied by ``scale`` (the contributions
-    of a call whose result the caller multiplies by ``scale``)."""
+    of a call whose result the caller multiplies by ``scale``), and whose MO integral transforms
+    are shared between calls with the same orbitals (they do not depend on the weights)."""
 
     scale = 1.0
+
+    def cached(self, key: str, func, *args, **kwargs):
+        if key != "ao2mo" or self.mode != "record":
+            return super().cached(key, func, *args, **kwargs)
+        import hashlib
+
+        h = hashlib.sha1(repr(sorted(kwargs.items())).encode())
+        for item in args[1:]:
+            for a in item if isinstance(item, (tuple, list)) else (item,):
+                arr = np.ascontiguousarray(a)
+                h.update(repr(arr.shape).encode())
+                h.update(arr.tobytes())
+        memo = self.__dict__.setdefault("_memo", {})
+        sig = (id(args[0]) if args else None, h.digest())
+        if sig not in memo:
+            memo[sig] = func(*args, **kwargs)
+        self.cheap_cache.setdefault(key, []).append(memo[sig])
+        return memo[sig]
 
     def einsum(self, real_einsum, subscripts, *operands, **kwargs):
         out = real_einsum(subscripts, *operands, **kwargs)
         if self.mode == "record" and subscripts == _DM2_SUBSCRIPTS:
             self.pending_dm2.append(self.scale * out)
         return out
+
+
+#: the small-system pass holds the unpacked derivative integrals, 3·nao⁴ doubles; up to this many MB.
+SMALL_SYSTEM_MB = 150.0
+
+
+def small_system_pass(mol, jk_dms: np.ndarray | None, dm2_by_quantity: dict, nquant: int
+                      ) -> tuple[np.ndarray | None, np.ndarray | None, np.ndarray]:
+    """Derivative J/K matrices and the two-particle contraction from ONE evaluation of (∇i j|kl).
+
+    For small basis sets the whole ``int2e_ip1`` tensor (the integrals PySCF's derivative J/K
+    builder and its CASSCF gradient loop each evaluate) is computed once and contracted with
+    everything: vj[n,x,i,j] = −Σ_kl (∂_x i j|kl) D^n_lk, vk[n,x,i,l] = −Σ_jk (∂_x i j|kl) D^n_jk
+    (pyscf.grad.rhf.get_jk conventions) and −2 Σ (∂_x i j|kl) Γ^q_{ij,kl} per atom of i
+    (pyscf.grad.casscf.grad_elec).  Returns (vj (n, 3, nao, nao), vk, (nquant, natm, 3)).
+    """
+    from pyscf import lib
+
+    nao = mol.nao_nr()
+    npair = nao * (nao + 1) // 2
+    eri1 = mol.intor("int2e_ip1", comp=3, aosym="s2kl").reshape(3, nao, nao, npair)
+    out = np.zeros((nquant, mol.natm, 3))
+    for atom, (_s0, _s1, p0, p1) in enumerate(mol.aoslice_by_atom()):
+        blk = eri1[:, p0:p1].reshape(3, -1)
+        for q in range(nquant):
+            dm2 = dm2_by_quantity.get(q, {}).get(atom)
+            if dm2 is not None:
+                out[q, atom] -= 2.0 * (blk @ dm2.reshape(-1))
+    vj = vk = None
+    if jk_dms is not None and len(jk_dms):
+        full = lib.unpack_tril(eri1.reshape(-1, npair)).reshape(3, nao, nao, nao, nao)
+        d = np.asarray(jk_dms, dtype=float)
+        n = d.shape[0]
+        vj = -(full.reshape(3 * nao * nao, nao * nao) @ d.transpose(0, 2, 1).reshape(n, -1).T)
+        vj = vj.T.reshape(n, 3, nao, nao)
+        vk = -np.einsum("xijkl,njk->nxil", full, d, optimize=True)
+    return vj, vk, out
 
 
 def weighted_active_densities(ci, ncas: int, nelecas, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -95,14 +151,16 @@ def _csf_density(mc, mo: np.ndarray, ci, e_states: np.ndarray, weights: np.ndarr
 
 
 def weighted_force(mc, weights: np.ndarray, use_etfs: bool = False, conv_rtol: float | None = None,
-                   ci=None) -> tuple[np.ndarray, dict]:
+                   ci=None, small_system: bool | None = None) -> tuple[np.ndarray, dict]:
     """Forces F_m = −Σ_kl ρ̄^m_kl ⟨ψ_k|∇H|ψ_l⟩ (M, N, 3) in Eh/Bohr of a converged SA-CASSCF ``mc``.
 
     ``weights`` (M, F, F) or (F, F): real symmetric weight matrices (dimensionless) in the basis of
     the CI vectors ``ci`` (default ``mc.ci``; pass sign-flipped vectors to use another phase
     convention).  ``use_etfs`` drops the CSF term of the couplings.  ``conv_rtol`` overrides PySCF's
     relative tolerance of the Lagrange solver.  One Lagrange solve per weight matrix, one
-    derivative-integral pass for all.  Returns (forces, info) with ``converged`` and ``timings`` (s).
+    derivative-integral pass for all: with ``small_system`` (default: when 3·nao⁴ doubles fit in
+    ``SMALL_SYSTEM_MB``) the derivative integrals are evaluated once for J/K and the two-particle
+    term together (:func:`small_system_pass`), otherwise PySCF's J/K builder plus one sweep.  Returns (forces, info) with ``converged`` and ``timings`` (s).
     """
     from pyscf.grad import casscf as casscf_grad
     from pyscf.grad import rhf as rhf_grad
@@ -153,7 +211,20 @@ def weighted_force(mc, weights: np.ndarray, use_etfs: bool = False, conv_rtol: f
                 src += 2.0 * w_all[:, k, l, None] * nobj.get_wfn_response(state=(k, l), **kw)[None]
     timings["sources"] = time.perf_counter() - t0
 
-    # one Lagrange solve per weight matrix (PySCF's preconditioned conjugate gradients)
+    # one Lagrange solve per weight matrix (PySCF's preconditioned conjugate gradients).  PySCF keeps
+    # a spin-penalty solver with a zero penalty in the Lagrange operator; without it the products
+    # are the same and about twice as fast.
+    from pyscf.fci.addons import SpinPenaltyFCISolver
+
+    make_sa = gobj.make_fcasscf_sa
+
+    def make_sa_without_zero_penalty(*a, **k):
+        fc = make_sa(*a, **k)
+        if isinstance(fc.fcisolver, SpinPenaltyFCISolver) and fc.fcisolver.ss_penalty == 0:
+            fc.fcisolver = fc.fcisolver.undo_fix_spin()
+        return fc
+
+    gobj.make_fcasscf_sa = make_sa_without_zero_penalty
     t0 = time.perf_counter()
     lvecs, conv = [], True
     for m in range(nw):
@@ -203,21 +274,28 @@ def weighted_force(mc, weights: np.ndarray, use_etfs: bool = False, conv_rtol: f
     timings["record"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    if tape.jk_requests:
-        all_dms = np.concatenate([d for _, d, _ in tape.jk_requests])
-        vj, vk = rhf_grad.get_jk(mol, all_dms)
-        nao = mol.nao_nr()
-        vj = np.asarray(vj).reshape(len(all_dms), 3, nao, nao)
-        vk = np.asarray(vk).reshape(len(all_dms), 3, nao, nao)
+    nao = mol.nao_nr()
+    if small_system is None:
+        small_system = 3 * nao ** 4 * 8 / 1e6 <= SMALL_SYSTEM_MB
+    all_dms = np.concatenate([d for _, d, _ in tape.jk_requests]) if tape.jk_requests else None
+    if small_system:
+        vj, vk, eri_contrib = small_system_pass(mol, all_dms, tape.dm2_by_quantity, nw)
+        timings["integral_pass"] = time.perf_counter() - t0
+    else:
+        if all_dms is not None:
+            vj, vk = rhf_grad.get_jk(mol, all_dms)
+            vj = np.asarray(vj).reshape(len(all_dms), 3, nao, nao)
+            vk = np.asarray(vk).reshape(len(all_dms), 3, nao, nao)
+        timings["jk_pass"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        eri_contrib = _dense_eri_pass(mol, tape.dm2_by_quantity, nw)
+        timings["eri_pass"] = time.perf_counter() - t0
+    if all_dms is not None:
         i = 0
         for _, d, _single in tape.jk_requests:
             n = d.shape[0]
             tape.jk_results.append((vj[i:i + n], vk[i:i + n]))
             i += n
-    timings["jk_pass"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    eri_contrib = _dense_eri_pass(mol, tape.dm2_by_quantity, nw)
-    timings["eri_pass"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
     tape.mode = "replay"
