@@ -33,6 +33,15 @@ is kept) and costs no backend call.  A one-time warning, recorded in :attr:`Mapp
 reports when max ΔE_kl·Δt > ``GAP_PHASE_LIMIT`` (1 rad) between states with |V·d_kl|·Δt >
 ``GAP_COUPLING_FLOOR`` (1e-3): the step does not resolve the electronic gap.
 
+Force evaluation, one driver and two ways: the weights of the kicks at a geometry (closing kick and,
+with force averaging, the opening kick of the next step; :meth:`MappingDynamics.kick_weights`) are
+known once that step's energies and overlaps are.  A two-phase backend (``offers_force``,
+:mod:`mapdyn.electronic`) is then called with ``need_gradients=False`` and asked for the forces of
+those weight matrices (SA-CASSCF: one Lagrange solve per matrix, one derivative-integral pass);
+any other backend returns gradients and couplings and the driver contracts them with the same
+weights.  Both opening and closing forces are computed at the end of a step and the opening one
+is kept in the state (``force_open``).
+
 No coupling vectors (TDA/TDDFT-like backends, DESIGN §5b): σ(t+Δt/2) = (S − Sᵀ)/(2Δt)
 (Hammes-Schiffer & Tully, J. Chem. Phys. 101, 4657 (1994)), the force uses the velocity-projected
 coupling d_kl ≈ σ_kl V/|V|² with σ and V at the force time extrapolated linearly from the last two
