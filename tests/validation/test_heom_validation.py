@@ -97,7 +97,8 @@ def test_sites7_square_sqc_matches_heom() -> None:
 
 @pytest.mark.slow
 def test_sites7_triangle_sqc_matches_heom() -> None:
-    """Same comparison with the F-state triangle windows (pairwise-triangle sampling, docs/theory.md#triangle-windows-for-more-than-two-states):
+    """Same comparison with the F-state triangle windows (pairwise-triangle sampling,
+    docs/theory.md#triangle-windows-for-more-than-two-states):
     measured max deviation 0.071 (site 1, 65 fs) with 4000 trajectories, 0.079 with 1000; the former
     uniform-pyramid sampling was 0.21–0.25 off."""
     _check_sites7("triangle", 4000)

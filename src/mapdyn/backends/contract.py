@@ -15,6 +15,15 @@ Conventions (docs/architecture.md#backend-contract, docs/theory.md#local-diabati
 
 * ``energies`` ascending; index 0 is the ground state on every backend.
 * ``couplings[k, l] = d_kl = <psi_k | grad_R psi_l>``, real and antisymmetric.
+* Two-phase backends (optional): a backend that also has ``offers_force = True`` and a method
+
+      force(result, weights) -> (M, N, 3) or (N, 3)
+
+  is used in two phases per step: phase one is ``compute(..., need_gradients=False)`` (energies,
+  overlaps, transition dipoles and, in ``guess``, the converged wavefunction); phase two returns
+  F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ in Eh/Bohr for real symmetric weight matrices ρ̄ (M, F, F) known only
+  after phase one.  Any other backend returns gradients and couplings and the driver contracts them
+  with the same weights (:func:`contract_force`).
 * ``overlap_prev[k, l] = <psi_k(previous step) | psi_l(this step)>`` *after* sign alignment: each
   new state l is multiplied by s_l = sign of its overlap with the previous state it matches, and the
   same signs are applied to couplings and transition dipoles.  States are never reordered (energy
@@ -37,6 +46,10 @@ __all__ = [
     "StateMatch",
     "match_states",
     "apply_state_signs",
+    "ForceBackend",
+    "offers_force",
+    "check_weights",
+    "contract_force",
 ]
 
 #: min |S_{pi(l), l}| below which a step is reported as a low-overlap step (states may have
@@ -134,6 +147,58 @@ class Backend(Protocol):
 
     def compute(self, positions_bohr: np.ndarray, guess: Any = None,
                 need_gradients: bool = True) -> ElectronicResult: ...
+
+
+@runtime_checkable
+class ForceBackend(Backend, Protocol):
+    """A two-phase backend (see module docstring): phase two is :meth:`force`."""
+
+    offers_force: bool
+
+    def force(self, result: ElectronicResult, weights: np.ndarray) -> np.ndarray: ...
+
+
+def offers_force(backend: Any) -> bool:
+    """True when ``backend`` offers phase two (``offers_force`` true and a callable ``force``)."""
+    return bool(getattr(backend, "offers_force", False)) and callable(getattr(backend, "force", None))
+
+
+def check_weights(weights: np.ndarray, nstates: int) -> np.ndarray:
+    """Weight matrices as a float (M, F, F) array; ValueError unless finite, real and symmetric."""
+    w = np.asarray(weights)
+    if np.iscomplexobj(w):
+        raise ValueError("weights must be real symmetric matrices, got complex values")
+    w = np.array(w, dtype=float).reshape((-1,) + w.shape[-2:]) if w.ndim >= 2 else w
+    if w.ndim != 3 or w.shape[1:] != (nstates, nstates):
+        raise ValueError(f"weights must have shape ({nstates}, {nstates}) or (M, {nstates}, {nstates}), "
+                         f"got {np.shape(weights)}")
+    if not np.all(np.isfinite(w)):
+        raise ValueError("weights contain non-finite values")
+    if np.max(np.abs(w - w.transpose(0, 2, 1)), initial=0.0) > 1e-12 * max(1.0, float(np.max(np.abs(w)))):
+        raise ValueError("weights must be symmetric matrices")
+    return w
+
+
+def contract_force(energies: np.ndarray, gradients: np.ndarray, couplings: np.ndarray | None,
+                   weights: np.ndarray) -> np.ndarray:
+    """F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr) from gradients and coupling vectors.
+
+    ⟨ψ_k|∇H|ψ_k⟩ = ∇E_k and ⟨ψ_k|∇H|ψ_l⟩ = (E_l − E_k) d_kl for k ≠ l (Hellmann–Feynman and the
+    off-diagonal derivative identity); ``energies`` (F,) Eh, ``gradients`` (F, N, 3) Eh/Bohr,
+    ``couplings`` (F, F, N, 3) 1/Bohr or None (diagonal terms only); ``weights`` (F, F) or
+    (M, F, F), real symmetric, dimensionless.  Returns (N, 3) or (M, N, 3).
+    """
+    w_in = np.asarray(weights, dtype=float)
+    E = np.asarray(energies, dtype=float)
+    w = w_in.reshape((-1,) + w_in.shape[-2:])
+    diag = np.einsum("mkk->mk", w)
+    F = -np.einsum("mk,kna->mna", diag, np.asarray(gradients))
+    if couplings is not None:
+        off = w * (E[None, None, :] - E[None, :, None])
+        idx = np.arange(E.size)
+        off[:, idx, idx] = 0.0
+        F -= np.einsum("mkl,klna->mna", off, np.asarray(couplings))
+    return F[0] if w_in.ndim == 2 else F
 
 
 @dataclasses.dataclass

@@ -20,6 +20,13 @@ gradient-free backend call at t = 0 supplying the first (docs/theory.md#velocity
 Warnings issued once (no coupling vectors, unresolved electronic gap) are recorded in
 :attr:`MappingDynamics.metadata`.
 
+Force evaluation, one driver and two ways (docs/theory.md#one-solve-force): the kick weights at a
+geometry (closing kick and, with force averaging, the next step's opening kick;
+:meth:`MappingDynamics.kick_weights`) are known once that step's energies and overlaps are.  A
+two-phase backend (``offers_force``) is called without gradients and asked for the forces of those
+weight matrices (SA-CASSCF: one Lagrange solve per matrix, one derivative-integral pass); any other
+backend returns gradients and couplings that the driver contracts with the same weights.
+
 The complete propagation state is a :class:`DriverState` (``get_state``/``set_state``), so a
 checkpoint writer can save and restore it exactly.
 """
@@ -38,7 +45,7 @@ from ase import Atoms, units
 from ase.calculators.singlepoint import SinglePointCalculator
 from ase.md.md import MolecularDynamics
 
-from mapdyn.backends.contract import BackendError, ElectronicResult
+from mapdyn.backends.contract import BackendError, ElectronicResult, offers_force
 from mapdyn.core.adiabatic import (
     GAP_COUPLING_FLOOR,
     GAP_PHASE_LIMIT,
@@ -173,6 +180,9 @@ class MappingDynamics(MolecularDynamics):
         if not isinstance(force_averaging, (bool, np.bool_)):
             raise ValueError(f"force_averaging={force_averaging!r} is not allowed; it must be True or False")
         self.force_averaging = bool(force_averaging)
+        # two ways, one driver: a two-phase backend returns the force for the driver's weights,
+        # any other returns gradients and couplings that the driver contracts with the same weights
+        self.two_phase = offers_force(backend) and electronic_propagation != "coupling"
         self.masses_au = atoms.get_masses() * AMU_IN_ME  # (N,) electron masses
         if np.any(self.masses_au <= 0):
             raise ValueError("atoms have non-positive masses; set them with atoms.set_masses (amu)")
@@ -224,12 +234,12 @@ class MappingDynamics(MolecularDynamics):
             occ = np.zeros(f)
             occ[self.initial_state] = 1.0
             gamma = actions(x[None], p[None])[0] - occ
-        result = self._call_backend(R, None, True)
-        if result.gradients is None:
+        result = self._call_backend(R, None, not self.two_phase)
+        if result.gradients is None and not self.two_phase:
             raise ValueError("the backend returned no gradients with need_gradients=True")
         history: list = []
         warns: list = []
-        if result.couplings is None:
+        if result.couplings is None and not self.two_phase:
             warns.append(PROJECTION_WARNING)
             warnings.warn(PROJECTION_WARNING, stacklevel=3)
             V0 = P / self._M
@@ -247,7 +257,7 @@ class MappingDynamics(MolecularDynamics):
                             result=result, force=np.zeros_like(R), sigma_history=history,
                             energy_reference=0.0, rng_state=rng_state, warnings=warns,
                             settings=dict(self._settings))
-        state.force = self._force(state.result, x, p, gamma, 0.0, history)
+        state.force, state.force_open = self._kick_forces(result, x, p, gamma, 0.0, history, 0.0)
         state.energy_reference = self._total_energy(state)
         return state
 
@@ -262,6 +272,44 @@ class MappingDynamics(MolecularDynamics):
         energies in Eh); see :func:`mapdyn.core.adiabatic.averaged_density`."""
         return averaged_density(self.density(x, p, gamma), x, p, energies, window)
 
+    def kick_weights(self, x: np.ndarray, p: np.ndarray, gamma: np.ndarray | None, energies: np.ndarray,
+                     closing_window: float) -> np.ndarray:
+        """Weights ρ̄ (M, F, F) of the kicks at one geometry (dimensionless, real symmetric).
+
+        Row 0: the closing kick (ρ averaged over ``closing_window``, a.u. time, usually −Δt/2; 0 gives
+        ρ(t)); row 1 with force averaging: the opening kick of the next step (window +Δt/2).
+        Without force averaging one row, ρ(t), serves both kicks.
+        """
+        if not self.force_averaging:
+            return self.density(x, p, gamma)[None]
+        close = (self.averaged_density(x, p, gamma, energies, closing_window) if closing_window != 0.0
+                 else self.density(x, p, gamma))
+        return np.stack([close, self.averaged_density(x, p, gamma, energies, 0.5 * self.dt_au)])
+
+    def _kick_forces(self, result: ElectronicResult, x, p, gamma, t: float, history: list,
+                     closing_window: float) -> tuple[np.ndarray, np.ndarray | None]:
+        """(closing force, opening force of the next step or None), each (N, 3) Eh/Bohr: one
+        backend ``force`` call on the two-phase path, the driver's own contraction otherwise."""
+        rho = self.kick_weights(x, p, gamma, result.energies, closing_window)
+        if self.two_phase:
+            t0 = _time.perf_counter()
+            forces = np.asarray(self.backend.force(result, rho), dtype=float).reshape(rho.shape[0], -1, 3)
+            self.timings["backend_seconds"] += _time.perf_counter() - t0
+        else:
+            forces = [self._contract(result, r, t, history) for r in rho]
+        return forces[0], (forces[1] if len(forces) > 1 else None)
+
+    def _opening_force(self, st: DriverState) -> np.ndarray:
+        """Force of the opening half kick of the step that starts from ``st`` (Eh/Bohr)."""
+        if not self.force_averaging:
+            return st.force
+        if st.force_open is not None:
+            return st.force_open
+        if st.result.gradients is None:  # a state made without the opening force (older checkpoint)
+            return np.asarray(self.backend.force(st.result, self.averaged_density(
+                st.x, st.p, st.gamma_adjusted, st.result.energies, 0.5 * self.dt_au)), dtype=float)
+        return self._force(st.result, st.x, st.p, st.gamma_adjusted, st.time, st.sigma_history, 0.5 * self.dt_au)
+
     def _force(self, result: ElectronicResult, x, p, gamma, t: float, history: list,
                window: float = 0.0) -> np.ndarray:
         """F = −Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr, (N, 3)); projected d on the no-NAC path.
@@ -273,6 +321,11 @@ class MappingDynamics(MolecularDynamics):
             rho = self.averaged_density(x, p, gamma, result.energies, window)
         else:
             rho = self.density(x, p, gamma)
+        return self._contract(result, rho, t, history)
+
+    def _contract(self, result: ElectronicResult, rho: np.ndarray, t: float, history: list) -> np.ndarray:
+        """−Σ_kl ρ_kl ⟨ψ_k|∇H|ψ_l⟩ (Eh/Bohr) from the backend's gradients and couplings (or the
+        velocity-projected coupling when it has none)."""
         if result.couplings is not None:
             return adiabatic_force(rho, result.energies, result.gradients, result.couplings)
         sigma, V = extrapolate_projection(history, t)
@@ -305,17 +358,30 @@ class MappingDynamics(MolecularDynamics):
         return result
 
     def _step_backend(self, st: DriverState, R: np.ndarray) -> ElectronicResult | None:
-        """Result with gradients at R, or None when a backend failure stopped the trajectory."""
+        """Result at R (with gradients unless two-phase), or None when a backend failure stopped the
+        trajectory."""
         try:
-            new = self._call_backend(R, st.result.guess, True)
+            new = self._call_backend(R, st.result.guess, not self.two_phase)
         except BackendError as exc:
             if self.on_backend_error == "raise":
                 raise
             st.stopped, st.stop_reason = True, f"backend failure at step {st.step + 1}: {exc}"
             return None
-        if new.gradients is None:
+        if new.gradients is None and not self.two_phase:
             raise ValueError("the backend returned no gradients with need_gradients=True")
         return new
+
+    def _step_kicks(self, st: DriverState, new: ElectronicResult, x, p, t: float,
+                    history: list) -> tuple[np.ndarray, np.ndarray | None] | None:
+        """Closing and next opening forces at the new geometry, or None when a backend failure
+        stopped the trajectory."""
+        try:
+            return self._kick_forces(new, x, p, st.gamma_adjusted, t, history, -0.5 * self.dt_au)
+        except BackendError as exc:
+            if self.on_backend_error == "raise":
+                raise
+            st.stopped, st.stop_reason = True, f"backend failure at step {st.step + 1}: {exc}"
+            return None
 
     def _propagate_oscillators(self, old: ElectronicResult, new: ElectronicResult, z: np.ndarray,
                                V: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -341,10 +407,7 @@ class MappingDynamics(MolecularDynamics):
             return
         t_start = _time.perf_counter()
         dt = self.dt_au
-        if self.force_averaging:  # opening kick: ρ averaged over the first electronic half step
-            F_open = self._force(st.result, st.x, st.p, st.gamma_adjusted, st.time, st.sigma_history, 0.5 * dt)
-        else:
-            F_open = st.force
+        F_open = self._opening_force(st)  # with averaging: ρ over the first electronic half step
         P_half = st.momenta + 0.5 * dt * F_open
         V = P_half / self._M
         R_new = st.positions + dt * V
@@ -353,14 +416,16 @@ class MappingDynamics(MolecularDynamics):
             return
         z, sigma_mid = self._propagate_oscillators(st.result, new, st.x + 1j * st.p, V)
         history = st.sigma_history
-        if new.couplings is None:
+        if new.couplings is None and not self.two_phase:
             history = (history + [(st.time + 0.5 * dt, sigma_mid, V.copy())])[-2:]
         x, p = z.real.copy(), z.imag.copy()
         t_new = (st.step + 1) * dt
-        F_new = self._force(new, x, p, st.gamma_adjusted, t_new, history, -0.5 * dt)  # closing kick
+        kicks = self._step_kicks(st, new, x, p, t_new, history)  # closing kick, next opening kick
+        if kicks is None:
+            return
         self._check_gap_resolution(st, new.energies, sigma_mid)
-        st.momenta = P_half + 0.5 * dt * F_new
-        st.positions, st.x, st.p, st.result, st.force = R_new, x, p, new, F_new
+        st.momenta = P_half + 0.5 * dt * kicks[0]
+        st.positions, st.x, st.p, st.result, (st.force, st.force_open) = R_new, x, p, new, kicks
         st.sigma_history, st.step, st.time = history, st.step + 1, t_new
         self.step_sigma = sigma_mid
         self.drift_monitor.check(st, self._total_energy(st) - st.energy_reference)
@@ -440,7 +505,9 @@ class MappingDynamics(MolecularDynamics):
         """Run metadata: method, settings, warnings issued once, drift flag, stop reason."""
         st = self._state
         return {"method": self.options.describe(), **copy.deepcopy(self._settings),
-                "coupling_source": "vectors" if st.result.couplings is not None else "projected_overlaps",
+                "coupling_source": ("vectors" if st.result.couplings is not None or self.two_phase
+                                    else "projected_overlaps"),
+                "force_source": "backend (two-phase)" if self.two_phase else "driver contraction",
                 "warnings": list(st.warnings), "drift_flag": copy.deepcopy(st.drift_flag),
                 "stopped": st.stopped, "stop_reason": st.stop_reason, "steps": st.step}
 

@@ -21,7 +21,8 @@ class DriverState:
     or None; result : the backend result at ``positions`` (its ``guess`` warm-starts the next
     call); force : (N, 3) Eh/Bohr at ``positions``; sigma_history : up to two
     (time a.u., σ (F, F) 1/a.u. time, velocity (N, 3) Bohr/a.u. time) mid-step entries;
-    energy_reference : Eh at step 0; drift_flag : None or {step, time_au, drift_Eh}; stopped,
+    energy_reference : Eh at step 0; force_open : (N, 3) Eh/Bohr, the opening-kick force of the
+    next step with force averaging (None: computed from ``result`` when needed); drift_flag : None or {step, time_au, drift_Eh}; stopped,
     stop_reason; rng_state : the trajectory generator's state after the initial draws (or None);
     warnings : messages issued once per run; settings : what the state was made with (checked on
     restore).
@@ -44,6 +45,7 @@ class DriverState:
     rng_state: dict | None = None
     warnings: list = dataclasses.field(default_factory=list)
     settings: dict = dataclasses.field(default_factory=dict)
+    force_open: np.ndarray | None = None
 
     def copy(self) -> "DriverState":
         return copy.deepcopy(self)

@@ -22,6 +22,9 @@ Physics and numerics (docs/theory.md#local-diabatization, docs/theory.md#sa-cass
   occupied (core + string-occupied active) orbitals (Löwdin's rule for non-orthogonal determinants).
 * By default all gradients and NAC vectors of a step share one pass over the derivative
   integrals (:mod:`mapdyn.backends.pyscf.casscf_one_pass`), identical to the plain per-state calls.
+* Two phases (:mod:`mapdyn.backends.contract`): ``compute(..., need_gradients=False)`` then
+  :meth:`CASSCFBackend.force` with the driver's weight matrices: the mapping force in one Lagrange
+  solve per weight matrix and one derivative-integral pass (:mod:`mapdyn.backends.pyscf.casscf_force`).
 * Warm start from the previous orbitals, Löwdin-orthonormalised at the new geometry
   C (CᵀSC)^(−1/2); the result is guarded by max|CᵀSC − 1| < 1e-10 (raw orbitals from another
   geometry give a converged but wrong CASSCF, docs/theory.md#pyscf-pitfalls).
@@ -40,6 +43,8 @@ from mapdyn.backends.contract import (
     BackendError,
     ElectronicResult,
     apply_state_signs,
+    check_weights,
+    contract_force,
     match_states,
 )
 
@@ -204,6 +209,8 @@ class CASSCFBackend:
         from SCF orbitals can converge to a saddle point of the state-averaged energy (ethylene
         SA2-CAS(2,2)/STO-3G at a planar geometry: the π/π* solution, 9 mEh above the σ/π*
         minimum), which the next warm-started step leaves: a jump of 50–70 mEh in S1.
+    lagrange_rtol : relative tolerance of PySCF's Lagrange (z-vector) solver for gradients, NACs and
+        the weighted force (None: PySCF's default, 1e-7).
     overlap_retry : when the smallest matched state overlap with the previous step falls below this,
         the step is re-solved with a damped warm start and with a cold start (with the stability
         search); the candidate with the largest smallest overlap is kept, near-ties (within 0.1) go
@@ -218,7 +225,7 @@ class CASSCFBackend:
                  max_cycle_macro: int = 50, active_space_warning: float = 0.9,
                  gradient_method: str = "one_pass", auxbasis: str | None = None,
                  cold_start_alternatives: int = 3, stability_kicks: int = 2, stability_kick_size: float = 0.1,
-                 overlap_retry: float = 0.5):
+                 overlap_retry: float = 0.5, lagrange_rtol: float | None = None):
         self.symbols = [str(s) for s in symbols]
         if not self.symbols:
             raise ValueError("symbols: need at least one atom")
@@ -275,6 +282,10 @@ class CASSCFBackend:
         if not 0.0 <= float(overlap_retry) < 1.0:
             raise ValueError(f"overlap_retry must be in [0, 1), got {overlap_retry}")
         self.overlap_retry = float(overlap_retry)
+        if lagrange_rtol is not None and not 0.0 < float(lagrange_rtol) < 1.0:
+            raise ValueError(f"lagrange_rtol must be in (0, 1) or None, got {lagrange_rtol}")
+        self.lagrange_rtol = None if lagrange_rtol is None else float(lagrange_rtol)
+        self._wavefunctions: dict = {}  # converged solvers of recent steps, keyed by their guess
         s = self.spin / 2.0
         self.target_spin_squared = s * (s + 1.0)
         # Fail early on an impossible electron count.
@@ -669,6 +680,7 @@ class CASSCFBackend:
         diagnostics["timings"] = timings
         new_guess = CASSCFGuess(positions_bohr=pos.copy(), mo_coeff=mo.copy(), ci=ci_aligned,
                                 energies=energies.copy(), signature=self.signature)
+        self._remember(new_guess, mc, signs)
         result = ElectronicResult(energies=energies, gradients=gradients, couplings=couplings,
                                   overlap_prev=overlap, transition_dipoles=dipoles, spin_squared=spin_sq,
                                   guess=new_guess, converged=converged, diagnostics=diagnostics)
@@ -716,7 +728,8 @@ class CASSCFBackend:
             )
 
             t0 = time.perf_counter()
-            grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf")
+            grads, nacs, info = one_pass_gradients_and_couplings(mc, use_etfs=self.nac_form == "etf",
+                                                                 conv_rtol=self.lagrange_rtol)
             timings.update(info.pop("timings", {}))
             timings["gradients_and_couplings"] = time.perf_counter() - t0
             if not (info["gradients_converged"] and info["couplings_converged"]):
@@ -728,6 +741,8 @@ class CASSCFBackend:
         gconv = True
         mc_grad = mc.nuc_grad_method()
         mc_grad.verbose = 0
+        if self.lagrange_rtol is not None:
+            mc_grad.conv_rtol = self.lagrange_rtol
         for k in range(f):
             grads[k] = mc_grad.kernel(state=k)
             gconv = gconv and bool(mc_grad.converged)
@@ -738,6 +753,8 @@ class CASSCFBackend:
         if f > 1:
             nac = mc.nac_method()
             nac.verbose = 0
+            if self.lagrange_rtol is not None:
+                nac.conv_rtol = self.lagrange_rtol
             for a in range(f):
                 for b in range(a + 1, f):
                     d = nac.kernel(state=(a, b), use_etfs=self.nac_form == "etf")
@@ -751,3 +768,75 @@ class CASSCFBackend:
             warnings.warn("SA-CASSCF response (Lagrange multiplier) equations did not converge",
                           RuntimeWarning, stacklevel=3)
         return grads, nacs, info
+
+    # ------------------------------------------------------------------ phase two
+    @property
+    def offers_force(self) -> bool:
+        """True when :meth:`force` runs in one solve (one-pass path, exact integrals)."""
+        return self.gradient_method == "one_pass" and not self.density_fitting
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["_wavefunctions"] = {}
+        return state
+
+    @staticmethod
+    def _guess_key(guess: CASSCFGuess) -> bytes:
+        import hashlib
+
+        h = hashlib.sha1()
+        for a in (guess.positions_bohr, guess.mo_coeff, guess.ci, guess.energies):
+            h.update(np.ascontiguousarray(a, dtype=float).tobytes())
+        return h.digest()
+
+    def _remember(self, guess: CASSCFGuess, mc, signs: np.ndarray) -> None:
+        """Keep the converged solver of ``guess`` and the signs s_l that align its CI vectors
+        (ψ_l returned = s_l ψ_l of the solver) for phase two."""
+        self._wavefunctions[self._guess_key(guess)] = (mc, np.array(signs, dtype=float))
+        while len(self._wavefunctions) > 2:
+            self._wavefunctions.pop(next(iter(self._wavefunctions)))
+
+    def _wavefunction(self, guess: CASSCFGuess):
+        """(solver, signs): the converged SA-CASSCF of ``guess`` as kept by :meth:`compute`, or one
+        rebuilt from the guess's orbitals and (aligned) CI vectors with signs 1."""
+        kept = self._wavefunctions.get(self._guess_key(guess))
+        if kept is not None:
+            return kept
+        mol = self._build_mol(np.asarray(guess.positions_bohr, dtype=float))
+        guess = self._check_guess(guess, mol)
+        mc = self._make_mc(self._host_scf(mol))
+        mc.mo_coeff = np.array(guess.mo_coeff, copy=True)
+        mc.ci = [np.array(c, copy=True) for c in guess.ci]
+        mc.fcisolver.e_states = [float(e) for e in guess.energies]
+        mc.converged = True
+        return mc, np.ones(self.nstates)
+
+    def force(self, result: ElectronicResult, weights: np.ndarray) -> np.ndarray:
+        """Phase two: F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ in Eh/Bohr at the geometry of ``result``.
+
+        ``result`` comes from :meth:`compute` (its ``guess`` carries the wavefunction); ``weights``
+        (F, F) or (M, F, F) real symmetric (dimensionless) in the phases of ``result`` (those of
+        its couplings and dipoles).  Returns (N, 3) or (M, N, 3).  One-pass path: one Lagrange solve
+        per weight matrix and one derivative-integral pass; otherwise all gradients and couplings
+        are computed and contracted.  Timings go to ``result.diagnostics["timings"]["force"]``.
+        """
+        w = check_weights(weights, self.nstates)
+        if not isinstance(result, ElectronicResult) or not isinstance(result.guess, CASSCFGuess):
+            raise ValueError("result must be an ElectronicResult from this backend's compute")
+        t0 = time.perf_counter()
+        mc, signs = self._wavefunction(result.guess)
+        w_solver = w * (signs[:, None] * signs[None, :])[None]  # ⟨ψ_k|∇H|ψ_l⟩ = s_k s_l × solver's
+        if self.offers_force:
+            from mapdyn.backends.pyscf.casscf_force import weighted_force
+
+            forces, info = weighted_force(mc, w_solver, use_etfs=self.nac_form == "etf", conv_rtol=self.lagrange_rtol)
+            if not info["converged"]:
+                warnings.warn("SA-CASSCF weighted Lagrange equations did not converge", RuntimeWarning, stacklevel=2)
+            parts = info["timings"]
+        else:
+            grads, nacs, _ = self._gradients_and_couplings(mc, parts := {})
+            forces = contract_force(result.energies, grads, nacs, w_solver)
+        timings = result.diagnostics.setdefault("timings", {})
+        timings["force"] = time.perf_counter() - t0
+        timings["force_parts"] = parts
+        return forces[0] if np.ndim(weights) == 2 else forces

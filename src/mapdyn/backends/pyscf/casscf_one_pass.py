@@ -214,7 +214,8 @@ def _dense_eri_pass(mol, dm2_by_quantity: dict[int, dict[int, np.ndarray]], nqua
     return out
 
 
-def one_pass_gradients_and_couplings(mc, use_etfs: bool = False, states=None, pairs=None):
+def one_pass_gradients_and_couplings(mc, use_etfs: bool = False, states=None, pairs=None,
+                                     conv_rtol: float | None = None):
     """Gradients (F, N, 3) in Eh/Bohr and NAC vectors (F, F, N, 3) in 1/Bohr of a converged SA-CASSCF.
 
     ``mc`` is a converged PySCF state-averaged CASSCF object (equal weights).  ``states``: states
@@ -222,6 +223,7 @@ def one_pass_gradients_and_couplings(mc, use_etfs: bool = False, states=None, pa
     d_ab = ⟨ψ_a|∇ψ_b⟩ are wanted (default all); d_ba = −d_ab is filled in.  ``use_etfs`` drops the
     CSF term (electron-translation factors).  Returns (gradients, couplings, info) where ``info``
     holds ``gradients_converged``, ``couplings_converged`` and ``timings`` (seconds).
+    ``conv_rtol`` overrides PySCF's relative tolerance of the Lagrange solver.
     """
     mol = mc.mol
     nstates = len(mc.ci)
@@ -256,6 +258,8 @@ def one_pass_gradients_and_couplings(mc, use_etfs: bool = False, states=None, pa
     conv = []
     for _kind, _label, obj, extra in quantities:
         obj.verbose = 0
+        if conv_rtol is not None:
+            obj.conv_rtol = float(conv_rtol)
         obj.eris = eris
         obj.e_states = e_states
         kw = dict(atmlst=atmlst, verbose=0, mo=mo, ci=ci, eris=eris, mf_grad=mf_grad, e_states=e_states, **extra)
