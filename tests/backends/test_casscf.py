@@ -328,7 +328,7 @@ def test_density_fitted_gradients_match_finite_differences():
 
 
 def test_active_space_change_is_detected_and_cas_orbitals_option():
-    from mapdyn.backends.pyscf.casscf import active_overlap_min_singular
+    from mapdyn.backends.pyscf.casscf_states import active_overlap_min_singular
 
     backend = h2o_backend()
     res = backend.compute(H2O_POS, need_gradients=False)

@@ -94,3 +94,43 @@ def test_untested_pyscf_gives_the_same_tddft_gradients(monkeypatch):
     np.testing.assert_array_equal(fallback.gradients, normal.gradients)
     assert np.all(np.isfinite(normal.diagnostics["cphf_residuals"]))
     assert np.all(np.isnan(fallback.diagnostics["cphf_residuals"]))
+
+
+def test_one_pass_interception_restores_pyscf_after_an_exception():
+    from pyscf import gto, lib, scf
+    from pyscf.grad import casscf as casscf_grad
+    from pyscf.grad import rhf as rhf_grad
+    from pyscf.grad import sacasscf as sacasscf_grad
+
+    from mapdyn.backends.pyscf.casscf_one_pass import _intercept, _Tape
+
+    mol = gto.M(atom="H 0 0 0; H 0 0 1.4", unit="Bohr", basis="sto-3g", verbose=0)
+    mf = scf.RHF(mol)
+    before = (rhf_grad.get_jk, casscf_grad.lib, sacasscf_grad.lib, casscf_grad.ao2mo, mol.intor)
+    with pytest.raises(KeyError):
+        with _intercept(_Tape(mol), mf):
+            assert casscf_grad.lib is not lib and common.PATCH_LOCK.acquire(blocking=False)
+            common.PATCH_LOCK.release()  # re-entrant: this thread holds it
+            raise KeyError("inside the intercepted region")
+    after = (rhf_grad.get_jk, casscf_grad.lib, sacasscf_grad.lib, casscf_grad.ao2mo, mol.intor)
+    assert all(a is b or a == b for a, b in zip(before, after)) and "get_jk" not in mf.__dict__
+
+
+def test_untested_pyscf_gives_the_same_casscf_gradients(monkeypatch):
+    """Faked out-of-range version: the SA-CASSCF backend takes PySCF's plain per-state calls and
+    offers no one-solve force; gradients and couplings equal the one-pass ones (tolerance: the
+    Lagrange solver tolerance of both paths, 1e-7 Eh/Bohr)."""
+    from mapdyn.backends.pyscf.casscf import CASSCFBackend
+
+    r = np.array([[0.0, 0.0, 0.0], [0.1, 0.05, 3.0]])
+    fast = CASSCFBackend(["Li", "H"], basis="sto-3g", ncas=2, nelecas=2, nstates=2)
+    ref = fast.compute(r)
+    assert fast.offers_force
+    monkeypatch.setattr(common, "_warned", set())
+    monkeypatch.setattr(common, "pyscf_version", lambda: "9.0.0")
+    slow = CASSCFBackend(["Li", "H"], basis="sto-3g", ncas=2, nelecas=2, nstates=2)
+    with pytest.warns(RuntimeWarning, match="outside the tested range"):
+        res = slow.compute(r)
+    assert not slow.offers_force
+    np.testing.assert_allclose(res.gradients, ref.gradients, atol=1e-7)
+    np.testing.assert_allclose(res.couplings, ref.couplings, atol=1e-6)

@@ -32,7 +32,6 @@ Physics and numerics (docs/theory.md#local-diabatization, docs/theory.md#sa-cass
 
 from __future__ import annotations
 
-import dataclasses
 import time
 import warnings
 from typing import Any, Sequence
@@ -43,10 +42,18 @@ from mapdyn.backends.contract import (
     BackendError,
     ElectronicResult,
     apply_state_signs,
-    check_weights,
-    contract_force,
     match_states,
 )
+from mapdyn.backends.pyscf.casscf_force import WeightedForceMixin
+from mapdyn.backends.pyscf.casscf_states import (
+    CASSCFGuess,
+    active_overlap_min_singular,
+    ci_overlap_matrix,
+    lowdin_orthonormalize,
+    orthonormality_error,
+    state_dipoles,
+)
+from mapdyn.backends.pyscf.common import pin_threads, response_interception_allowed
 
 __all__ = [
     "CASSCFBackend",
@@ -66,109 +73,16 @@ _SPIN_PURITY = ("shift", "spin0", "none")
 
 
 def _pyscf():
-    """Import PySCF lazily and pin it to one thread (docs/theory.md#pyscf-pitfalls, threads)."""
+    """Import PySCF lazily and pin it to one thread (docs/architecture.md#threads-and-processes)."""
     from pyscf import lib
 
-    lib.num_threads(1)
+    pin_threads(1)
     return lib
 
 
-@dataclasses.dataclass(frozen=True)
-class CASSCFGuess:
-    """What one CASSCF step hands to the next (picklable, numpy arrays only).
-
-    positions_bohr : (N, 3) geometry of the step that produced this guess, Bohr.
-    mo_coeff : (nao, nmo) converged orbitals at that geometry (orthonormal there).
-    ci : (F, na_strings, nb_strings) CI vectors, already sign-aligned (the phases of the states
-        whose couplings/dipoles were returned).
-    energies : (F,) energies of that step, Eh.
-    signature : tuple identifying the electronic problem (symbols, basis, charge, spin, active
-        space); a guess from another problem is rejected.
-    """
-
-    positions_bohr: np.ndarray
-    mo_coeff: np.ndarray
-    ci: np.ndarray
-    energies: np.ndarray
-    signature: tuple
 
 
-def orthonormality_error(mo_coeff: np.ndarray, ao_overlap: np.ndarray) -> float:
-    """max |CᵀSC − 1| (dimensionless) for orbitals C in an AO basis with overlap S."""
-    m = mo_coeff.T @ ao_overlap @ mo_coeff
-    return float(np.max(np.abs(m - np.eye(m.shape[0]))))
-
-
-def lowdin_orthonormalize(mo_coeff: np.ndarray, ao_overlap: np.ndarray) -> np.ndarray:
-    """Symmetric (Löwdin) orthonormalisation C → C (CᵀSC)^(−1/2).
-
-    Löwdin, J. Chem. Phys. 18, 365 (1950): among all orthonormal sets it is the closest to C in the
-    S-metric, so orbital character and order are kept (from memory; standard practice).
-    """
-    m = mo_coeff.T @ ao_overlap @ mo_coeff
-    w, v = np.linalg.eigh(0.5 * (m + m.T))
-    if w.min() <= 1e-12 * max(1.0, w.max()):
-        raise BackendError(f"starting orbitals are linearly dependent (min eigenvalue of CᵀSC {w.min():.3e})")
-    return mo_coeff @ (v * w ** -0.5) @ v.T
-
-
-def _string_occupations(ncas: int, nelec: int) -> np.ndarray:
-    """(nstrings, nelec) occupied active orbitals of each PySCF CI string, ascending."""
-    from pyscf.fci import cistring
-
-    strings = cistring.make_strings(range(ncas), nelec)
-    occ = np.array([[i for i in range(ncas) if (int(s) >> i) & 1] for s in strings], dtype=int)
-    return occ.reshape(len(strings), nelec)
-
-
-def _string_overlap_dets(mo_overlap: np.ndarray, ncore: int, ncas: int, nelec: int) -> np.ndarray:
-    """D[I, J] = det of the MO overlap over occupied orbitals (core + string I | core + string J)."""
-    occ = _string_occupations(ncas, nelec) + ncore
-    core = np.arange(ncore)
-    full = np.array([np.concatenate([core, o]) for o in occ], dtype=int)
-    n_str, n_occ = full.shape
-    if n_occ == 0:
-        return np.ones((n_str, n_str))
-    blocks = mo_overlap[full[:, None, :, None], full[None, :, None, :]]  # (I, J, n_occ, n_occ)
-    return np.linalg.det(blocks)
-
-
-def ci_overlap_matrix(mo_prev: np.ndarray, ci_prev: Sequence[np.ndarray], mo_new: np.ndarray,
-                      ci_new: Sequence[np.ndarray], ao_cross_overlap: np.ndarray, ncore: int,
-                      ncas: int, nelecas: tuple[int, int]) -> np.ndarray:
-    """S_kl = ⟨ψ_k(prev)|ψ_l(new)⟩ (dimensionless) for CAS wavefunctions at two geometries.
-
-    ⟨D_I|D_J⟩ = det(S^α_IJ) det(S^β_IJ) with S = C_prevᵀ S_AO(prev, new) C_new over the occupied
-    orbitals of each determinant (Löwdin, Phys. Rev. 97, 1474 (1955), from memory); core orbitals
-    are included in every determinant.  With c[Iα, Iβ] the CI coefficients,
-    S_kl = Σ c^prev_k[Iα,Iβ] Dα[Iα,Jα] Dβ[Iβ,Jβ] c^new_l[Jα,Jβ].
-    """
-    s_mo = mo_prev.T @ ao_cross_overlap @ mo_new
-    na, nb = nelecas
-    d_a = _string_overlap_dets(s_mo, ncore, ncas, na)
-    d_b = d_a if nb == na else _string_overlap_dets(s_mo, ncore, ncas, nb)
-    nk, nl = len(ci_prev), len(ci_new)
-    out = np.empty((nk, nl))
-    for l in range(nl):
-        t = d_a @ np.asarray(ci_new[l]).reshape(d_a.shape[1], d_b.shape[1]) @ d_b.T
-        for k in range(nk):
-            out[k, l] = float(np.sum(np.asarray(ci_prev[k]).reshape(t.shape) * t))
-    return out
-
-
-def active_overlap_min_singular(mo_prev: np.ndarray, mo_new: np.ndarray, ao_cross_overlap: np.ndarray,
-                                ncore: int, ncas: int) -> float:
-    """Smallest singular value of the active-orbital overlap C_act,prevᵀ S_AO C_act,new.
-
-    Close to 1 when the active space is carried smoothly; a drop means an orbital left the active
-    space (the states' meaning changed).  Dimensionless.
-    """
-    a_prev = mo_prev[:, ncore:ncore + ncas]
-    a_new = mo_new[:, ncore:ncore + ncas]
-    return float(np.linalg.svd(a_prev.T @ ao_cross_overlap @ a_new, compute_uv=False).min())
-
-
-class CASSCFBackend:
+class CASSCFBackend(WeightedForceMixin):
     """SA-CASSCF electronic backend (PySCF), equal state weights.
 
     Parameters
@@ -665,7 +579,7 @@ class CASSCFBackend:
 
         # --- transition dipoles
         t0 = time.perf_counter()
-        dipoles = self._dipoles(mol, mo, ci_raw)
+        dipoles = state_dipoles(mol, mo, ci_raw, self.ncore, self.ncas, self.nelecas)
         timings["dipoles"] = time.perf_counter() - t0
 
         gradients = couplings = None
@@ -687,42 +601,12 @@ class CASSCFBackend:
         return result.validate(natoms=len(self.symbols))
 
     # ------------------------------------------------------------------ properties
-    def _dipoles(self, mol, mo: np.ndarray, ci) -> np.ndarray:
-        """μ_kl = −tr(r D^kl) (+ nuclear term on the diagonal), e·Bohr; origin at the nuclear charge centre.
-
-        Off-diagonal elements use the active transition density C_act γ^kl C_actᵀ (core cancels by
-        orthogonality); the origin only affects the diagonal of charged systems.
-        """
-        from pyscf.fci import direct_spin1
-
-        charges = mol.atom_charges()
-        coords = mol.atom_coords()
-        origin = charges @ coords / charges.sum()
-        with mol.with_common_orig(origin):
-            r_ao = mol.intor_symmetric("int1e_r", comp=3)
-        c_core = mo[:, :self.ncore]
-        c_act = mo[:, self.ncore:self.ncore + self.ncas]
-        dm_core = 2.0 * c_core @ c_core.T
-        nuc = charges @ (coords - origin)
-        f = len(ci)
-        mu = np.zeros((f, f, 3))
-        for k in range(f):
-            for l in range(k, f):
-                t = direct_spin1.trans_rdm1(ci[k], ci[l], self.ncas, self.nelecas)
-                dm = c_act @ t @ c_act.T
-                if k == l:
-                    mu[k, k] = nuc - np.einsum("xij,ij->x", r_ao, dm + dm_core)
-                else:
-                    v = -np.einsum("xij,ij->x", r_ao, 0.5 * (dm + dm.T))
-                    mu[k, l] = mu[l, k] = v
-        return mu
-
     def _gradients_and_couplings(self, mc, timings: dict) -> tuple[np.ndarray, np.ndarray, dict]:
         """All state gradients (Eh/Bohr) and NAC vectors d_ab = ⟨a|∇b⟩ (1/Bohr), raw CI phases."""
         f = self.nstates
         natm = len(self.symbols)
         info: dict[str, Any] = {}
-        if self.gradient_method == "one_pass" and not self.density_fitting:
+        if self._one_pass_allowed():
             from mapdyn.backends.pyscf.casscf_one_pass import (
                 one_pass_gradients_and_couplings,
             )
@@ -770,73 +654,13 @@ class CASSCFBackend:
         return grads, nacs, info
 
     # ------------------------------------------------------------------ phase two
+    def _one_pass_allowed(self) -> bool:
+        """One-pass response requested, exact integrals, and a PySCF release whose internals were
+        tested (otherwise the plain per-state calls, with a one-time warning)."""
+        return (self.gradient_method == "one_pass" and not self.density_fitting
+                and response_interception_allowed())
+
     @property
     def offers_force(self) -> bool:
-        """True when :meth:`force` runs in one solve (one-pass path, exact integrals)."""
-        return self.gradient_method == "one_pass" and not self.density_fitting
-
-    def __getstate__(self) -> dict:
-        state = dict(self.__dict__)
-        state["_wavefunctions"] = {}
-        return state
-
-    @staticmethod
-    def _guess_key(guess: CASSCFGuess) -> bytes:
-        import hashlib
-
-        h = hashlib.sha1()
-        for a in (guess.positions_bohr, guess.mo_coeff, guess.ci, guess.energies):
-            h.update(np.ascontiguousarray(a, dtype=float).tobytes())
-        return h.digest()
-
-    def _remember(self, guess: CASSCFGuess, mc, signs: np.ndarray) -> None:
-        """Keep the converged solver of ``guess`` and the signs s_l that align its CI vectors
-        (ψ_l returned = s_l ψ_l of the solver) for phase two."""
-        self._wavefunctions[self._guess_key(guess)] = (mc, np.array(signs, dtype=float))
-        while len(self._wavefunctions) > 2:
-            self._wavefunctions.pop(next(iter(self._wavefunctions)))
-
-    def _wavefunction(self, guess: CASSCFGuess):
-        """(solver, signs): the converged SA-CASSCF of ``guess`` as kept by :meth:`compute`, or one
-        rebuilt from the guess's orbitals and (aligned) CI vectors with signs 1."""
-        kept = self._wavefunctions.get(self._guess_key(guess))
-        if kept is not None:
-            return kept
-        mol = self._build_mol(np.asarray(guess.positions_bohr, dtype=float))
-        guess = self._check_guess(guess, mol)
-        mc = self._make_mc(self._host_scf(mol))
-        mc.mo_coeff = np.array(guess.mo_coeff, copy=True)
-        mc.ci = [np.array(c, copy=True) for c in guess.ci]
-        mc.fcisolver.e_states = [float(e) for e in guess.energies]
-        mc.converged = True
-        return mc, np.ones(self.nstates)
-
-    def force(self, result: ElectronicResult, weights: np.ndarray) -> np.ndarray:
-        """Phase two: F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ in Eh/Bohr at the geometry of ``result``.
-
-        ``result`` comes from :meth:`compute` (its ``guess`` carries the wavefunction); ``weights``
-        (F, F) or (M, F, F) real symmetric (dimensionless) in the phases of ``result`` (those of
-        its couplings and dipoles).  Returns (N, 3) or (M, N, 3).  One-pass path: one Lagrange solve
-        per weight matrix and one derivative-integral pass; otherwise all gradients and couplings
-        are computed and contracted.  Timings go to ``result.diagnostics["timings"]["force"]``.
-        """
-        w = check_weights(weights, self.nstates)
-        if not isinstance(result, ElectronicResult) or not isinstance(result.guess, CASSCFGuess):
-            raise ValueError("result must be an ElectronicResult from this backend's compute")
-        t0 = time.perf_counter()
-        mc, signs = self._wavefunction(result.guess)
-        w_solver = w * (signs[:, None] * signs[None, :])[None]  # ⟨ψ_k|∇H|ψ_l⟩ = s_k s_l × solver's
-        if self.offers_force:
-            from mapdyn.backends.pyscf.casscf_force import weighted_force
-
-            forces, info = weighted_force(mc, w_solver, use_etfs=self.nac_form == "etf", conv_rtol=self.lagrange_rtol)
-            if not info["converged"]:
-                warnings.warn("SA-CASSCF weighted Lagrange equations did not converge", RuntimeWarning, stacklevel=2)
-            parts = info["timings"]
-        else:
-            grads, nacs, _ = self._gradients_and_couplings(mc, parts := {})
-            forces = contract_force(result.energies, grads, nacs, w_solver)
-        timings = result.diagnostics.setdefault("timings", {})
-        timings["force"] = time.perf_counter() - t0
-        timings["force_parts"] = parts
-        return forces[0] if np.ndim(weights) == 2 else forces
+        """True when :meth:`force` runs in one solve (one-pass path, exact integrals, tested PySCF)."""
+        return self._one_pass_allowed()

@@ -26,10 +26,13 @@ Not thread-safe (PySCF module attributes are swapped while recording); no densit
 from __future__ import annotations
 
 import time
+import warnings
 
 import numpy as np
 
+from mapdyn.backends.contract import ElectronicResult, check_weights, contract_force
 from mapdyn.backends.pyscf.casscf_one_pass import _DM2_SUBSCRIPTS, _dense_eri_pass, _intercept, _Tape
+from mapdyn.backends.pyscf.casscf_states import CASSCFGuess
 
 __all__ = ["weighted_active_densities", "weighted_force"]
 
@@ -318,3 +321,75 @@ def weighted_force(mc, weights: np.ndarray, use_etfs: bool = False, conv_rtol: f
         forces[m] = -de
     timings["csf_and_nuclear"] = time.perf_counter() - t0
     return (forces[0] if single else forces), {"converged": conv, "timings": timings}
+
+
+class WeightedForceMixin:
+    """Phase two of the SA-CASSCF backend (mixed into
+    :class:`mapdyn.backends.pyscf.casscf.CASSCFBackend`): the mapping force for weight matrices
+    from the converged wavefunction of a phase-one result.  Uses the host's ``nstates``,
+    ``offers_force``, ``nac_form``, ``lagrange_rtol``, ``_wavefunctions`` and its molecule/solver
+    builders."""
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["_wavefunctions"] = {}
+        return state
+
+    @staticmethod
+    def _guess_key(guess: CASSCFGuess) -> bytes:
+        import hashlib
+
+        h = hashlib.sha1()
+        for a in (guess.positions_bohr, guess.mo_coeff, guess.ci, guess.energies):
+            h.update(np.ascontiguousarray(a, dtype=float).tobytes())
+        return h.digest()
+
+    def _remember(self, guess: CASSCFGuess, mc, signs: np.ndarray) -> None:
+        """Keep the converged solver of ``guess`` and the signs s_l that align its CI vectors
+        (ψ_l returned = s_l ψ_l of the solver) for phase two."""
+        self._wavefunctions[self._guess_key(guess)] = (mc, np.array(signs, dtype=float))
+        while len(self._wavefunctions) > 2:
+            self._wavefunctions.pop(next(iter(self._wavefunctions)))
+
+    def _wavefunction(self, guess: CASSCFGuess):
+        """(solver, signs): the converged SA-CASSCF of ``guess`` as kept by :meth:`compute`, or one
+        rebuilt from the guess's orbitals and (aligned) CI vectors with signs 1."""
+        kept = self._wavefunctions.get(self._guess_key(guess))
+        if kept is not None:
+            return kept
+        mol = self._build_mol(np.asarray(guess.positions_bohr, dtype=float))
+        guess = self._check_guess(guess, mol)
+        mc = self._make_mc(self._host_scf(mol))
+        mc.mo_coeff = np.array(guess.mo_coeff, copy=True)
+        mc.ci = [np.array(c, copy=True) for c in guess.ci]
+        mc.fcisolver.e_states = [float(e) for e in guess.energies]
+        mc.converged = True
+        return mc, np.ones(self.nstates)
+
+    def force(self, result: ElectronicResult, weights: np.ndarray) -> np.ndarray:
+        """Phase two: F = −Σ_kl ρ̄_kl ⟨ψ_k|∇H|ψ_l⟩ in Eh/Bohr at the geometry of ``result``.
+
+        ``result`` comes from :meth:`compute` (its ``guess`` carries the wavefunction); ``weights``
+        (F, F) or (M, F, F) real symmetric (dimensionless) in the phases of ``result`` (those of
+        its couplings and dipoles).  Returns (N, 3) or (M, N, 3).  One-pass path: one Lagrange solve
+        per weight matrix and one derivative-integral pass; otherwise all gradients and couplings
+        are computed and contracted.  Timings go to ``result.diagnostics["timings"]["force"]``.
+        """
+        w = check_weights(weights, self.nstates)
+        if not isinstance(result, ElectronicResult) or not isinstance(result.guess, CASSCFGuess):
+            raise ValueError("result must be an ElectronicResult from this backend's compute")
+        t0 = time.perf_counter()
+        mc, signs = self._wavefunction(result.guess)
+        w_solver = w * (signs[:, None] * signs[None, :])[None]  # ⟨ψ_k|∇H|ψ_l⟩ = s_k s_l × solver's
+        if self.offers_force:
+            forces, info = weighted_force(mc, w_solver, use_etfs=self.nac_form == "etf", conv_rtol=self.lagrange_rtol)
+            if not info["converged"]:
+                warnings.warn("SA-CASSCF weighted Lagrange equations did not converge", RuntimeWarning, stacklevel=2)
+            parts = info["timings"]
+        else:
+            grads, nacs, _ = self._gradients_and_couplings(mc, parts := {})
+            forces = contract_force(result.energies, grads, nacs, w_solver)
+        timings = result.diagnostics.setdefault("timings", {})
+        timings["force"] = time.perf_counter() - t0
+        timings["force_parts"] = parts
+        return forces[0] if np.ndim(weights) == 2 else forces

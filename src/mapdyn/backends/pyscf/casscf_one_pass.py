@@ -34,6 +34,8 @@ from typing import Any
 
 import numpy as np
 
+from mapdyn.backends.pyscf.common import PATCH_LOCK
+
 __all__ = ["one_pass_gradients_and_couplings"]
 
 _DM2_SUBSCRIPTS = "ijw,pi,qj->pqw"
@@ -147,7 +149,13 @@ class _Ao2moProxy:
 
 @contextlib.contextmanager
 def _intercept(tape: _Tape, mf):
-    """Swap PySCF's derivative-integral primitives for the tape (restored on exit)."""
+    """Swap PySCF's derivative-integral primitives for the tape, under the PySCF patch lock;
+    every attribute is restored on exit, also after an exception."""
+    with PATCH_LOCK:
+        yield from _intercepted(tape, mf)
+
+
+def _intercepted(tape: _Tape, mf):
     from pyscf import ao2mo as real_ao2mo
     from pyscf import lib as real_lib
     from pyscf.grad import casscf as casscf_grad
