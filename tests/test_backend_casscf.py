@@ -345,6 +345,9 @@ def test_active_space_change_is_detected_and_cas_orbitals_option():
     assert np.max(np.abs(explicit.energies - res.energies)) < 1e-8
     with pytest.raises(ValueError, match="cas_orbitals"):
         h2o_backend(cas_orbitals=[1, 2, 3])
+    # the stability search swaps orbitals only for the default choice; chosen orbitals are kept
+    assert any("swapped" in a["what"] for a in res.diagnostics["attempts"])
+    assert not any("swapped" in a["what"] for a in explicit.diagnostics["attempts"])
 
 
 def test_doublet_cation_states_gradients_and_nacs():
