@@ -262,11 +262,12 @@ def test_molecular_study_end_to_end_and_continuation(tmp_path):
 
 
 @pytest.mark.slow
-def test_shipped_tiny_molecular_study(tmp_path):
-    here = str(INPUTS / "ethylene_tiny.toml")
-    proc = mapdyn("run", os.path.abspath(here), "--output", "tiny", cwd=tmp_path, timeout=3600)
+def test_shipped_demo_study(tmp_path):
+    # the README's first command (after installation), run as a new user would
+    here = str(INPUTS / "methaniminium_demo.toml")
+    proc = mapdyn("run", here, "--output", "demo", cwd=tmp_path, timeout=3600)
     assert "failed 0" in proc.stderr
-    assert (tmp_path / "tiny" / "report" / "populations.png").is_file()
+    assert (tmp_path / "demo" / "report" / "populations.png").is_file()
 
 
 def test_help_and_usage_errors(tmp_path, capsys):

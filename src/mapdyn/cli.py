@@ -25,7 +25,7 @@ examples:
   mapdyn resume runs/model_tully1            continue after Ctrl-C, a crash or a reboot
   mapdyn extend runs/model_tully1 --trajectories 400 --duration "3000 au"
   mapdyn analyze runs/model_tully1           (re)write the report folder
-  mapdyn check inputs/ethylene_tiny.toml     preflight: finite-difference checks and core-hours
+  mapdyn check inputs/methaniminium_demo.toml  preflight: finite-difference checks and core-hours
   mapdyn validate --quick                    the method's accuracy on built-in exact benchmarks
 
 A study folder holds everything: the input, initial conditions, checkpoints of every

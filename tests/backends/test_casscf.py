@@ -345,6 +345,9 @@ def test_active_space_change_is_detected_and_cas_orbitals_option():
     assert np.max(np.abs(explicit.energies - res.energies)) < 1e-8
     with pytest.raises(ValueError, match="cas_orbitals"):
         h2o_backend(cas_orbitals=[1, 2, 3])
+    # the stability search swaps orbitals only for the default choice; chosen orbitals are kept
+    assert any("swapped" in a["what"] for a in res.diagnostics["attempts"])
+    assert not any("swapped" in a["what"] for a in explicit.diagnostics["attempts"])
 
 
 def test_doublet_cation_states_gradients_and_nacs():
@@ -378,7 +381,7 @@ def _ethylene_path(backend, n_steps=3, step=0.01):
 
 @pytest.mark.filterwarnings("ignore:active space changed")
 def test_cold_start_saddle_is_left_and_path_stays_on_one_solution():
-    # Ethylene SA2-CAS(2,2)/STO-3G at the planar geometry of inputs/ethylene_tiny.toml.  From RHF
+    # Ethylene SA2-CAS(2,2)/STO-3G at the planar geometry ETHYLENE_POS.  From RHF
     # orbitals the SA-CASSCF converges to the pi/pi* stationary point, a saddle of the state-averaged
     # energy: 0.01 Bohr off the planar geometry the warm start slides to the sigma/pi* solution,
     # 8.9 mEh lower in SA energy (measured), S1 drops by ~60 mEh and the state overlap is ~0.01.

@@ -1,7 +1,7 @@
 """Steady-state ensemble throughput on 1 vs 2 Dask workers (LocalCluster on 127.0.0.1).
 
-Study: ``inputs/ethylene_tiny.toml`` (CIS/STO-3G ethylene, a scenario of our own) with 8
-trajectories of equal length (``--duration``, default 4 fs = 16 steps).  Start-up is excluded:
+Study: ``inputs/methaniminium_demo.toml`` (CH2NH2+, SA2-CASSCF(2,2)/STO-3G, a scenario of our own)
+with 8 trajectories of equal length (``--duration``, default 4 fs = 16 steps of 0.25 fs).  Start-up is excluded:
 initial conditions are computed once and copied into each run folder, the cluster is started and
 every worker is warmed (imports, the study opened, the backend built and run once at a sampled
 geometry) before the clock starts.  The clock covers ``run_ensemble`` only: the same runner and
@@ -22,7 +22,7 @@ import tempfile
 import time
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-STUDY = os.path.join(HERE, os.pardir, os.pardir, "inputs", "ethylene_tiny.toml")
+STUDY = os.path.join(HERE, os.pardir, os.pardir, "inputs", "methaniminium_demo.toml")
 
 
 def warm_worker(study_dir: str) -> float:

@@ -429,6 +429,41 @@ def test_averaged_density_limits():
         drive(WideGapModel(), -4.0, 20.0, np.array([1.0, 0.0]), 20.0, 0, force_averaging="yes")
 
 
+class _JumpAt:
+    """Model adapter whose result at call ``at`` carries the diagnostics of a jump between
+    electronic solutions (an orbital left the active space, state overlap 0.07, as measured for
+    CH2NH2+ SA2-CASSCF(2,2)/STO-3G at C–N 3.2 Å); energies and forces are untouched."""
+
+    def __init__(self, model, at: int, active_change: bool = True):
+        self.inner = ModelAdapterBackend(model)
+        self.nstates, self.calls, self.at, self.active_change = self.inner.nstates, 0, at, active_change
+
+    def compute(self, positions_bohr, guess=None, need_gradients=True):
+        result = self.inner.compute(positions_bohr, guess=guess, need_gradients=need_gradients)
+        self.calls += 1
+        if self.calls == self.at:
+            result.diagnostics = {**result.diagnostics, "min_overlap": 0.07, "active_overlap_min_singular": 0.06,
+                                  "active_space_change": self.active_change}
+        return result
+
+
+def test_jump_between_electronic_solutions_stops_the_trajectory():
+    """A step onto another electronic solution is not taken: with on_backend_error="stop" the
+    trajectory stops before it with the reason recorded, with "raise" a BackendError names it.  A low
+    state overlap with continuous orbitals (a passage through an intersection) is integrated."""
+    z = np.array([0.3 + 0.1j, 1.2 - 0.2j])
+    mk = lambda backend, mode: MappingDynamics(one_atom(-4.0, 20.0, 2000.0), backend, 2.0 * units.AUT, 1,
+                                               MethodOptions(), mapping_variables=(z.real, z.imag),
+                                               on_backend_error=mode)
+    dyn = mk(_JumpAt(WideGapModel(), at=6), "stop")  # call 1 is t = 0, call 6 is step 5
+    assert dyn.run(10) is False
+    assert dyn.state.step == 4 and dyn.state.stopped
+    assert "electronic structure discontinuous" in dyn.state.stop_reason and "step 5" in dyn.state.stop_reason
+    with pytest.raises(BackendError, match="discontinuous"):
+        mk(_JumpAt(WideGapModel(), at=6), "raise").run(10)
+    assert mk(_JumpAt(WideGapModel(), at=6, active_change=False), "stop").run(10) is True
+
+
 # ---------------------------------------------------------------------------------------- SA-CASSCF
 def lih_casscf_run(dt_fs: float, nsteps: int) -> MappingDynamics:
     """LiH, SA-CASSCF(2,2)/STO-3G over 2 singlets, sqc/square/symmetrized, started in S1 from 1.6 Å

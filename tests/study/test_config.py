@@ -100,6 +100,9 @@ CASES = [
     ("spin parity", edit(MOLECULE, "molecule", "spin", "1"), "molecule.spin = 1: 2 electrons cannot have 2S = 1"),
     ("too many active electrons", edit(MOLECULE, "electronic", "active_electrons", "6"), "electronic.active_electrons = 6: the molecule has only 2 electrons"),
     ("bad basis", edit(MOLECULE, "electronic", "basis", '"sto-99g"'), "electronic.basis = \"sto-99g\": PySCF has no such basis"),
+    ("cas_orbitals of the wrong length", edit(MOLECULE, "electronic", "cas_orbitals", "[0, 1, 2]"), "electronic.cas_orbitals = [0, 1, 2]: give active_orbitals = 2 distinct 0-based"),
+    ("cas_orbitals repeated", edit(MOLECULE, "electronic", "cas_orbitals", "[1, 1]"), "electronic.cas_orbitals = [1, 1]"),
+    ("cas_orbitals beyond the basis", edit(MOLECULE, "electronic", "cas_orbitals", "[0, 2]"), "electronic.cas_orbitals = [0, 2]: the sto-3g basis gives orbitals 0..1 only"),
     ("casscf key on tddft backend", edit(MOLECULE, "electronic", "backend", '"tddft"'), "electronic.active_orbitals is not used with backend = \"tddft\""),
     ("one state only", edit(MOLECULE, "electronic", "states", "1"), "electronic.states = 1"),
     ("model key on a molecule", edit(MOLECULE, "initial", "momentum_au", "3.0"), "initial.momentum_au is not used for molecules"),
@@ -161,6 +164,11 @@ def test_valid_inputs_and_units(tmp_path):
     assert mol.molecule.positions_bohr[1, 2] == pytest.approx(0.74 / 0.529177210903, rel=1e-8)
     assert mol.electronic.options["ncas"] == 2 and mol.dynamics.nsteps == 10
     assert mol.initial.normal_modes_from == "scf"
+    # chosen active orbitals (0-based RHF indices) reach the CASSCF backend
+    q.write_text(edit(MOLECULE, "electronic", "cas_orbitals", "[1, 0]"))
+    from mapdyn.study.backend_factory import make_backend
+
+    assert make_backend(load_study_config(q)).cas_orbitals == [1, 0]
 
 
 def test_every_shipped_input_is_valid():

@@ -151,8 +151,8 @@ def test_casscf_backend_passes_within_stated_tolerance():
     assert check.coupling_error <= FD_TOLERANCES["CASSCFBackend"].coupling_atol
 
 
-def test_check_command_on_the_tiny_molecular_study(capsys):
-    # `mapdyn check inputs/ethylene_tiny.toml`: gradients and couplings (analytic NAC vectors vs
+def test_check_command_on_the_demo_study(capsys):
+    # `mapdyn check inputs/methaniminium_demo.toml` (CH2NH2+, SA2-CASSCF(2,2)/STO-3G): gradients and couplings (analytic NAC vectors vs
     # overlap finite differences for SA-CASSCF; overlap-coupling consistency on the TDA path) within
     # the backend's stated tolerances, and a core-hour line.
     pytest.importorskip("pyscf")
@@ -161,7 +161,7 @@ def test_check_command_on_the_tiny_molecular_study(capsys):
     from mapdyn.cli import main
     from mapdyn.study.config import load_study_config
 
-    path = os.path.join(os.path.dirname(__file__), os.pardir, os.pardir, "inputs", "ethylene_tiny.toml")
+    path = os.path.join(os.path.dirname(__file__), os.pardir, os.pardir, "inputs", "methaniminium_demo.toml")
     backend = load_study_config(path).electronic.backend
     code = main(["check", path])
     out = capsys.readouterr().out.splitlines()

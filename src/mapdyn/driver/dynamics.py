@@ -66,12 +66,20 @@ from mapdyn.core.adiabatic import (
 from mapdyn.core.mapping import actions, effective_density
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.windows import sample_mapping_variables
-from mapdyn.driver.observers import DriftMonitor, FrameRecorder, frame_atoms, write_frames_extxyz
+from mapdyn.driver.observers import (
+    DISCONTINUITY_OVERLAP,
+    DriftMonitor,
+    FrameRecorder,
+    electronic_discontinuity,
+    frame_atoms,
+    write_frames_extxyz,
+)
 from mapdyn.driver.state import DriverState
 from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
-           "PROJECTION_WARNING", "GAP_WARNING", "GAP_PHASE_LIMIT", "GAP_COUPLING_FLOOR"]
+           "PROJECTION_WARNING", "GAP_WARNING", "GAP_PHASE_LIMIT", "GAP_COUPLING_FLOOR",
+           "electronic_discontinuity", "DISCONTINUITY_OVERLAP"]
 
 _PROPAGATIONS = ("auto", "overlap", "coupling")
 _ON_ERROR = ("raise", "stop")
@@ -107,7 +115,9 @@ class MappingDynamics(MolecularDynamics):
     geometry_file : extxyz file (any name ase.io reads back) rewritten atomically at the end of
         each ``run`` with all recorded frames.
     zero_linear_momentum, zero_angular_momentum : remove them from the initial momenta.
-    on_backend_error : "raise" (default) or "stop" (the trajectory stops, reason recorded).
+    on_backend_error : "raise" (default) or "stop" (the trajectory stops, reason recorded); also
+        applies to a jump between electronic solutions (:func:`electronic_discontinuity`), where the
+        step is not taken.
     restart_state : a :class:`DriverState` to continue from instead of starting anew (no backend
         call, no random draws).
     force_averaging : half kicks with ρ averaged over the adjacent electronic half step (default,
@@ -369,6 +379,12 @@ class MappingDynamics(MolecularDynamics):
             return None
         if new.gradients is None and not self.two_phase:
             raise ValueError("the backend returned no gradients with need_gradients=True")
+        jump = electronic_discontinuity(new)
+        if jump is not None:
+            if self.on_backend_error == "raise":
+                raise BackendError(f"step {st.step + 1}: {jump}")
+            st.stopped, st.stop_reason = True, f"{jump} at step {st.step + 1}; stopped before it"
+            return None
         return new
 
     def _step_kicks(self, st: DriverState, new: ElectronicResult, x, p, t: float,

@@ -21,8 +21,9 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
     [study]      name, description, folder
     [molecule]   geometry | atoms, units, charge, spin            (not for backend = "model")
     [electronic] backend = "casscf" | "tddft" | "model" | "callback", states, and per backend:
-                 casscf:   basis, active_orbitals, active_electrons, density_fitting,
-                           coupling_form, spin_purity
+                 casscf:   basis, active_orbitals, active_electrons, cas_orbitals (0-based
+                           RHF orbital indices, 0 = lowest), density_fitting, coupling_form,
+                           spin_purity
                  tddft:    basis, functional, response, grid_level, gradient_residual_limit
                  model:    model, parameters, engine
                  callback: function
@@ -215,7 +216,8 @@ _STUDY_KEYS = ("name", "description", "folder")
 _MOLECULE_KEYS = ("geometry", "atoms", "units", "charge", "spin")
 _ELEC_COMMON = ("backend", "states")
 _ELEC_BY_BACKEND = {
-    "casscf": ("basis", "active_orbitals", "active_electrons", "density_fitting", "coupling_form", "spin_purity"),
+    "casscf": ("basis", "active_orbitals", "active_electrons", "cas_orbitals", "density_fitting", "coupling_form",
+               "spin_purity"),
     "tddft": ("basis", "functional", "response", "grid_level", "gradient_residual_limit"),
     "model": ("model", "parameters", "engine"),
     "callback": ("function",),
@@ -288,6 +290,26 @@ def _parse_molecule(sec: Section, base_dir: str) -> MoleculeConfig:
     if (nelec - spin) % 2:
         raise ConfigError("molecule.spin", f"= {spin}: {nelec} electrons cannot have 2S = {spin} (parity)")
     return MoleculeConfig(symbols, np.asarray(pos_ang, dtype=float) / BOHR_IN_ANGSTROM, charge, spin, source)
+
+
+def _cas_orbitals(sec: Section, ncas: int, basis: str, molecule: "MoleculeConfig") -> list[int] | None:
+    """``electronic.cas_orbitals``: ``ncas`` distinct 0-based RHF orbital indices (0 = lowest in energy)
+    that form the active space of every cold start, or None (the orbitals around the HOMO/LUMO)."""
+    key = sec.key("cas_orbitals")
+    v = sec.raw("cas_orbitals")
+    if v is None:
+        return None
+    if (not isinstance(v, list) or not all(isinstance(i, int) and not isinstance(i, bool) for i in v)
+            or len(v) != ncas or len(set(v)) != ncas or min(v) < 0):
+        raise ConfigError(key, f"= {show_value(v)}: give active_orbitals = {ncas} distinct 0-based RHF orbital indices "
+                          f"(0 = lowest), e.g. [6, 7]")
+    from pyscf import gto
+
+    atoms = [(s, (0.0, 0.0, 2.0 * i)) for i, s in enumerate(molecule.symbols)]
+    nmo = gto.M(atom=atoms, basis=basis, charge=molecule.charge, spin=molecule.spin, verbose=0).nao_nr()
+    if max(v) >= nmo:
+        raise ConfigError(key, f"= {show_value(v)}: the {basis} basis gives orbitals 0..{nmo - 1} only")
+    return [int(i) for i in v]
 
 
 def _check_basis(basis: str, symbols, key: str) -> None:
@@ -394,11 +416,14 @@ def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: s
             raise ConfigError("electronic.active_electrons", f"= {nel}: leaves an odd number of core electrons ({nelec - nel})")
         if (nel - molecule.spin) % 2 or nel < molecule.spin:
             raise ConfigError("electronic.active_electrons", f"= {nel}: incompatible with molecule.spin = {molecule.spin}")
+        cas_orbitals = _cas_orbitals(sec, ncas, basis, molecule)
         options = {"basis": basis, "ncas": ncas, "nelecas": nel, "nstates": states, "charge": molecule.charge,
                    "spin": molecule.spin,
                    "density_fitting": sec.boolean("density_fitting", False),
                    "nac_form": sec.choice("coupling_form", ("full", "etf"), "full"),
                    "spin_purity": sec.choice("spin_purity", ("shift", "spin0", "none"), "shift")}
+        if cas_orbitals is not None:
+            options["cas_orbitals"] = cas_orbitals
         level = f"SA{states}-CASSCF({nel},{ncas})/{basis}"
         return ElectronicConfig("casscf", states, basis, options, level_of_theory=level)
     # tddft

@@ -93,8 +93,9 @@ class CASSCFBackend(WeightedForceMixin):
     nelecas : active electrons, int or (n_alpha, n_beta).
     nstates : number of states averaged (equal weights) and returned, ≥ 2.
     charge, spin : total charge and 2S (PySCF convention).
-    cas_orbitals : optional 0-based indices of the SCF orbitals that form the active space on a cold
-        start (warm starts carry the previous active orbitals).
+    cas_orbitals : optional 0-based indices of the SCF orbitals (0 = lowest) that form the active space
+        on a cold start (warm starts carry the previous active orbitals); the stability search then
+        skips its orbital swaps, so the chosen orbitals are kept (its kicks still run).
     auxbasis : auxiliary basis for density fitting (None: PySCF's default JK-fit basis, which does
         not cover every element, e.g. use ``"def2-universal-jkfit"`` for Li).
     density_fitting : density-fitted integrals for SCF, CASSCF and gradients.  PySCF's NAC class
@@ -113,8 +114,8 @@ class CASSCFBackend(WeightedForceMixin):
     gradient_method : ``"one_pass"`` (default: all gradients and NACs with one shared pass over the
         derivative integrals, :mod:`mapdyn.backends.pyscf.casscf_one_pass`; identical results) or
         ``"plain"`` (one PySCF call per gradient/NAC).  With density fitting the plain path is used.
-    cold_start_alternatives : stability search of every cold start: besides the default (or
-        ``cas_orbitals``) choice, re-converge with the lowest active orbital swapped for each of the
+    cold_start_alternatives : stability search of every cold start (without ``cas_orbitals``): besides
+        the default choice, re-converge with the lowest active orbital swapped for each of the
         next this-many lower SCF orbitals and the highest one for each of the next this-many higher
         ones, and keep the lowest state-averaged energy.  0 disables the swaps.
     stability_kicks : after the swaps, re-converge this many times from the best orbitals rotated by
@@ -344,7 +345,8 @@ class CASSCFBackend(WeightedForceMixin):
         nmo = mo_start.shape[1]
         lo, hi = self.ncore, self.ncore + self.ncas - 1
         starts: list[tuple[str, np.ndarray]] = []
-        for k in range(1, self.cold_start_alternatives + 1):
+        swaps = 0 if self.cas_orbitals is not None else self.cold_start_alternatives  # the user chose the orbitals
+        for k in range(1, swaps + 1):
             for slot, other in ((lo, lo - k), (hi, hi + k)):
                 if 0 <= other < nmo:
                     mo = mo_start.copy()
