@@ -34,7 +34,9 @@ from ase import units  # noqa: E402
 from mapdyn.backends.pyscf.ground_state import PySCFGroundState  # noqa: E402
 from mapdyn.backends.pyscf.tddft import TDDFTBackend  # noqa: E402
 from mapdyn.initial.excitation import absorption_spectrum, choose_initial_states, excitation_properties, plot_absorption_spectrum  # noqa: E402
-from mapdyn.initial.sampling import check_level_of_theory, compute_hessian, normal_modes, optimize_ground_state, sample_wigner  # noqa: E402
+from mapdyn.initial.geometry import check_level_of_theory, optimize_ground_state  # noqa: E402
+from mapdyn.initial.normal_modes import compute_hessian, normal_modes  # noqa: E402
+from mapdyn.initial.wigner import sample_wigner  # noqa: E402
 
 SYMBOLS = ["C", "O", "H", "H"]
 #: rough starting geometry (Å), planar, converted to Bohr at this boundary

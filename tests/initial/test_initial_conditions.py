@@ -21,20 +21,9 @@ from mapdyn.initial.excitation import (  # noqa: E402
     plot_absorption_spectrum,
     state_choice_rng,
 )
-from mapdyn.initial.sampling import (  # noqa: E402
-    LevelOfTheoryWarning,
-    ModeDroppedWarning,
-    check_level_of_theory,
-    compute_hessian,
-    draw_wigner,
-    masses_amu_for,
-    normal_modes,
-    optimize_ground_state,
-    remove_rigid_body_motion,
-    sample_wigner,
-    trajectory_rng,
-    wigner_widths,
-)
+from mapdyn.initial.geometry import LevelOfTheoryWarning, ModeDroppedWarning, check_level_of_theory, masses_amu_for, optimize_ground_state
+from mapdyn.initial.normal_modes import compute_hessian, normal_modes
+from mapdyn.initial.wigner import draw_wigner, remove_rigid_body_motion, sample_wigner, trajectory_rng, wigner_widths
 
 SYMBOLS = ["O", "H", "H"]
 # deliberately distorted water (Bohr), far enough from the minimum to need several BFGS steps

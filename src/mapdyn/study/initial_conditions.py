@@ -27,7 +27,7 @@ def _sample_rows(config: StudyConfig, modes, indices) -> dict:
     """Wigner rows for trajectory ``indices``: positions/momenta (a.u.) and the generator state
     after the nuclear draws (the driver draws the mapping variables from it)."""
     from mapdyn.core.sampling import trajectory_generator
-    from mapdyn.initial.sampling import draw_wigner
+    from mapdyn.initial.wigner import draw_wigner
 
     pos, mom, rng_states = [], [], []
     for i in indices:
@@ -87,11 +87,8 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
         meta["trajectories"] = n
         write_h5(path, arrays, meta)
         return path
-    from mapdyn.initial.sampling import (
-        compute_hessian,
-        normal_modes,
-        optimize_ground_state,
-    )
+    from mapdyn.initial.geometry import optimize_ground_state
+    from mapdyn.initial.normal_modes import compute_hessian, normal_modes
 
     mol = config.molecule
     backend = make_backend(config)

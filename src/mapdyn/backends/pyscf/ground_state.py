@@ -2,7 +2,7 @@
 
 It follows the backend contract of :mod:`mapdyn.backends.contract` with ``nstates = 1`` and adds
 ``analytic_hessian(positions_bohr)`` (PySCF ``mf.Hessian().kernel()``), which
-:func:`mapdyn.initial.sampling.compute_hessian` uses when present.  Excited-state backends live in
+:func:`mapdyn.initial.normal_modes.compute_hessian` uses when present.  Excited-state backends live in
 ``mapdyn.backends``.  Atomic units throughout (Bohr in, Eh and Eh/Bohr out).
 """
 
