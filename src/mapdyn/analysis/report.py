@@ -101,6 +101,23 @@ def _pm(v: float, e: float, digits: int = 3) -> str:
     return f"{v:.{digits}g} ± {e:.2g}"
 
 
+def fit_supported(life: Any, fit: Any) -> tuple[bool, str]:
+    """Whether a lifetime fit may be shown as numbers: the fit passes the rule and the data show a
+    decay at all; else (False, reason)."""
+    if fit.supported and not life.reasons:
+        return True, ""
+    why = ([r for r in life.reasons if not r.startswith(("mono: ", "bi: "))] or list(fit.reasons)
+           or ["fit did not converge"])
+    return False, "; ".join(why)
+
+
+def _circ_pm(values: np.ndarray, unit: str) -> str:
+    from mapdyn.analysis.statistics import circular_stats_degrees
+
+    m, sd, _, _ = circular_stats_degrees(values[np.isfinite(values)])
+    return f"{float(m):.4g} ± {float(sd):.2g} {unit} (circular mean ± circular std, range (−180°, 180°])"
+
+
 def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.PathLike, *,
                  time_unit: str | None = None, title: str | None = None) -> Report:
     """Write figures, CSV files and ``summary.md`` into ``folder`` (created if missing).
@@ -138,8 +155,8 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     data += [pops.n_none, pops.n_frames]
     tab("populations", cols, data)
     fig("populations", plots.plot_populations, pops, time_unit=tu,
-        note=(f"adiabatic populations vs time, {int(round(100 * pops.confidence_level))} % trajectory-bootstrap "
-              "bands; lower panel: fraction of trajectories with a frame and (SQC) in no window"))
+        note=(f"adiabatic populations vs time, bands: {pops.interval}; "
+              "lower panel: fraction of trajectories with a frame and (SQC) in no window"))
 
     # initial-state population and fits ----------------------------------------------------------
     init, life = results.initial_population, results.lifetimes
@@ -162,11 +179,13 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         name = "observable_" + _slug(obs.name)
         cols, data = _time_columns(obs.times)
         u = "angstrom" if obs.unit == "Å" else obs.unit
-        cols += [f"mean_{u}", f"std_{u}", f"q10_{u}", f"q90_{u}", "n"]
+        stat = "circmean" if obs.circular else "mean"
+        cols += [f"{stat}_{u}", f"{'circstd' if obs.circular else 'std'}_{u}", f"q10_{u}", f"q90_{u}", "n"]
         data += [obs.mean, obs.std, obs.q10, obs.q90, obs.n]
         tab(name, cols, data)
         fig(name, plots.plot_observable, obs, time_unit=tu,
-            note=f"{obs.name} ({obs.unit}): ensemble mean ± standard deviation and 10/90 % quantiles")
+            note=f"{obs.name} ({obs.unit}): ensemble {obs.statistic} and 10/90 % quantiles"
+                 + (" (of deviations from the circular mean; angles folded into (−180°, 180°])" if obs.circular else ""))
 
     for ent in results.first_entries:
         name = f"first_entry_state{ent.state}_" + _slug(ent.name)
@@ -248,8 +267,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append(f"- trajectories in no window: {int(pops.n_none[-1])} at the last time, at most "
                  f"{int(pops.n_none.max())}")
     L.append("")
-    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_IN_FS:.4g} fs, "
-             f"{int(round(100 * pops.confidence_level))} % interval, {pops.bootstrap_method}):")
+    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_IN_FS:.4g} fs; interval: "
+             f"{pops.interval or pops.bootstrap_method}):")
     L.append("")
     L.append("| state | population | interval |")
     L.append("|---|---|---|")
@@ -269,15 +288,20 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append("| model | parameters (times in fs) | reduced χ² | AIC | supported |")
         L.append("|---|---|---|---|---|")
         for name, f in life.fits.items():
-            parts = []
-            for p in f.names:
-                scale = AU_TIME_IN_FS if p.startswith("tau") or p == "delay" else 1.0
-                parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
+            ok, why = fit_supported(life, f)
+            if ok:
+                parts = []
+                for p in f.names:
+                    scale = AU_TIME_IN_FS if p.startswith("tau") or p == "delay" else 1.0
+                    parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
+                params = ", ".join(parts)
+            else:
+                params = f"not supported ({why})"
             d = f.diagnostics
             rc = f"{d['reduced_chi2']:.3g}" if "reduced_chi2" in d else "n/a"
             aic = f"{d['aic']:.4g}" if "aic" in d else "n/a"
-            sup = "yes" if f.supported else "no: " + "; ".join(f.reasons)
-            L.append(f"| {name} | {', '.join(parts)} | {rc} | {aic} | {sup} |")
+            sup = "yes" if ok else "no"
+            L.append(f"| {name} | {params} | {rc} | {aic} | {sup} |")
         L.append("")
         meth = {f.diagnostics.get("uncertainty_method") for f in life.fits.values() if f.diagnostics.get("converged")}
         L.append("Uncertainties (1σ): " + ", ".join(sorted(m for m in meth if m)) + ".")
@@ -287,13 +311,18 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     if res.observables or res.first_entries:
         L.append("## Geometric observables")
         for o in res.observables:
+            rng = ", angles folded into (−180°, 180°]" if o.circular else ""
             L.append(f"- {o.name}: {o.mean[0]:.4g} ± {o.std[0]:.2g} {o.unit} at the start, "
-                     f"{o.mean[-1]:.4g} ± {o.std[-1]:.2g} {o.unit} at the end (mean ± std)")
+                     f"{o.mean[-1]:.4g} ± {o.std[-1]:.2g} {o.unit} at the end ({o.statistic}{rng})")
         for e in res.first_entries:
             ok = np.isfinite(e.times)
             if ok.any():
-                extra = (f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit}"
-                         if np.isfinite(e.values).any() else "")
+                if not np.isfinite(e.values).any():
+                    extra = ""
+                elif getattr(e, "circular", False):
+                    extra = f", {e.name} there {_circ_pm(e.values, e.unit)}"
+                else:
+                    extra = f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit} (mean ± std)"
                 L.append(f"- first entry into state {e.state}: {int(ok.sum())} of {ok.size} trajectories, "
                          f"mean time {np.nanmean(e.times) * AU_TIME_IN_FS:.4g} fs{extra}")
             else:
