@@ -23,14 +23,16 @@ import dataclasses
 import io
 import os
 import re
-from typing import Any, Sequence
+from typing import Any, Iterable, Sequence
 
 import numpy as np
 
 from mapdyn.analysis import AnalysisResults, TrajectorySet, analyze, plots
 from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
-__all__ = ["Report", "write_report", "write_csv", "read_csv"]
+__all__ = ["Report", "write_report", "write_csv", "read_csv", "summarise_warnings"]
+
+_NUMBER_RE = re.compile(r"[-+]?\d+\.?\d*(?:[eE][-+]?\d+)?")
 
 
 @dataclasses.dataclass
@@ -99,6 +101,27 @@ def _pm(v: float, e: float, digits: int = 3) -> str:
     if e is None or not np.isfinite(e):
         return f"{v:.{digits}g}"
     return f"{v:.{digits}g} ± {e:.2g}"
+
+
+def summarise_warnings(records: Iterable[dict], limit: int = 20) -> list[str]:
+    """Lines "N× Category: message (trajectories a, b, …; first at step s)" grouped by message
+    shape (numbers blanked), most frequent first."""
+    groups: dict = {}
+    for r in records:
+        key = (r.get("category", "Warning"), _NUMBER_RE.sub("#", r.get("message", "")))
+        g = groups.setdefault(key, {"count": 0, "trajectories": set(), "first": None, "example": r.get("message", "")})
+        g["count"] += int(r.get("count", 1))
+        g["trajectories"].add(int(r.get("index", -1)))
+        s = int(r.get("first_step", 0))
+        g["first"] = s if g["first"] is None else min(g["first"], s)
+    lines = []
+    for (cat, _), g in sorted(groups.items(), key=lambda kv: -kv[1]["count"])[:limit]:
+        trajs = sorted(g["trajectories"])
+        shown = ", ".join(str(t) for t in trajs[:8]) + (", …" if len(trajs) > 8 else "")
+        lines.append(f"{g['count']}× {cat}: {g['example']} (trajectories {shown}; first at step {g['first']})")
+    if len(groups) > limit:
+        lines.append(f"… and {len(groups) - limit} more kinds of warning")
+    return lines
 
 
 def fit_supported(life: Any, fit: Any) -> tuple[bool, str]:
@@ -358,6 +381,17 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
                  f"max deviation {e['max_deviation'] * HARTREE_IN_EV * 1e3:.3g} meV")
         L.append(f"- flagged (max deviation > {en.tolerance:.3g} Eh = {en.tolerance * HARTREE_IN_EV * 1e3:.3g} meV): "
                  f"{e['n_flagged']}")
+    L.append("")
+    L.append("## Warnings raised during the dynamics")
+    wrec = getattr(ts, "warnings", None) or []
+    if not wrec:
+        L.append("None recorded.")
+    else:
+        ntr = len({int(r.get("index", -1)) for r in wrec})
+        L.append(f"{len(wrec)} distinct warning(s) in {ntr} trajectory record(s) (per-trajectory details in "
+                 "`warnings.json` next to each trajectory's checkpoints):")
+        L.append("")
+        L.extend("- " + line for line in summarise_warnings(wrec))
     L.append("")
     L.append("## Flagged and failed trajectories")
     if not res.flags:

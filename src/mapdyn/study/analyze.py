@@ -13,6 +13,7 @@ from mapdyn.analysis.trajectories import TrajectorySet
 from mapdyn.study.analysis_settings import settings_from_table
 from mapdyn.study.backend_factory import make_model
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
+from mapdyn.study.diagnostics import study_warnings
 from mapdyn.study.folder import INITIAL_CONDITIONS, REPORT, Study, StudyError
 
 
@@ -144,7 +145,7 @@ def load_trajectory_set(study: Study):
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
                              coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
-                             metadata={**meta, "initial_basis": cfg.initial.basis})
+                             metadata={**meta, "initial_basis": cfg.initial.basis}, warnings=study_warnings(study))
     rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
     symbols = None
     masses = None
@@ -195,7 +196,7 @@ def load_trajectory_set(study: Study):
         kw = dict(positions=np.array(rows_R), momenta=np.array(rows_P), symbols=symbols, masses=masses)
     return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.options,
                          initial_states=np.array(init_states), energies=np.array(rows_e), status=tuple(stat),
-                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, **kw)
+                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, warnings=study_warnings(study), **kw)
 
 
 def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None) -> str | None:

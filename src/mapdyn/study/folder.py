@@ -36,6 +36,7 @@ from mapdyn.study.checkpoint import (
     read_h5,
 )
 from mapdyn.study.config import ConfigError, StudyConfig, load_study_config
+from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings
 
 __all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus", 
            "write_json", "read_json", "STUDY_TOML", "MANIFEST",
@@ -109,6 +110,7 @@ class TrajectoryStatus:
     drift: dict | None = None
     trajectories: tuple = ()
     problems: tuple = ()
+    warnings: int = 0
 
 
 @dataclasses.dataclass
@@ -127,6 +129,11 @@ class StudyStatus:
         return out
 
     @property
+    def warning_count(self) -> int:
+        """Distinct warnings recorded by the workers (see :mod:`mapdyn.study.diagnostics`)."""
+        return int(sum(e.warnings for e in self.entries))
+
+    @property
     def total_steps(self) -> int:
         return int(sum(e.target * len(e.trajectories) for e in self.entries))
 
@@ -143,7 +150,8 @@ class StudyStatus:
         n = sum(c.values())
         lines = [f"study {self.name} ({self.folder})",
                  f"trajectories: {n}  finished {c['finished']}  running {c['running']}  failed {c['failed']}  "
-                 f"pending {c['pending']}   steps {self.done_steps}/{self.total_steps}"]
+                 f"pending {c['pending']}   steps {self.done_steps}/{self.total_steps}   "
+                 f"warnings {self.warning_count}"]
         drift = [e for e in self.entries if e.drift]
         if details:
             for e in self.entries:
@@ -157,6 +165,9 @@ class StudyStatus:
                 lines.append(f"  drift   {e.kind} {e.index}: |ΔE| = {abs(d.get('drift_Eh', float('nan'))):.3g} Eh > "
                              f"{d.get('threshold_Eh', float('nan')):.3g} Eh at step {d.get('step')}")
             for e in self.entries:
+                if e.warnings:
+                    lines.append(f"  warning {e.kind} {e.index}: {e.warnings} distinct warning(s), see warnings.json")
+            for e in self.entries:
                 for p in e.problems:
                     lines.append(f"  damaged {e.kind} {e.index}: {p}")
         else:
@@ -164,7 +175,7 @@ class StudyStatus:
         return "\n".join(lines)
 
     def as_dict(self) -> dict:
-        return {"name": self.name, "folder": self.folder, "counts": self.counts(),
+        return {"name": self.name, "folder": self.folder, "counts": self.counts(), "warnings": self.warning_count,
                 "steps": [self.done_steps, self.total_steps],
                 "tasks": [dataclasses.asdict(e) for e in self.entries]}
 
@@ -339,8 +350,9 @@ class Study:
                     status = "running"
                 elif os.path.exists(failure):
                     status, reason = "failed", read_json(failure).get("reason", "")
+                nwarn = len(read_warnings(self.path(CHUNKS, f"chunk_{c:04d}.warnings.json")))
                 entries.append(TrajectoryStatus("chunk", c, status, int(step), target, reason, None,
-                                                tuple(range(first, first + count))))
+                                                tuple(range(first, first + count)), (), nwarn))
             return StudyStatus(self.name, self.folder, entries)
         for i in range(self.ntraj):
             folder = self.trajectory_folder(i)
@@ -368,7 +380,8 @@ class Study:
                     status, reason = "failed", read_json(failure).get("reason", "")
                 except (OSError, ValueError):
                     status, reason = "failed", "failure record unreadable"
-            entries.append(TrajectoryStatus("trajectory", i, status, step, target, reason, drift, (i,), problems))
+            nwarn = len(read_warnings(os.path.join(folder, WARNINGS_FILE)))
+            entries.append(TrajectoryStatus("trajectory", i, status, step, target, reason, drift, (i,), problems, nwarn))
         return StudyStatus(self.name, self.folder, entries)
 
 
