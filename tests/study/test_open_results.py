@@ -83,3 +83,24 @@ def test_load_results_dataset(gap_study):
     assert ds["total_energy"].attrs["units"] == "Eh"
     p = ds["populations"].sum("trajectory") / ds["populations"].sum(("trajectory", "state"))
     np.testing.assert_allclose(p.values, ds["population"].values, atol=1e-12)   # windowed normalisation
+    # backend diagnostics per frame: the model backend has no active space and never retries
+    assert ds["overlap_retries"].dims == ("time", "trajectory")
+    assert np.all(ds["overlap_retries"].values == 0) and np.all(np.isnan(ds["active_space_change"].values))
+
+
+def test_backend_frame_diagnostics_from_backend_reports():
+    from mapdyn.driver.dynamics import backend_frame_diagnostics
+    from mapdyn.study.checkpoint import frames_to_arrays
+
+    casscf = {"active_space_change": True, "active_overlap_min_singular": 0.41,
+              "overlap_retry": {"kept": "cold", "candidates": [{}, {}, {}]},
+              "gradients_converged": True, "couplings_converged": False}
+    tddft = {"cphf_residuals": [1e-7, 3e-6]}
+    d1, d2 = backend_frame_diagnostics(casscf), backend_frame_diagnostics(tddft)
+    assert d1["active_space_change"] == 1.0 and d1["overlap_retries"] == 2.0 and d1["response_converged"] == 0.0
+    assert d2["response_residual"] == 3e-6 and np.isnan(d2["active_space_change"]) and d2["overlap_retries"] == 0.0
+    base = {"step": 0, "time_au": 0.0, "window": 0, "kinetic_energy_Eh": 0.0, "potential_energy_Eh": 0.0,
+            "total_energy_Eh": 0.0, "drift_Eh": 0.0, "swap": False}
+    arr = frames_to_arrays([{**base, **d1}, {**base, **d2}])
+    np.testing.assert_array_equal(arr["overlap_retries"], [2.0, 0.0])
+    assert arr["active_space_change"][0] == 1.0 and np.isnan(arr["active_space_change"][1])

@@ -149,6 +149,8 @@ def file_digest(path: str | os.PathLike) -> str:
 # ----------------------------------------------------------------------------------------------
 _FRAME_SCALARS = {"step": np.int64, "time_au": float, "window": np.int64, "kinetic_energy_Eh": float,
                   "potential_energy_Eh": float, "total_energy_Eh": float, "drift_Eh": float, "swap": bool}
+_FRAME_DIAGNOSTICS = ("active_space_change", "active_overlap_min_singular", "overlap_retries", "response_residual",
+                      "response_converged")
 _FRAME_ARRAYS = ("positions_bohr", "momenta_au", "energies_Eh", "actions", "populations",
                  "coupling_norms", "sigma", "permutation")
 
@@ -164,6 +166,8 @@ def frames_to_arrays(frames: Sequence[Mapping[str, Any]]) -> dict[str, np.ndarra
     for k, dtype in _FRAME_SCALARS.items():
         out[k] = np.array([f[k] for f in frames], dtype=dtype)
     out["min_overlap"] = np.array([np.nan if f.get("min_overlap") is None else f["min_overlap"] for f in frames], dtype=float)
+    for k in _FRAME_DIAGNOSTICS:  # backend health per frame (NaN: not reported)
+        out[k] = np.array([np.nan if f.get(k) is None else f[k] for f in frames], dtype=float)
     for k in _FRAME_ARRAYS:
         vals = [f.get(k) for f in frames]
         if all(v is None for v in vals):

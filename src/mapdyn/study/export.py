@@ -40,6 +40,11 @@ _UNITS = {
     "coordinate_momenta": "a.u.", "masses": "m_e (electron masses)", "masses_amu": "Da",
     "population": "1", "population_low": "1", "population_high": "1", "n_counted": "trajectories",
     "initial_state": "state index", "potential_energies": "Eh",
+    "min_overlap": "1 (smallest |<state(t-dt)|state(t)>| of the matched states)",
+    "active_space_change": "1 = CASSCF active space rotated, 0 = kept",
+    "active_overlap_min_singular": "1", "overlap_retries": "extra CASSCF solutions tried",
+    "response_residual": "1 (largest TDDFT Z-vector residual norm)",
+    "response_converged": "1 = CASSCF response equations converged, 0 = not",
 }
 
 
@@ -78,7 +83,10 @@ def load_results(run: Any) -> Any:
     ``total_energy`` (Eh), ``positions``/``momenta`` (bohr, a.u.) or ``coordinates``/
     ``coordinate_momenta``, ``status``/``initial_state`` (trajectory), ensemble ``population``
     with ``population_low``/``population_high`` (time, state; Clopper–Pearson interval of the
-    counts, no bootstrap) and ``masses`` (m_e).  Frames a trajectory did not record are NaN.
+    counts, no bootstrap), ``masses`` (m_e) and, for on-the-fly trajectories, the per-frame backend
+    diagnostics (time, trajectory) ``min_overlap``, ``active_space_change``,
+    ``active_overlap_min_singular``, ``overlap_retries``, ``response_residual``,
+    ``response_converged`` (NaN where the backend does not report them).  Frames a trajectory did not record are NaN.
     ``attrs``: study name, method, format version.
     """
     import xarray as xr
@@ -123,6 +131,8 @@ def load_results(run: Any) -> Any:
     data["population_low"] = (("time", "state"), ens.low)
     data["population_high"] = (("time", "state"), ens.high)
     data["n_counted"] = (("time",), ens.n_frames - ens.n_none)
+    if not study.batched:
+        data.update(_frame_diagnostics(study, ts))
     ds = xr.Dataset(data, coords=coords)
     for name in list(ds.data_vars) + list(ds.coords):
         if name in _UNITS:
@@ -133,6 +143,33 @@ def load_results(run: Any) -> Any:
                      "units_note": "Hartree atomic units unless a variable's units attribute says otherwise",
                      "n_warnings": len(ts.warnings)})
     return ds
+
+
+_DIAGNOSTICS = ("min_overlap", "active_space_change", "active_overlap_min_singular", "overlap_retries",
+                "response_residual", "response_converged")
+
+
+def _frame_diagnostics(study, ts) -> dict:
+    """Per-frame backend diagnostics (time, trajectory) from the frame files; NaN = not reported."""
+    from mapdyn.study.checkpoint import TrajectoryStore
+
+    T, n = ts.times.size, ts.ntraj
+    out = {k: np.full((T, n), np.nan) for k in _DIAGNOSTICS}
+    found = set()
+    for j, i in enumerate(ts.indices):
+        store = TrajectoryStore(study.trajectory_folder(int(i)))
+        if not os.path.isdir(store.folder):
+            continue
+        fr = store.read_frames()
+        if not fr:
+            continue
+        cols = np.searchsorted(np.round(ts.times, 6), np.round(fr["time_au"], 6))
+        ok = cols < T
+        for k in _DIAGNOSTICS:
+            if k in fr:
+                out[k][cols[ok], j] = fr[k][ok]
+                found.add(k)
+    return {k: (("time", "trajectory"), v) for k, v in out.items() if k in found}
 
 
 def _xyz_frames(study, index: int, symbols, masses_me) -> list:
