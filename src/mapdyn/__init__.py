@@ -18,3 +18,11 @@ def load_results(run):
     from mapdyn.study.export import load_results as _load
 
     return _load(run)
+
+
+def run_study(spec, folder=None, **kw):
+    """Build a study from a dict, TOML text or file, run what is missing, return its results as an
+    ``xarray.Dataset``; see :func:`mapdyn.study.notebook.run_study`."""
+    from mapdyn.study.notebook import run_study as _run
+
+    return _run(spec, folder, **kw)

@@ -12,7 +12,6 @@ import logging
 import os
 import signal
 import sys
-import time
 from typing import Sequence
 
 from mapdyn import __version__
@@ -126,20 +125,12 @@ def _error(msg: str, code: int = 2) -> int:
 
 
 def _progress_printer(quiet: bool):
+    """A tqdm bar on a terminal; elsewhere progress lines go to the study log (mapdyn.log)."""
     if quiet:
         return None
-    tty = sys.stderr.isatty()
-    state = {"last": 0.0}
+    from mapdyn.progress import EnsembleBar
 
-    def show(p):
-        now = time.monotonic()
-        if tty:
-            print("\r" + p.line().ljust(100), end="", file=sys.stderr, flush=True)
-        elif now - state["last"] >= 10.0 or p.done + p.failed == p.total:
-            state["last"] = now
-            print(p.line(), file=sys.stderr, flush=True)
-
-    return show
+    return EnsembleBar()
 
 
 def _executor(args, config):
@@ -189,8 +180,8 @@ def _execute(study, args) -> int:
         finally:
             if executor is not None:
                 executor.shutdown()
-        if progress is not None and sys.stderr.isatty():
-            print(file=sys.stderr)
+        if progress is not None:
+            progress.close()
     except KeyboardInterrupt:
         _log(f"aborted; continue with: mapdyn resume {study.folder}")
         return 130

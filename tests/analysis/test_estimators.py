@@ -13,7 +13,7 @@ import mapdyn.study.analyze as SA
 from mapdyn.analysis import report as R
 from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 
-SQC = MethodOptions()
+SQC = MethodOptions(window="square")
 TRI = MethodOptions(window="triangle")
 EHR = MethodOptions(method="ehrenfest")
 G = SQUARE_GAMMA

@@ -266,7 +266,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append(f"# {title or ts.metadata.get('name') or 'mapdyn analysis report'}")
     L.append("")
     L.append("## Inputs")
-    L.append(f"- method: {ts.options.describe()} (window γ = {ts.options.window_gamma:.6g})")
+    L.append(f"- method: {ts.options.long_name()} [{ts.options.describe()}]")
     L.append(f"- trajectories: {ts.ntraj}; states: {ts.nstates}; time points: {ts.times.size}, "
              f"t = {ts.times[0]:.6g} … {ts.times[-1]:.6g} a.u. ({ts.times[0] * AU_TIME_IN_FS:.4g} … "
              f"{ts.times[-1] * AU_TIME_IN_FS:.4g} fs)")

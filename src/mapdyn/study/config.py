@@ -50,7 +50,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from mapdyn.core.options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+from mapdyn.core.options import DEFAULT_WINDOW, METHODS, WINDOWS, ZERO_POINTS, MethodOptions
 from mapdyn.study.input_values import ConfigError, Section, did_you_mean, parse_duration, parse_energy, show_value
 from mapdyn.units import BOHR_IN_ANGSTROM
 
@@ -473,7 +473,7 @@ def _parse_initial(sec: Section, elec: ElectronicConfig) -> InitialConfig:
 
 def _parse_method(sec: Section, elec: ElectronicConfig) -> MethodOptions:
     method = sec.choice("method", METHODS, "sqc")
-    window = sec.choice("window", WINDOWS, "square")
+    window = sec.choice("window", WINDOWS, DEFAULT_WINDOW)
     zero = sec.choice("zero_point", ZERO_POINTS, "symmetrized")
     gamma = sec.number("gamma", None, what="a window half-width strictly between 0 and 1/2")
     if zero == "fixed" and method == "sqc" and not (elec.backend == "model" and elec.engine == "batched"):
@@ -568,6 +568,15 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     """Validate a parsed TOML mapping; relative geometry/callback files are relative to ``base_dir``,
     a relative ``study.folder`` to the current directory.  ``check_extras=False`` skips checking
     the [analysis] and [cluster] tables (done once when the study was created)."""
+    if not source_text and isinstance(data, Mapping):
+        # a mapping given directly (notebooks): store its TOML text so the study folder can be
+        # reopened from study.toml like any file-based study
+        from mapdyn.study.toml_text import dumps
+
+        try:
+            source_text = dumps(data)
+        except ValueError as err:
+            raise ConfigError("study input", str(err).splitlines()[0]) from None
     for k in data:
         if k not in SECTIONS:
             raise ConfigError(k, f" is not a known section{did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
