@@ -12,6 +12,7 @@ import logging
 import os
 import signal
 import sys
+import warnings
 from typing import Sequence
 
 from mapdyn import __version__
@@ -350,6 +351,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                "analyze": _cmd_analyze, "export": _cmd_export, "check": _cmd_check,
                "validate": _cmd_validate}[args.command]
     configure_console(quiet=bool(getattr(args, "quiet", False)))
+    warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"
     try:
         code = handler(args)
         sys.stdout.flush()

@@ -492,9 +492,9 @@ name = "tiny_tully1"
 backend = "model"
 model = "tully1"
 [initial]
-position_bohr = -4.0
-momentum_au = 20.0
-width_bohr = 1.0
+position = "-4.0 bohr"
+momentum = "20.0 au"
+width = "1.0 bohr"
 state = 0
 basis = "adiabatic"
 [method]

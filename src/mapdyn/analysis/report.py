@@ -124,6 +124,13 @@ def summarise_warnings(records: Iterable[dict], limit: int = 20) -> list[str]:
     return lines
 
 
+def _energy_text(eh: Any) -> str:
+    """An energy in Eh as "1e-03 Eh (27.2 meV)"; "n/a" when missing."""
+    if eh is None:
+        return "n/a"
+    return f"{float(eh):.3g} Eh ({float(eh) * HARTREE_IN_EV * 1e3:.3g} meV)"
+
+
 def fit_supported(life: Any, fit: Any) -> tuple[bool, str]:
     """Whether a lifetime fit may be shown as numbers: the fit passes the rule and the data show a
     decay at all; else (False, reason)."""
@@ -274,12 +281,13 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append("- initial states: " + ", ".join(f"{s}: {c}" for s, c in zip(states, counts)))
     for k, v in ts.metadata.items():
         if k != "method":
-            L.append(f"- {k}: {v}")
+            shown = f"{v:.6g}" if isinstance(v, (float, np.floating)) else v  # no 16-digit floats in prose
+            L.append(f"- {k}: {shown}")
     st = res.settings
     if st:
         L.append(f"- analysis: {int(round(100 * st.get('confidence_level', 0.95)))} % bootstrap intervals, "
                  f"{st.get('n_resamples')} resamples (seed {st.get('bootstrap_seed')}), "
-                 f"energy tolerance {st.get('energy_tolerance_hartree')} Eh")
+                 f"energy tolerance {_energy_text(st.get('energy_tolerance_hartree'))}")
     L.append("")
     L.append("## Counts")
     sc = ts.status_counts()

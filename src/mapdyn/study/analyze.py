@@ -15,6 +15,7 @@ from mapdyn.study.backend_factory import make_model
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.study.diagnostics import study_warnings
 from mapdyn.study.folder import INITIAL_CONDITIONS, REPORT, Study, StudyError
+from mapdyn.units import AU_TIME_IN_FS
 
 
 # ----------------------------------------------------------------------------------------------
@@ -111,7 +112,8 @@ def load_trajectory_set(study: Study):
     T = grid_steps.size
     status_map = {e.index: e for e in study.status().entries}
     F = cfg.electronic.states
-    meta = {"study": study.name, "method": cfg.options.describe(), "time_step_au": dt,
+    meta = {"study": study.name, "method": cfg.options.describe(),
+            "time step": f"{dt:.4g} au ({dt * AU_TIME_IN_FS:.4g} fs)",
             "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
     if study.batched:
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
@@ -203,6 +205,11 @@ def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None
     """Analyse the study and write ``report/``; returns the report folder."""
     from mapdyn.analysis import report
 
-    results = analyze_study(study)
-    out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
+    import warnings
+
+    with warnings.catch_warnings():
+        # empty/NaN time slices (no trajectory in a window yet) give NaN entries, which the report shows
+        warnings.filterwarnings("ignore", category=RuntimeWarning, message=".*(slice|Degrees of freedom|invalid value).*")
+        results = analyze_study(study)
+        out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
     return out.folder

@@ -58,9 +58,9 @@ def run_study(spec: Any, folder: str | os.PathLike | None = None, *, workers: in
     ``workers`` defaults to ``ensemble.workers``; ``progress`` shows a progress bar (tqdm).
     Failed trajectories are kept in the dataset with ``status = "failed"``.
     """
+    from mapdyn.progress import ensemble_bar
     from mapdyn.study.analyze import write_study_report
     from mapdyn.study.export import load_results
-    from mapdyn.progress import ensemble_bar
     from mapdyn.study.runner import run_ensemble
 
     study = create_study(spec, folder, name=name)
