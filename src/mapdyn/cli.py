@@ -193,7 +193,8 @@ def _execute(study, args) -> int:
     _log(f"finished {counts['finished']}, failed {counts['failed']}, pending {counts['pending']} "
          f"({summary.steps} steps computed in {summary.seconds:.1f} s)")
     if status.warning_count:
-        _log(f"{status.warning_count} warning record(s) from the trajectories: see 'mapdyn status', "
+        n = status.warning_count
+        _log(f"{n} warning record{'s' if n != 1 else ''} from the trajectories; see 'mapdyn status', "
              f"report/summary.md and {study.path(LOG_FILE)}")
     if stopper.requested or summary.interrupted:
         _log(f"stopped; continue with: mapdyn resume {study.folder}")
@@ -350,7 +351,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     handler = {"run": _cmd_run, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
                "analyze": _cmd_analyze, "export": _cmd_export, "check": _cmd_check,
                "validate": _cmd_validate}[args.command]
-    configure_console(quiet=bool(getattr(args, "quiet", False)))
+    configure_console()  # --quiet only drops the progress bar; messages and warnings stay
     warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"
     try:
         code = handler(args)

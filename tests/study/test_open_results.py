@@ -104,3 +104,18 @@ def test_backend_frame_diagnostics_from_backend_reports():
     arr = frames_to_arrays([{**base, **d1}, {**base, **d2}])
     np.testing.assert_array_equal(arr["overlap_retries"], [2.0, 0.0])
     assert arr["active_space_change"][0] == 1.0 and np.isnan(arr["active_space_change"][1])
+
+
+def test_old_trajectory_folder_names_are_still_read(gap_study, tmp_path):
+    import shutil
+
+    from mapdyn.study.folder import Study
+
+    folder, _ = gap_study
+    copy = tmp_path / "old_layout"
+    shutil.copytree(folder, copy)
+    for i in range(2):
+        (copy / "trajectories" / f"{i:06d}").rename(copy / "trajectories" / f"traj_{i:06d}")
+    study = Study(str(copy))
+    assert study.trajectory_folder(1).endswith("traj_000001")
+    assert study.status().counts()["finished"] == 2 and study.status().warning_count == 2

@@ -11,7 +11,7 @@ File rules
   ``meta``) with its own digest.  :func:`read_h5` verifies all of them; any mismatch, truncation
   or unreadable file raises :class:`CheckpointError` naming the file.
 
-Trajectory folder (``trajectories/traj_000042/``)
+Trajectory folder (``trajectories/000042/``)
 -------------------------------------------------
 * ``state.h5`` — the complete :class:`mapdyn.driver.dynamics.DriverState` as pickle bytes (numpy arrays
   pickle bit-for-bit; the backend ``guess`` travels inside it), plus readable copies of step,

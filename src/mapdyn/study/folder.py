@@ -7,8 +7,10 @@ Layout::
       study.toml              the input file, verbatim (its sha256 is in the manifest)
       manifest.json           what the study is now: trajectories, duration, task layout, history
       initial_conditions.h5   molecules: reference geometry, Hessian, modes, sampled rows
-      trajectories/traj_000042/   per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`)
-          state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json
+      trajectories/000042/    per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`); folders
+                              named traj_000042/ by older versions are still read
+          state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json, warnings.json
+      mapdyn.log              study log of command-line runs
       chunks/chunk_0003_seg00.h5  batched model studies: one file per chunk of trajectories
                               (and per time segment after an ``extend`` to a later end time)
       report/                 figures, CSV, summary (written by the analysis)
@@ -259,7 +261,9 @@ class Study:
         return os.path.join(self.folder, *parts)
 
     def trajectory_folder(self, index: int) -> str:
-        return self.path(TRAJECTORIES, f"traj_{index:06d}")
+        new = self.path(TRAJECTORIES, f"{index:06d}")
+        old = self.path(TRAJECTORIES, f"traj_{index:06d}")  # older layout: still read and continued
+        return old if not os.path.isdir(new) and os.path.isdir(old) else new
 
     def chunk_segment_path(self, chunk: int, segment: int) -> str:
         return self.path(CHUNKS, f"chunk_{chunk:04d}_seg{segment:02d}.h5")
