@@ -262,6 +262,16 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         fig("spectrum", plots.plot_spectrum, spec,
             note="nuclear-ensemble absorption spectrum of the sampled geometries (Å²) with per-state contributions")
 
+    sc = getattr(results, "scattering", None)
+    if sc is not None:
+        F = sc.transmission.size
+        tab("scattering", ["channel", "state", "probability", "standard_error", "low", "high"],
+            [["transmission"] * F + ["reflection"] * F, list(range(F)) * 2,
+             np.concatenate([sc.transmission, sc.reflection]),
+             np.concatenate([sc.transmission_error, sc.reflection_error]),
+             np.concatenate([sc.transmission_low, sc.reflection_low]),
+             np.concatenate([sc.transmission_high, sc.reflection_high])])
+
     summary = _summary(results, figs, tabs, notes, title, tu)
     spath = plots.atomic_write_text(os.path.join(folder, "summary.md"), summary)
     return Report(folder, figs, tabs, spath)
@@ -306,16 +316,39 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     for k, lab in enumerate(pops.labels):
         L.append(f"| {lab} | {pops.populations[-1, k]:.4f} | [{pops.low[-1, k]:.4f}, {pops.high[-1, k]:.4f}] |")
     L.append("")
+    sc = getattr(res, "scattering", None)
+    if sc is not None:
+        L.append("## Scattering channels")
+        a, b = sc.region
+        L.append(f"A scattering study: what it measures is where the packet ends up, so no lifetime is fitted. "
+                 f"Trajectories that left the interaction region [{a:.3g}, {b:.3g}] bohr at their last frame: "
+                 f"{sc.n_counted} counted, {sc.n_unassigned} in no window, {sc.n_inside} still inside (left out).")
+        L.append(f"Estimator: {sc.estimator}; ± standard error; "
+                 f"{int(round(100 * sc.confidence_level))} % Clopper–Pearson interval.")
+        L.append("")
+        L.append("| channel | state | probability | interval |")
+        L.append("|---|---|---|---|")
+        for name, p_, e_, lo_, hi_ in (("transmission", sc.transmission, sc.transmission_error, sc.transmission_low,
+                                        sc.transmission_high),
+                                       ("reflection", sc.reflection, sc.reflection_error, sc.reflection_low,
+                                        sc.reflection_high)):
+            for f in range(p_.size):
+                L.append(f"| {name} | {f} | {p_[f]:.4f} ± {e_[f]:.2g} | [{lo_[f]:.4f}, {hi_[f]:.4f}] |")
+        L.append("")
     L.append("## Lifetime of the initial state")
     life = res.lifetimes
-    if life.lifetime is None:
+    if sc is not None:
+        L.append("Not reported for a scattering study (the initial-state population follows the passage through "
+                 "the coupling region, not a decay); see the scattering channels above.")
+        L.append("")
+    elif life.lifetime is None:
         L.append("No lifetime reported: " + ("; ".join(life.reasons) if life.reasons else "not supported") + ".")
     else:
         tau_fs, err_fs = life.lifetime_fs()
         what = "τ" if life.preferred == "mono" else "amplitude-weighted mean a·τ1 + (1 − a)·τ2"
         L.append(f"**{_pm(tau_fs, err_fs, 4)} fs** ({what}, {'single' if life.preferred == 'mono' else 'bi'}-exponential fit).")
     L.append("")
-    if life.fits:
+    if life.fits and sc is None:
         L.append("| model | parameters (times in fs) | reduced χ² | AIC | supported |")
         L.append("|---|---|---|---|---|")
         for name, f in life.fits.items():
@@ -337,7 +370,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         meth = {f.diagnostics.get("uncertainty_method") for f in life.fits.values() if f.diagnostics.get("converged")}
         L.append("Uncertainties (1σ): " + ", ".join(sorted(m for m in meth if m)) + ".")
         L.append("")
-    L.append(f"Rule: {life.rule}")
+    if sc is None:
+        L.append(f"Rule: {life.rule}")
     L.append("")
     if res.observables or res.first_entries:
         L.append("## Geometric observables")

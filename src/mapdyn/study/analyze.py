@@ -53,6 +53,24 @@ def study_spectrum(folder: str, fwhm_ev: float = 0.15) -> Any:
     return absorption_spectrum(arrays["excitation_energies_hartree"], arrays["oscillator_strengths"], fwhm_ev=fwhm_ev)
 
 
+def scattering_setup(cfg) -> tuple | None:
+    """((a, b), transmitted side) for a 1D model study whose packet starts outside the model's
+    interaction region (a scattering experiment); None otherwise."""
+    from mapdyn.models.regions import default_interaction_region
+
+    model = make_model(cfg)
+    if model.ndof != 1:
+        return None
+    try:
+        a, b = default_interaction_region(model)
+    except ValueError:
+        return None
+    x0, k0 = float(cfg.initial.position_bohr[0]), float(cfg.initial.momentum_au[0])
+    if a < x0 < b or k0 == 0:
+        return None
+    return (a, b), (1 if k0 > 0 else 0)
+
+
 def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     """Load a study folder (or :class:`mapdyn.study.folder.Study`), read its ``[analysis]`` table, add the
     spectrum when present and run :func:`analyze`; ``overrides`` replace keyword arguments.
@@ -85,6 +103,8 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     spec = study_spectrum(study.folder)
     if spec is not None:
         kw["spectrum"] = spec
+    if cfg.is_model and "scattering" not in overrides:
+        kw["scattering"] = scattering_setup(cfg)
     drift = getattr(getattr(cfg, "dynamics", None), "drift_threshold_hartree", None)
     if "energy_tolerance" not in kw and drift:
         kw["energy_tolerance"] = float(drift)      # the study's own drift threshold flags trajectories
@@ -203,9 +223,9 @@ def load_trajectory_set(study: Study):
 
 def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None) -> str | None:
     """Analyse the study and write ``report/``; returns the report folder."""
-    from mapdyn.analysis import report
-
     import warnings
+
+    from mapdyn.analysis import report
 
     with warnings.catch_warnings():
         # empty/NaN time slices (no trajectory in a window yet) give NaN entries, which the report shows
