@@ -343,6 +343,15 @@ def _cmd_validate(args) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``mapdyn`` console script; returns the exit code."""
+    try:
+        return _main(argv)
+    except BrokenPipeError:  # e.g. `mapdyn status --json | head`: the reader left, nothing to report
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
+
+
+def _main(argv: Sequence[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
@@ -353,14 +362,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                "validate": _cmd_validate}[args.command]
     configure_console()  # --quiet only drops the progress bar; messages and warnings stay
     warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"
-    try:
-        code = handler(args)
-        sys.stdout.flush()
-        return code
-    except BrokenPipeError:  # e.g. `mapdyn status --json | head`: the reader left, nothing to report
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        return 141
+    code = handler(args)
+    sys.stdout.flush()
+    return code
 
 
 if __name__ == "__main__":  # pragma: no cover
