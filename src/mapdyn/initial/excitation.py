@@ -96,8 +96,8 @@ def excitation_properties(backend: Any, positions_bohr: np.ndarray, guess: Any =
     does not depend on sample order.  Needs ``transition_dipoles`` from the backend.
     ``progress``: a progress bar on a terminal (:func:`mapdyn.progress.iterate`).
     """
-    from mapdyn.progress import iterate
     from mapdyn.backends.contract import BackendError
+    from mapdyn.progress import iterate
 
     x = np.asarray(positions_bohr, dtype=float)
     if x.ndim != 3 or x.shape[2] != 3:
