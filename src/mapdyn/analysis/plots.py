@@ -146,7 +146,7 @@ def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike
         ax = ax[0, 0]
         c = STATE_COLOURS[0]
         ax.fill_between(t, series.low[:, 0], series.high[:, 0], color=c, alpha=0.2, lw=0,
-                        label=f"{int(round(100 * series.confidence_level))} % bootstrap band")
+                        label=f"{int(round(100 * series.confidence_level))} % band (bootstrap ⊇ Clopper–Pearson)")
         ax.plot(t, series.populations[:, 0], color=c, label="initial-state population")
         tf, _ = _time(lifetimes.times, time_unit)
         styles = {"mono": ("#d35400", "single exponential"), "bi": ("#3c7a3b", "bi-exponential")}
@@ -157,8 +157,8 @@ def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike
             pref = lifetimes.preferred == name
             why = [r for r in lifetimes.reasons if not r.startswith(("mono: ", "bi: "))] or list(fit.reasons)
             if not fit.supported or lifetimes.reasons:
-                short = why[0] if why else "rejected"
-                short = short if len(short) <= 60 else short[:57] + "…"
+                short = (why[0] if why else "rejected").split(" (")[0]   # the reason without its explanation
+                short = short if len(short) <= 45 else short[:42] + "…"
                 ax.plot(tf, fit.curve, color=colour, ls=":", lw=1.0, label=f"{label}: not supported ({short})")
                 continue
             if name == "mono":
