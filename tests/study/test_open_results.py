@@ -119,3 +119,16 @@ def test_old_trajectory_folder_names_are_still_read(gap_study, tmp_path):
     study = Study(str(copy))
     assert study.trajectory_folder(1).endswith("traj_000001")
     assert study.status().counts()["finished"] == 2 and study.status().warning_count == 2
+
+
+def test_checkpoint_datasets_carry_units(gap_study):
+    import h5py
+
+    from mapdyn.study.checkpoint import TrajectoryStore
+    from mapdyn.study.folder import Study
+
+    folder, _ = gap_study
+    store = TrajectoryStore(Study(str(folder)).trajectory_folder(0))
+    with h5py.File(store.chunk_path(0)) as h5:
+        assert h5["positions_bohr"].attrs["units"] == "bohr" and h5["energies_Eh"].attrs["units"] == "Eh"
+        assert h5["time_au"].attrs["units"].startswith("a.u. of time")

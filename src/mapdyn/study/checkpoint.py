@@ -68,6 +68,20 @@ def _array_bytes(arr: np.ndarray) -> bytes:
     return np.ascontiguousarray(arr).tobytes()
 
 
+#: Unit of each dataset mapdyn writes (the ``units`` attribute); names not listed are dimensionless
+#: indices, flags or bytes.
+DATASET_UNITS = {
+    "time_au": "a.u. of time (hbar/Eh)", "times": "a.u. of time (hbar/Eh)", "final_time": "a.u. of time (hbar/Eh)",
+    "positions_bohr": "bohr", "reference_positions_bohr": "bohr", "R": "bohr", "final_R": "bohr",
+    "momenta_au": "a.u. (m_e bohr / a.u. time)", "P": "a.u. (m_e bohr / a.u. time)", "final_P": "a.u. (m_e bohr / a.u. time)",
+    "energies_Eh": "Eh", "total_energy_Eh": "Eh", "kinetic_energy_Eh": "Eh", "potential_energy_Eh": "Eh",
+    "drift_Eh": "Eh", "energy": "Eh", "reference_energies_hartree": "Eh", "excitation_energies_hartree": "Eh",
+    "actions": "1", "actions_adiabatic": "1", "actions_diabatic": "1", "populations": "1",
+    "coupling_norms": "1/bohr", "sigma": "1/(a.u. of time)", "min_overlap": "1",
+    "hessian": "Eh/bohr^2", "frequencies_cm": "cm-1", "oscillator_strengths": "1",
+}
+
+
 def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[str, Any] | None = None,
              sync_directory: bool = True) -> str:
     """Write ``arrays`` (name → ndarray or bytes) and JSON ``meta`` atomically to ``path``.
@@ -97,6 +111,8 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
                     ds = h5.create_dataset(name, data=arr)
                 ds.attrs["sha256"] = _digest(_array_bytes(arr))
                 ds.attrs["kind"] = kind
+                if name in DATASET_UNITS:
+                    ds.attrs["units"] = DATASET_UNITS[name]
             h5.flush()
 
     return atomic_write(path, write, sync_directory)
