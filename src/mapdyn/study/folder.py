@@ -166,9 +166,11 @@ class StudyStatus:
                 d = e.drift
                 lines.append(f"  drift   {e.kind} {e.index}: |ΔE| = {abs(d.get('drift_Eh', float('nan'))):.3g} Eh > "
                              f"{d.get('threshold_Eh', float('nan')):.3g} Eh at step {d.get('step')}")
-            for e in self.entries:
-                if e.warnings:
-                    lines.append(f"  warning {e.kind} {e.index}: {e.warnings} distinct warning(s), see warnings.json")
+            warned = [e for e in self.entries if e.warnings]
+            for e in warned[:10]:
+                lines.append(f"  warning {e.kind} {e.index}: {e.warnings} distinct warning(s), see warnings.json")
+            if len(warned) > 10:
+                lines.append(f"  warning … and {len(warned) - 10} more tasks with warnings (listed in report/summary.md)")
             for e in self.entries:
                 for p in e.problems:
                     lines.append(f"  damaged {e.kind} {e.index}: {p}")
