@@ -27,7 +27,7 @@ def tully1_study(*, name: str | None = "tully1_test", trajectories: int = 120, s
     lines = [study + "[electronic]", 'backend = "model"', 'model = "tully1"']
     if engine != "batched":
         lines.append(f'engine = "{engine}"')
-    lines += ["[initial]", "position_bohr = -8.0", "momentum_au = 15.0", "width_bohr = 1.0", "state = 0",
+    lines += ["[initial]", 'position = "-8 bohr"', 'momentum = "15 au"', 'width = "1 bohr"', "state = 0",
               "[method]", 'window = "triangle"',
               "[dynamics]", f'time_step = "{time_step}"', f'duration = "{duration}"']
     lines += [f"{k} = {v}" for k, v in (("record_every", record_every), ("checkpoint_every", checkpoint_every))

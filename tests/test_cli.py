@@ -135,8 +135,8 @@ def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
     ref = str(tmp_path / "ref")
     assert main(["run", toml, "--output", ref, "--no-analysis", "--quiet", "--workers", "2"]) == 0
     folder = tmp_path / "killed"
-    t0 = folder / "trajectories" / "traj_000000"
-    t1 = folder / "trajectories" / "traj_000001"
+    t0 = folder / "trajectories" / "000000"
+    t1 = folder / "trajectories" / "000001"
 
     def progressed():
         m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()
@@ -287,8 +287,8 @@ def test_molecular_extend_adds_trajectories_with_the_same_initial_conditions(tmp
     one = write(tmp_path, "one.toml", H2.format(duration="1 fs").replace("trajectories = 2", "trajectories = 1"))
     two = write(tmp_path, "two.toml", H2.format(duration="1 fs"))
     assert main(["run", one, "--output", "a", "--no-analysis", "--quiet", "--workers", "1"]) == 0
-    first = file_ids([str(tmp_path / "a" / "trajectories" / "traj_000000" / f)
-                      for f in os.listdir(tmp_path / "a" / "trajectories" / "traj_000000")])
+    first = file_ids([str(tmp_path / "a" / "trajectories" / "000000" / f)
+                      for f in os.listdir(tmp_path / "a" / "trajectories" / "000000")])
     assert main(["extend", "a", "--trajectories", "2", "--no-analysis", "--quiet", "--workers", "1"]) == 0
     assert main(["run", two, "--output", "b", "--no-analysis", "--quiet", "--workers", "1"]) == 0
     assert file_ids(list(first)) == first
@@ -305,7 +305,7 @@ def test_kill_and_resume_molecular_is_bitwise(tmp_path):
     ref = str(tmp_path / "ref")
     mapdyn("run", toml, "--output", ref, "--no-analysis", "--workers", "2", cwd=tmp_path)
     folder = tmp_path / "killed"
-    t0, t1 = (folder / "trajectories" / f"traj_00000{i}" for i in (0, 1))
+    t0, t1 = (folder / "trajectories" / f"00000{i}" for i in (0, 1))
 
     def progressed():
         m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()

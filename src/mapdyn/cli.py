@@ -8,12 +8,15 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
+import os
 import signal
 import sys
-import time
+import warnings
 from typing import Sequence
 
 from mapdyn import __version__
+from mapdyn.logs import LOG_FILE, add_study_log, configure_console
 from mapdyn.study.cluster import ClusterError
 
 __all__ = ["main", "build_parser"]
@@ -94,6 +97,15 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Analyse a finished or partial study and write DIR/report/.")
     a.add_argument("folder", metavar="DIR", help="study folder")
 
+    x = sub.add_parser("export", help="write open formats: extended XYZ per trajectory, CSV, HDF5",
+                       description="Write DIR/export/: <index>.xyz per trajectory (ase.io.read(path, index=':') "
+                                   "gives every frame with time, energies, populations and window in atoms.info), "
+                                   "frames.csv, ensemble.csv and results.h5 (units as attributes). In Python: "
+                                   "mapdyn.load_results(DIR) returns the same data as an xarray.Dataset.")
+    x.add_argument("folder", metavar="DIR", help="study folder")
+    x.add_argument("--output", metavar="OUT", help="export folder (default DIR/export)")
+    x.add_argument("--no-xyz", action="store_true", help="only the CSV and HDF5 files")
+
     c = sub.add_parser("check", help="preflight: backend vs finite differences and estimated cost",
                        description="Run the electronic backend once at the first geometry, compare gradients and "
                                    "couplings with finite differences and estimate the core-hours of the study.")
@@ -114,20 +126,12 @@ def _error(msg: str, code: int = 2) -> int:
 
 
 def _progress_printer(quiet: bool):
+    """A tqdm bar on a terminal; elsewhere progress lines go to the study log (mapdyn.log)."""
     if quiet:
         return None
-    tty = sys.stderr.isatty()
-    state = {"last": 0.0}
+    from mapdyn.progress import EnsembleBar
 
-    def show(p):
-        now = time.monotonic()
-        if tty:
-            print("\r" + p.line().ljust(100), end="", file=sys.stderr, flush=True)
-        elif now - state["last"] >= 10.0 or p.done + p.failed == p.total:
-            state["last"] = now
-            print(p.line(), file=sys.stderr, flush=True)
-
-    return show
+    return EnsembleBar()
 
 
 def _executor(args, config):
@@ -138,8 +142,11 @@ def _executor(args, config):
     return None
 
 
+_LOG = logging.getLogger("mapdyn.cli")
+
+
 def _log(msg: str) -> None:
-    print(f"mapdyn: {msg}", file=sys.stderr, flush=True)
+    _LOG.info(msg)
 
 
 def _execute(study, args) -> int:
@@ -149,6 +156,7 @@ def _execute(study, args) -> int:
     from mapdyn.study.runner import run_ensemble
 
     cfg = study.config
+    add_study_log(study.folder)
     stopper = _Stop()
     old = signal.signal(signal.SIGINT, stopper)
     try:
@@ -173,8 +181,8 @@ def _execute(study, args) -> int:
         finally:
             if executor is not None:
                 executor.shutdown()
-        if progress is not None and sys.stderr.isatty():
-            print(file=sys.stderr)
+        if progress is not None:
+            progress.close()
     except KeyboardInterrupt:
         _log(f"aborted; continue with: mapdyn resume {study.folder}")
         return 130
@@ -184,6 +192,10 @@ def _execute(study, args) -> int:
     counts = status.counts()
     _log(f"finished {counts['finished']}, failed {counts['failed']}, pending {counts['pending']} "
          f"({summary.steps} steps computed in {summary.seconds:.1f} s)")
+    if status.warning_count:
+        n = status.warning_count
+        _log(f"{n} warning record{'s' if n != 1 else ''} from the trajectories; see 'mapdyn status', "
+             f"report/summary.md and {study.path(LOG_FILE)}")
     if stopper.requested or summary.interrupted:
         _log(f"stopped; continue with: mapdyn resume {study.folder}")
         return 130
@@ -276,12 +288,27 @@ def _cmd_analyze(args) -> int:
 
     try:
         study = _open_study(args.folder)
+        add_study_log(study.folder)
         out = write_study_report(study, log=_log)
     except StudyError as err:
         return _error(str(err), 1)
     if out is None:
         return _error("the analysis modules are not available", 1)
     _log(f"report written to {out}")
+    return 0
+
+
+def _cmd_export(args) -> int:
+    from mapdyn.study.export import export_study
+    from mapdyn.study.folder import StudyError
+
+    try:
+        study = _open_study(args.folder)
+        out = export_study(study, args.output, xyz=not args.no_xyz)
+    except StudyError as err:
+        return _error(str(err), 1)
+    _log(f"exported {len(out['xyz'])} trajectory XYZ file(s), {os.path.basename(out['frames_csv'])}, "
+         f"{os.path.basename(out['ensemble_csv'])} and {os.path.basename(out['h5'])} to {os.path.dirname(out['h5'])}")
     return 0
 
 
@@ -316,14 +343,28 @@ def _cmd_validate(args) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``mapdyn`` console script; returns the exit code."""
+    try:
+        return _main(argv)
+    except BrokenPipeError:  # e.g. `mapdyn status --json | head`: the reader left, nothing to report
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
+
+
+def _main(argv: Sequence[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help()
         return 2
     handler = {"run": _cmd_run, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
-               "analyze": _cmd_analyze, "check": _cmd_check, "validate": _cmd_validate}[args.command]
-    return handler(args)
+               "analyze": _cmd_analyze, "export": _cmd_export, "check": _cmd_check,
+               "validate": _cmd_validate}[args.command]
+    configure_console()  # --quiet only drops the progress bar; messages and warnings stay
+    warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"
+    code = handler(args)
+    sys.stdout.flush()
+    return code
 
 
 if __name__ == "__main__":  # pragma: no cover

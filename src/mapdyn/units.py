@@ -25,6 +25,24 @@ AU_TIME_IN_ASE: float = float(_ase.AUT)
 #: 1 fs in ASE's time unit.
 FS_IN_ASE: float = float(_ase.fs)
 
+#: Energy units accepted in inputs → their size in eV (ASE's energy unit), all from ase.units.
+ENERGY_UNITS_IN_EV: dict[str, float] = {
+    "Eh": float(_ase.Hartree), "eV": 1.0, "meV": 1e-3, "kcal/mol": float(_ase.kcal / _ase.mol),
+    "kJ/mol": float(_ase.kJ / _ase.mol), "cm-1": float(_ase.invcm),
+}
+#: Time units → their size in fs.
+TIME_UNITS_IN_FS: dict[str, float] = {"au": float(_ase._aut * 1e15), "as": 1e-3, "fs": 1.0, "ps": 1e3}
+#: Length units → their size in Å.
+LENGTH_UNITS_IN_ANGSTROM: dict[str, float] = {"bohr": float(_ase.Bohr), "Å": 1.0, "nm": 10.0}
+#: Spellings accepted for each unit (case-insensitive) → the canonical name above.
+UNIT_ALIASES: dict[str, str] = {
+    "eh": "Eh", "hartree": "Eh", "ha": "Eh", "ev": "eV", "mev": "meV", "kcal/mol": "kcal/mol",
+    "kj/mol": "kJ/mol", "cm-1": "cm-1", "cm^-1": "cm-1", "1/cm": "cm-1", "cm⁻¹": "cm-1",
+    "au": "au", "a.u.": "au", "aut": "au", "as": "as", "fs": "fs", "ps": "ps",
+    "bohr": "bohr", "a0": "bohr", "å": "Å", "a": "Å", "ang": "Å", "angstrom": "Å", "nm": "nm",
+    "k": "K", "kelvin": "K",
+}
+
 
 def fs_to_au(t_fs: float) -> float:
     """Time in fs → atomic units of time."""

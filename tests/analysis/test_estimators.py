@@ -13,7 +13,7 @@ import mapdyn.study.analyze as SA
 from mapdyn.analysis import report as R
 from mapdyn.core.options import SQUARE_GAMMA, MethodOptions
 
-SQC = MethodOptions()
+SQC = MethodOptions(window="square")
 TRI = MethodOptions(window="triangle")
 EHR = MethodOptions(method="ehrenfest")
 G = SQUARE_GAMMA
@@ -58,8 +58,12 @@ def test_sqc_populations_windowed_normalisation_and_no_window_counts():
     assert p.n_none.tolist() == [0, 1, 2]
     assert p.n_frames.tolist() == [6, 6, 6]
     assert np.all(p.low <= p.populations + 1e-15) and np.all(p.high >= p.populations - 1e-15)
-    # t = 0: every resample gives P = (0, 1) → interval collapses onto the estimate
-    assert p.low[0].tolist() == [0.0, 1.0] and p.high[0].tolist() == [0.0, 1.0]
+    # t = 0: every resample gives P = (0, 1); the band is the exact interval of 0 and 6 of 6
+    # (reference: scipy.stats.binomtest, Clopper–Pearson)
+    from scipy.stats import binomtest
+    ci = binomtest(6, 6).proportion_ci(method="exact")
+    np.testing.assert_allclose(p.low[0], [0.0, ci.low], atol=1e-12)
+    np.testing.assert_allclose(p.high[0], [1.0 - ci.low, 1.0], atol=1e-12)
     # agrees with the core estimator time by time
     from mapdyn.core.populations import ensemble_populations
     for t in range(3):
@@ -237,8 +241,17 @@ def test_geometric_observables_match_ase_atoms_methods():
                 atoms = Atoms("COHH", positions=ts.positions[j, t] * Bohr)
                 ref = {"distance": lambda: atoms.get_distance(0, 1), "angle": lambda: atoms.get_angle(0, 1, 2),  # noqa: B023
                        "dihedral": lambda: atoms.get_dihedral(0, 1, 2, 3)}[obs.kind]()  # noqa: B023
+                if obs.kind == "dihedral":   # ASE gives 0–360°, mapdyn folds into (−180°, 180°]
+                    assert -180.0 < vals[j, t] <= 180.0
+                    ref = ref - 360.0 if ref > 180.0 else ref
                 assert vals[j, t] == pytest.approx(ref, rel=1e-10, abs=1e-9)   # reference library: ASE
         series = A.observable_series(ts, obs)
+        if obs.kind == "dihedral":   # reference library: scipy.stats circular statistics
+            from scipy.stats import circmean, circstd
+            ref_mean = np.degrees(circmean(np.radians(vals), axis=0, high=np.pi, low=-np.pi))
+            np.testing.assert_allclose(np.cos(np.radians(series.mean - ref_mean)), 1.0, atol=1e-12)
+            np.testing.assert_allclose(series.std, np.degrees(circstd(np.radians(vals), axis=0)), rtol=1e-10)
+            continue
         np.testing.assert_allclose(series.mean, vals.mean(axis=0), rtol=1e-12)
         np.testing.assert_allclose(series.std, vals.std(axis=0, ddof=1), rtol=1e-12)
 
@@ -479,9 +492,9 @@ name = "tiny_tully1"
 backend = "model"
 model = "tully1"
 [initial]
-position_bohr = -4.0
-momentum_au = 20.0
-width_bohr = 1.0
+position = "-4.0 bohr"
+momentum = "20.0 au"
+width = "1.0 bohr"
 state = 0
 basis = "adiabatic"
 [method]

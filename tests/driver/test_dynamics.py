@@ -41,7 +41,7 @@ def one_atom(x_bohr: float, p_au: float, mass_au: float) -> ase.Atoms:
     return a
 
 
-def drive(model, x0, p0, z_ad, dt, nsteps, options=MethodOptions(), with_couplings=True, **kw):
+def drive(model, x0, p0, z_ad, dt, nsteps, options=MethodOptions(window="square"), with_couplings=True, **kw):
     dyn = MappingDynamics(one_atom(x0, p0, model.masses[0]), ModelAdapterBackend(model, with_couplings=with_couplings),
                           dt * units.AUT, 0, options, mapping_variables=(z_ad.real, z_ad.imag), **kw)
     dyn.run(nsteps)
@@ -67,7 +67,7 @@ def test_agrees_with_diabatic_engine_to_second_order(name):
     """sqc/square/symmetrized, 5 identical trajectories: driver (model adapter, NAC vectors, local
     diabatization) vs run_diabatic; R, P, adiabatic e_k(t) differences O(dt²)."""
     model, case = tully_model(name), CASES[name]
-    opts = MethodOptions()
+    opts = MethodOptions(window="square")
     ens, z_ad = initial_ensemble(model, case["k"], 5, opts)
     errors = {}
     for dt in (4.0, 2.0):
@@ -92,7 +92,7 @@ def test_overlap_only_path_reproduces_coupling_vector_path(name):
     force time, one t = 0 probe call) vs coupling vectors; in 1D the projection is exact, so the
     difference is only the O(dt²) extrapolation error."""
     model, case = tully_model(name), CASES[name]
-    ens, z_ad = initial_ensemble(model, case["k"], 3, MethodOptions(), seed=11)
+    ens, z_ad = initial_ensemble(model, case["k"], 3, MethodOptions(window="square"), seed=11)
     diffs = {}
     for dt in (4.0, 2.0):
         n = int(case["time"] / dt)
@@ -131,7 +131,7 @@ def test_ehrenfest_limit_identity():
     rng = np.random.default_rng(4)
     x, p = sample_mapping_variables(rng, 2, 0, MethodOptions(method="ehrenfest"))
     z = x + 1j * p
-    a = drive(model, -6.0, 12.0, z, 4.0, 400, MethodOptions())
+    a = drive(model, -6.0, 12.0, z, 4.0, 400, MethodOptions(window="square"))
     b = drive(model, -6.0, 12.0, z, 4.0, 400, MethodOptions(method="ehrenfest"))
     for k in range(3):  # rounding of (Σe − 1)/F ~ 1e-16 is the only difference
         np.testing.assert_allclose(a[k], b[k], rtol=0, atol=1e-12)
@@ -209,7 +209,7 @@ def two_mode_driver(with_couplings=True, dt=2.0, **kw):
     a = ase.Atoms("H", positions=[[-4.0 * units.Bohr, 0.3 * units.Bohr, 0.0]], masses=[2000.0 / AMU_IN_ME])
     a.set_momenta([[15.0 / P_ASE_TO_AU, 3.0 / P_ASE_TO_AU, 0.0]])
     return MappingDynamics(a, ModelAdapterBackend(TwoModeModel(), with_couplings=with_couplings), dt * units.AUT, 0,
-                           MethodOptions(), mapping_variables=(np.array([1.5, 0.4]), np.array([-0.2, 0.6])), **kw)
+                           MethodOptions(window="square"), mapping_variables=(np.array([1.5, 0.4]), np.array([-0.2, 0.6])), **kw)
 
 
 def test_projected_path_in_two_dimensions_conserves_energy_and_warns_once():
@@ -298,7 +298,7 @@ def test_geometry_file_input_and_zero_momenta(tmp_path):
     atoms.set_momenta(rng.normal(size=(3, 3)))
     path = tmp_path / "water.xyz"
     ase.io.write(str(path), atoms, format="extxyz")
-    dyn = MappingDynamics(str(path), CallbackBackend(flat, 2, 3), 0.5 * units.fs, 1, MethodOptions(),
+    dyn = MappingDynamics(str(path), CallbackBackend(flat, 2, 3), 0.5 * units.fs, 1, MethodOptions(window="square"),
                           rng=np.random.default_rng(0), zero_linear_momentum=True, zero_angular_momentum=True)
     P0 = dyn.state.momenta
     np.testing.assert_allclose(P0.sum(axis=0), 0, atol=1e-12)
@@ -320,7 +320,7 @@ def test_backend_failure_stops_or_raises():
 
     def make(mode):
         return MappingDynamics(one_atom(-6.0, 20.0, 2000.0), CallbackBackend(sometimes, 2, 1), 4 * units.AUT, 0,
-                               MethodOptions(), mapping_variables=(np.array([1.5, 0.3]), np.zeros(2)),
+                               MethodOptions(window="square"), mapping_variables=(np.array([1.5, 0.3]), np.zeros(2)),
                                on_backend_error=mode)
 
     dyn = make("stop")
@@ -335,7 +335,7 @@ def test_backend_without_couplings_or_overlaps_is_refused():
         return {"energies": [0.0, 0.1], "gradients": np.zeros((2, 1, 3))}
 
     with pytest.raises(ValueError, match="neither coupling vectors nor overlaps"):
-        MappingDynamics(one_atom(0.0, 10.0, 2000.0), CallbackBackend(bare, 2, 1), units.AUT, 0, MethodOptions(),
+        MappingDynamics(one_atom(0.0, 10.0, 2000.0), CallbackBackend(bare, 2, 1), units.AUT, 0, MethodOptions(window="square"),
                         mapping_variables=(np.ones(2), np.zeros(2)))
 
 
@@ -346,11 +346,11 @@ def test_bad_settings_name_the_parameter():
                     (dict(substeps=0), "substeps"), (dict(drift_threshold=-1.0), "drift_threshold"),
                     (dict(on_backend_error="retry"), "on_backend_error")):
         with pytest.raises(ValueError, match=msg):
-            MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 0, MethodOptions(), **base, **kw)
+            MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 0, MethodOptions(window="square"), **base, **kw)
     with pytest.raises(ValueError, match="initial_state"):
-        MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 2, MethodOptions(), **base)
+        MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 2, MethodOptions(window="square"), **base)
     with pytest.raises(ValueError, match="rng"):
-        MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 0, MethodOptions())
+        MappingDynamics(one_atom(0.0, 10.0, 2000.0), backend, units.AUT, 0, MethodOptions(window="square"))
 
 
 class WideGapModel(DiabaticModel):
@@ -387,7 +387,7 @@ def test_force_averaging_conserves_energy_when_the_step_does_not_resolve_the_gap
     model = WideGapModel()
     rng = np.random.default_rng(2)
     for _ in range(3):
-        x, p = sample_mapping_variables(rng, 2, 1, MethodOptions())
+        x, p = sample_mapping_variables(rng, 2, 1, MethodOptions(window="square"))
         old = drive(model, -4.0, 20.0, x + 1j * p, 20.0, 40, force_averaging=False)
         new = drive(model, -4.0, 20.0, x + 1j * p, 20.0, 40)
         d_old, d_new = np.abs(old[3]).max(), np.abs(new[3]).max()
@@ -405,7 +405,7 @@ def test_time_reversal_returns_to_the_start():
     """R, P → R, −P and z → z* after 20 steps, 20 more steps: back at the start to rounding (1e-12),
     with and without force averaging (both schemes are symmetric in time), WideGapModel, Δt = 20."""
     model = WideGapModel()
-    x, p = sample_mapping_variables(np.random.default_rng(2), 2, 1, MethodOptions())
+    x, p = sample_mapping_variables(np.random.default_rng(2), 2, 1, MethodOptions(window="square"))
     for averaging in (False, True):
         st = drive(model, -2.0, 20.0, x + 1j * p, 20.0, 20, force_averaging=averaging)[4].state
         back = drive(model, st.positions[0, 0], -st.momenta[0, 0], st.x - 1j * st.p, 20.0, 20,
@@ -475,7 +475,7 @@ def lih_casscf_run(dt_fs: float, nsteps: int) -> MappingDynamics:
     atoms = ase.Atoms("LiH", positions=[[0, 0, 0], [0, 0, 1.6]])
     atoms.set_momenta(rng.normal(size=(2, 3)) * np.sqrt(atoms.get_masses()[:, None] * units.kB * 300.0))
     backend = CASSCFBackend(["Li", "H"], basis="sto-3g", ncas=2, nelecas=2, nstates=2)
-    dyn = MappingDynamics(atoms, backend, dt_fs * units.fs, 1, MethodOptions(), rng=rng,
+    dyn = MappingDynamics(atoms, backend, dt_fs * units.fs, 1, MethodOptions(window="square"), rng=rng,
                           zero_linear_momentum=True, zero_angular_momentum=True)
     dyn.run(nsteps)
     return dyn
@@ -510,7 +510,7 @@ def test_tda_no_nac_path_conserves_energy():
     atoms = ase.Atoms("LiH", positions=[[0, 0, 0], [0, 0, 1.6]])
     atoms.set_momenta(rng.normal(size=(2, 3)) * np.sqrt(atoms.get_masses()[:, None] * units.kB * 300.0))
     backend = TDDFTBackend(["Li", "H"], basis="sto-3g", xc=None, method="tda", nstates=3)
-    dyn = MappingDynamics(atoms, backend, 0.5 * units.fs, 1, MethodOptions(), rng=rng,
+    dyn = MappingDynamics(atoms, backend, 0.5 * units.fs, 1, MethodOptions(window="square"), rng=rng,
                           zero_linear_momentum=True, zero_angular_momentum=True)
     dyn.run(60)
     assert dyn.metadata["coupling_source"] == "projected_overlaps" and dyn.metadata["warnings"][0] == PROJECTION_WARNING

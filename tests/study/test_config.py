@@ -6,6 +6,7 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import tomllib
 
 import pytest
 from conftest import tully1_study
@@ -85,7 +86,10 @@ CASES = [
     ("window width out of range", edit(edit(MODEL, "method", "window", '"square"'), "method", "gamma", "0.7"), "method.gamma"),
     ("gamma with triangle", edit(MODEL, "method", "gamma", "0.3"), "method.gamma"),
     ("initial state beyond states (model)", edit(MODEL, "initial", "state", "2"), "initial.state = 2: only states 0..1 are computed"),
-    ("negative width", edit(MODEL, "initial", "width_bohr", "-1.0"), "initial.width_bohr = -1.0: must be positive"),
+    ("negative width", edit(MODEL, "initial", "width", '"-1.0 bohr"'), "initial.width = \"-1.0 bohr\": must be positive"),
+    ("width without unit", edit(MODEL, "initial", "width", "1.0"), "initial.width = 1.0: give a length with a unit"),
+    ("width with an energy unit", edit(MODEL, "initial", "width", '"1 eV"'), "initial.width = \"1 eV\": unknown length unit 'eV'"),
+    ("old and new key together", edit(MODEL, "initial", "width_bohr", "1.0"), "initial.width_bohr is given together with initial.width"),
     ("unknown model", edit(MODEL, "electronic", "model", '"tully4"'), "electronic.model = \"tully4\": choose one of"),
     ("unknown model parameter", MODEL.replace('model = "tully1"', 'model = "tully1"\nparameters = {A = 0.01, Q = 2.0}'), "electronic.parameters.Q is not a parameter of tully1"),
     ("unknown backend", edit(MODEL, "electronic", "backend", '"cassscf"'), "electronic.backend = \"cassscf\": choose one of casscf, tddft, model, callback (did you mean 'casscf'?)"),
@@ -105,9 +109,10 @@ CASES = [
     ("cas_orbitals beyond the basis", edit(MOLECULE, "electronic", "cas_orbitals", "[0, 2]"), "electronic.cas_orbitals = [0, 2]: the sto-3g basis gives orbitals 0..1 only"),
     ("casscf key on tddft backend", edit(MOLECULE, "electronic", "backend", '"tddft"'), "electronic.active_orbitals is not used with backend = \"tddft\""),
     ("one state only", edit(MOLECULE, "electronic", "states", "1"), "electronic.states = 1"),
-    ("model key on a molecule", edit(MOLECULE, "initial", "momentum_au", "3.0"), "initial.momentum_au is not used for molecules"),
+    ("model key on a molecule", edit(MOLECULE, "initial", "momentum", '"3.0 au"'), "initial.momentum is not used for molecules"),
     ("brightest with a state", edit(MOLECULE, "initial", "excitation", '"brightest"'), "initial.state is not used with excitation = \"brightest\""),
-    ("negative temperature", edit(MOLECULE, "initial", "temperature_kelvin", "-5.0"), "initial.temperature_kelvin = -5.0: must be >= 0 K"),
+    ("negative temperature", edit(MOLECULE, "initial", "temperature", '"-5 K"'), "initial.temperature = \"-5 K\": must be >= 0 K"),
+    ("negative temperature, old key", edit(MOLECULE, "initial", "temperature_kelvin", "-5.0"), "initial.temperature_kelvin = -5.0: must be >= 0 K"),
     ("not TOML", "[study\nname = 1\n", "is not valid TOML"),
     ("bad study name", edit(MODEL, "study", "name", '"a b/c"'), "study.name = \"a b/c\": use letters"),
     ("window key with ehrenfest", edit(edit(MODEL, "method", "method", '"ehrenfest"'), "method", "window", '"square"'), "method.window is not used with method = \"ehrenfest\""),
@@ -177,3 +182,43 @@ def test_every_shipped_input_is_valid():
     assert len(names) >= 3
     for name in names:
         load_study_config(os.path.join(here, name))
+
+
+# --- units read from strings; factors checked against ase.units (the reference library) ---------
+@pytest.mark.parametrize("text, kind, expected", [
+    ("1 Eh", "energy", lambda u: 1.0),
+    ("2.5 eV", "energy", lambda u: 2.5 / u.Hartree),
+    ("3 meV", "energy", lambda u: 3e-3 / u.Hartree),
+    ("1 kcal/mol", "energy", lambda u: u.kcal / u.mol / u.Hartree),
+    ("4 kJ/mol", "energy", lambda u: 4 * u.kJ / u.mol / u.Hartree),
+    ("100 cm-1", "energy", lambda u: 100 * u.invcm / u.Hartree),
+    ("100 cm^-1", "energy", lambda u: 100 * u.invcm / u.Hartree),
+    ("20 au", "time", lambda u: 20.0),
+    ("0.5 fs", "time", lambda u: 0.5 * u.fs / u.AUT),
+    ("500 as", "time", lambda u: 0.5 * u.fs / u.AUT),
+    ("0.1 ps", "time", lambda u: 100 * u.fs / u.AUT),
+    ("-8 bohr", "length", lambda u: -8.0),
+    ("1.2 Å", "length", lambda u: 1.2 / u.Bohr),
+    ("1.2 angstrom", "length", lambda u: 1.2 / u.Bohr),
+    ("300 K", "temperature", lambda u: 300.0),
+])
+def test_each_unit_string_gives_the_ase_units_value(text, kind, expected):
+    from ase import units
+
+    from mapdyn.study.input_values import parse_quantity
+
+    assert parse_quantity(text, "key", kind) == pytest.approx(expected(units), rel=1e-12)
+
+
+def test_deprecated_unit_in_name_keys_still_work_with_a_warning():
+    from mapdyn.study.config import parse_study
+
+    old = tomllib.loads(MODEL)
+    init = old["initial"]
+    init["position_bohr"], init["momentum_au"], init["width_bohr"] = -8.0, 15.0, 1.0
+    for k in ("position", "momentum", "width"):
+        del init[k]
+    with pytest.warns(FutureWarning, match="initial.position_bohr is deprecated"):
+        cfg_old = parse_study(old)
+    cfg_new = parse_study(tomllib.loads(MODEL))
+    assert cfg_old.initial == cfg_new.initial

@@ -7,6 +7,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from mapdyn.analysis.statistics import circular_stats_degrees, fold_degrees
 from mapdyn.analysis.trajectories import TrajectorySet
 from mapdyn.core.windows import window_indicators
 from mapdyn.units import BOHR_IN_ANGSTROM
@@ -20,7 +21,7 @@ _KIND_UNIT = {"distance": "Å", "angle": "deg", "dihedral": "deg"}
 
 @dataclasses.dataclass(frozen=True)
 class GeometricObservable:
-    """A distance (Å), angle (deg, at the middle atom) or dihedral (deg, 0–360 as in ASE) between
+    """A distance (Å), angle (deg, at the middle atom) or dihedral (deg, folded into (−180°, 180°]) between
     atom indices (0-based), computed with the vectorised functions behind ase.Atoms
     get_distance / get_angle / get_dihedral (``ase.geometry.get_angles``/``get_dihedrals``).
     """
@@ -43,6 +44,11 @@ class GeometricObservable:
     @property
     def unit(self) -> str:
         return _KIND_UNIT[self.kind]
+
+    @property
+    def circular(self) -> bool:
+        """Dihedrals are periodic (360°): averaged with circular statistics."""
+        return self.kind == "dihedral"
 
     @classmethod
     def from_spec(cls, spec: Any) -> "GeometricObservable":
@@ -78,7 +84,7 @@ class GeometricObservable:
                 out[ok] = get_angles(p[0][ok] - p[1][ok], p[2][ok] - p[1][ok])
         else:
             if ok.any():
-                out[ok] = get_dihedrals(p[1][ok] - p[0][ok], p[2][ok] - p[1][ok], p[3][ok] - p[2][ok])
+                out[ok] = fold_degrees(get_dihedrals(p[1][ok] - p[0][ok], p[2][ok] - p[1][ok], p[3][ok] - p[2][ok]))
         return out.reshape(lead)
 
 
@@ -88,6 +94,8 @@ class ObservableSeries:
 
     times (T,) a.u.; mean, std (sample standard deviation), q10, q90 : (T,) in ``unit``;
     n : (T,) trajectories contributing; values : (n_traj, T) per-trajectory values (NaN = no frame).
+    circular : True for dihedrals — mean/std are the circular mean and circular standard deviation
+    (:func:`mapdyn.analysis.statistics.circular_stats_degrees`), values folded into (−180°, 180°].
     """
 
     name: str
@@ -99,6 +107,11 @@ class ObservableSeries:
     q90: np.ndarray
     n: np.ndarray
     values: np.ndarray
+    circular: bool = False
+
+    @property
+    def statistic(self) -> str:
+        return "circular mean ± circular std" if self.circular else "mean ± std"
 
 
 def observable_series(tset: TrajectorySet, observable: GeometricObservable | Any) -> ObservableSeries:
@@ -109,6 +122,9 @@ def observable_series(tset: TrajectorySet, observable: GeometricObservable | Any
     vals = obs.values(tset.positions)
     vals = np.where(tset.frame_mask, vals, np.nan)
     n = np.isfinite(vals).sum(axis=0)
+    if obs.circular:
+        mean, std, q10, q90 = circular_stats_degrees(vals, axis=0)
+        return ObservableSeries(obs.name, obs.unit, tset.times.copy(), mean, std, q10, q90, n.astype(int), vals, True)
     import warnings
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -131,6 +147,7 @@ class FirstEntry:
     values: np.ndarray
     indices: np.ndarray
     criterion: str
+    circular: bool = False
 
 
 def _state_occupancy(tset: TrajectorySet, state: int) -> tuple[np.ndarray, str]:
@@ -161,7 +178,7 @@ def values_at_first_entry(tset: TrajectorySet, state: int, observable: Geometric
     has = entered.any(axis=1)
     first = np.argmax(entered, axis=1) + 1
     times = np.where(has, tset.times[first], np.nan)
-    name, unit = f"entry into state {state}", "a.u."
+    name, unit, circular = f"entry into state {state}", "a.u.", False
     values = np.full(tset.ntraj, np.nan)
     if observable is not None:
         obs = GeometricObservable.from_spec(observable)
@@ -169,7 +186,7 @@ def values_at_first_entry(tset: TrajectorySet, state: int, observable: Geometric
             raise ValueError(f"observable {obs.name}: this trajectory set has no atomic positions")
         rows = np.nonzero(has)[0]
         values[rows] = obs.values(tset.positions[rows, first[rows]])
-        name, unit = obs.name, obs.unit
-    return FirstEntry(int(state), name, unit, times, values, tset.indices.copy(), criterion)
+        name, unit, circular = obs.name, obs.unit, obs.circular
+    return FirstEntry(int(state), name, unit, times, values, tset.indices.copy(), criterion, circular)
 
 

@@ -120,7 +120,7 @@ def plot_populations(series: Any, path: str | os.PathLike, *, time_unit: str = "
         top.set_ylabel("population")
         top.set_ylim(-0.02, 1.02)
         pct = int(round(100 * series.confidence_level))
-        top.legend(loc="best", title=f"bands: {pct} % bootstrap ({series.bootstrap_method})",
+        top.legend(loc="best", title=f"bands: {pct} % bootstrap ({series.bootstrap_method}), ⊇ Clopper–Pearson",
                    title_fontsize=8)
         top.set_title(title or ("Adiabatic populations, " + ("SQC windows" if sqc else "Ehrenfest")))
         ntot = max(int(series.n_frames.max()), 1)
@@ -146,7 +146,7 @@ def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike
         ax = ax[0, 0]
         c = STATE_COLOURS[0]
         ax.fill_between(t, series.low[:, 0], series.high[:, 0], color=c, alpha=0.2, lw=0,
-                        label=f"{int(round(100 * series.confidence_level))} % bootstrap band")
+                        label=f"{int(round(100 * series.confidence_level))} % band (bootstrap ⊇ Clopper–Pearson)")
         ax.plot(t, series.populations[:, 0], color=c, label="initial-state population")
         tf, _ = _time(lifetimes.times, time_unit)
         styles = {"mono": ("#d35400", "single exponential"), "bi": ("#3c7a3b", "bi-exponential")}
@@ -155,12 +155,18 @@ def plot_initial_population(series: Any, lifetimes: Any, path: str | os.PathLike
                 continue
             colour, label = styles[name]
             pref = lifetimes.preferred == name
+            why = [r for r in lifetimes.reasons if not r.startswith(("mono: ", "bi: "))] or list(fit.reasons)
+            if not fit.supported or lifetimes.reasons:
+                short = (why[0] if why else "rejected").split(" (")[0]   # the reason without its explanation
+                short = short if len(short) <= 45 else short[:42] + "…"
+                ax.plot(tf, fit.curve, color=colour, ls=":", lw=1.0, label=f"{label}: not supported ({short})")
+                continue
             if name == "mono":
                 label += f", τ = {fit.parameters['tau'] * scale:.4g} ± {fit.uncertainties['tau'] * scale:.2g} {unit}"
             else:
                 label += (f", τ1 = {fit.parameters['tau1'] * scale:.3g}, τ2 = {fit.parameters['tau2'] * scale:.3g} {unit}"
                           f", a = {fit.parameters['a']:.2f}")
-            label += " (preferred)" if pref else ("" if fit.supported else " (not supported)")
+            label += " (preferred)" if pref else ""
             ax.plot(tf, fit.curve, color=colour, ls="-" if pref else "--", lw=1.4 if pref else 1.1, label=label)
         ax.set_xlabel(xlabel)
         ax.set_ylabel("population of the initial state")
@@ -179,13 +185,14 @@ def plot_observable(series: Any, path: str | os.PathLike, *, time_unit: str = "f
     with new_figure() as (fig, ax):
         ax = ax[0, 0]
         c = STATE_COLOURS[3]
+        circ = getattr(series, "circular", False)
         ax.fill_between(t, series.mean - series.std, series.mean + series.std, color=c, alpha=0.2, lw=0,
-                        label="mean ± standard deviation")
-        ax.plot(t, series.mean, color=c, label="ensemble mean")
+                        label="circular mean ± circular std" if circ else "mean ± standard deviation")
+        ax.plot(t, series.mean, color=c, label="circular mean" if circ else "ensemble mean")
         ax.plot(t, series.q10, color=c, ls=":", lw=1.0, label="10 % / 90 % quantiles")
         ax.plot(t, series.q90, color=c, ls=":", lw=1.0)
         ax.set_xlabel(xlabel)
-        ax.set_ylabel(f"{series.name} / {series.unit}")
+        ax.set_ylabel(f"{series.name} / {series.unit}" + (" (folded into (−180, 180])" if circ else ""))
         ax.legend(loc="best")
         ax.set_title(title or f"{series.name} over the ensemble")
         return save_figure(fig, path)
@@ -197,12 +204,16 @@ def plot_first_entry(entry: Any, path: str | os.PathLike, *, time_unit: str = "f
     use_values = np.isfinite(entry.values).any()
     if use_values:
         data, xlabel = entry.values[np.isfinite(entry.values)], f"{entry.name} / {entry.unit}"
+        if getattr(entry, "circular", False):
+            xlabel += " (folded into (−180, 180])"
     else:
         data, xlabel = _time(entry.times[np.isfinite(entry.times)], time_unit)
         xlabel = "entry " + xlabel
     with new_figure() as (fig, ax):
         ax = ax[0, 0]
         if data.size:
+            if use_values and getattr(entry, "circular", False):
+                bins = np.linspace(-180.0, 180.0, int(bins) + 1)
             ax.hist(data, bins=bins, color=STATE_COLOURS[2], alpha=0.8, edgecolor="white",
                     label=f"{data.size} of {entry.times.size} trajectories")
         else:

@@ -6,7 +6,7 @@ import dataclasses
 
 import numpy as np
 
-from mapdyn.analysis.statistics import _resample_weights, bootstrap_ratio
+from mapdyn.analysis.statistics import _resample_weights, bootstrap_ratio, widen_to_binomial
 from mapdyn.analysis.trajectories import TrajectorySet
 from mapdyn.core.populations import population_weights
 from mapdyn.units import AU_TIME_IN_FS
@@ -17,7 +17,11 @@ from mapdyn.units import AU_TIME_IN_FS
 # ----------------------------------------------------------------------------------------------
 @dataclasses.dataclass
 class PopulationSeries:
-    """Populations vs time with bootstrap bounds.
+    """Populations vs time with bootstrap bounds, never narrower than the exact binomial interval.
+
+    low/high: the trajectory-bootstrap interval widened to contain the Clopper–Pearson interval of
+    k = P·n out of n (n = trajectories counted in the denominator at that time; Clopper & Pearson,
+    Biometrika 26, 404 (1934)), so 0 of 4 gives [0, 0.60] rather than [0, 0]; ``interval`` says so.
 
     times : (T,) a.u.; populations, low, high, standard_error : (T, K) dimensionless (K = F states
     or 1 for the initial-state population); n_none : (T,) trajectories in no window (0 for
@@ -37,6 +41,7 @@ class PopulationSeries:
     estimator: str
     bootstrap_method: str
     n_resamples: int
+    interval: str = ""
 
     @property
     def times_fs(self) -> np.ndarray:
@@ -71,6 +76,11 @@ def _series(tset: TrajectorySet, num: np.ndarray, den: np.ndarray, labels, estim
         with np.errstate(invalid="ignore", divide="ignore"):
             est = a.sum(axis=0) / den.sum(axis=0)[column_of]
         low = high = se = np.full(T * K, np.nan)
+    trials = np.repeat((den > 0).sum(axis=0), K)
+    low, high = widen_to_binomial(est, low, high, trials, confidence_level)
+    interval = (f"{int(round(100 * confidence_level))} % trajectory bootstrap ({method}) widened to contain the "
+                "Clopper–Pearson interval of the observed counts" if bootstrap else
+                f"{int(round(100 * confidence_level))} % Clopper–Pearson interval of the observed counts")
     n_frames = mask.sum(axis=0)
     if tset.options.method == "ehrenfest":
         n_none = np.zeros(T, dtype=int)
@@ -80,7 +90,7 @@ def _series(tset: TrajectorySet, num: np.ndarray, den: np.ndarray, labels, estim
     return PopulationSeries(tset.times.copy(), est.reshape(shape), np.asarray(low).reshape(shape),
                             np.asarray(high).reshape(shape), np.asarray(se).reshape(shape), n_none,
                             n_frames.astype(int), tuple(labels), float(confidence_level), estimator,
-                            method if bootstrap else "none", int(n_resamples) if bootstrap else 0)
+                            method if bootstrap else "none", int(n_resamples) if bootstrap else 0, interval)
 
 
 def populations(tset: TrajectorySet, *, confidence_level: float = 0.95, n_resamples: int = 999,

@@ -7,7 +7,7 @@ from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
-from mapdyn.analysis.statistics import bootstrap_ratio
+from mapdyn.analysis.statistics import bootstrap_ratio, widen_to_binomial
 from mapdyn.analysis.trajectories import TrajectorySet
 from mapdyn.units import BOHR_IN_ANGSTROM
 
@@ -150,6 +150,7 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
     onehot = np.array([[lab == name for name in labels] for lab in classified], dtype=float)
     est, low, high, se = bootstrap_ratio(onehot, np.ones((m, 1)), np.zeros(L, dtype=int),
                                          confidence_level=confidence_level, n_resamples=n_resamples, seed=seed)
+    low, high = widen_to_binomial(est, low, high, np.full(L, m), confidence_level)  # never narrower than exact
     return ProductBranching(labels, onehot.sum(axis=0).astype(int), est, low, high, se, tuple(labels_per), m,
                             float(confidence_level), excluded)
 

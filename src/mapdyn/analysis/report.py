@@ -23,14 +23,16 @@ import dataclasses
 import io
 import os
 import re
-from typing import Any, Sequence
+from typing import Any, Iterable, Sequence
 
 import numpy as np
 
 from mapdyn.analysis import AnalysisResults, TrajectorySet, analyze, plots
 from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
-__all__ = ["Report", "write_report", "write_csv", "read_csv"]
+__all__ = ["Report", "write_report", "write_csv", "read_csv", "summarise_warnings"]
+
+_NUMBER_RE = re.compile(r"[-+]?\d+\.?\d*(?:[eE][-+]?\d+)?")
 
 
 @dataclasses.dataclass
@@ -101,6 +103,51 @@ def _pm(v: float, e: float, digits: int = 3) -> str:
     return f"{v:.{digits}g} ± {e:.2g}"
 
 
+def summarise_warnings(records: Iterable[dict], limit: int = 20) -> list[str]:
+    """Lines "N× Category: message (trajectories a, b, …; first at step s)" grouped by message
+    shape (numbers blanked), most frequent first."""
+    groups: dict = {}
+    for r in records:
+        key = (r.get("category", "Warning"), _NUMBER_RE.sub("#", r.get("message", "")))
+        g = groups.setdefault(key, {"count": 0, "trajectories": set(), "first": None, "example": r.get("message", "")})
+        g["count"] += int(r.get("count", 1))
+        g["trajectories"].add(int(r.get("index", -1)))
+        s = int(r.get("first_step", 0))
+        g["first"] = s if g["first"] is None else min(g["first"], s)
+    lines = []
+    for (cat, _), g in sorted(groups.items(), key=lambda kv: -kv[1]["count"])[:limit]:
+        trajs = sorted(g["trajectories"])
+        shown = ", ".join(str(t) for t in trajs[:8]) + (", …" if len(trajs) > 8 else "")
+        lines.append(f"{g['count']}× {cat}: {g['example']} (trajectories {shown}; first at step {g['first']})")
+    if len(groups) > limit:
+        lines.append(f"… and {len(groups) - limit} more kinds of warning")
+    return lines
+
+
+def _energy_text(eh: Any) -> str:
+    """An energy in Eh as "1e-03 Eh (27.2 meV)"; "n/a" when missing."""
+    if eh is None:
+        return "n/a"
+    return f"{float(eh):.3g} Eh ({float(eh) * HARTREE_IN_EV * 1e3:.3g} meV)"
+
+
+def fit_supported(life: Any, fit: Any) -> tuple[bool, str]:
+    """Whether a lifetime fit may be shown as numbers: the fit passes the rule and the data show a
+    decay at all; else (False, reason)."""
+    if fit.supported and not life.reasons:
+        return True, ""
+    why = ([r for r in life.reasons if not r.startswith(("mono: ", "bi: "))] or list(fit.reasons)
+           or ["fit did not converge"])
+    return False, "; ".join(why)
+
+
+def _circ_pm(values: np.ndarray, unit: str) -> str:
+    from mapdyn.analysis.statistics import circular_stats_degrees
+
+    m, sd, _, _ = circular_stats_degrees(values[np.isfinite(values)])
+    return f"{float(m):.4g} ± {float(sd):.2g} {unit} (circular mean ± circular std, range (−180°, 180°])"
+
+
 def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.PathLike, *,
                  time_unit: str | None = None, title: str | None = None) -> Report:
     """Write figures, CSV files and ``summary.md`` into ``folder`` (created if missing).
@@ -138,8 +185,8 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
     data += [pops.n_none, pops.n_frames]
     tab("populations", cols, data)
     fig("populations", plots.plot_populations, pops, time_unit=tu,
-        note=(f"adiabatic populations vs time, {int(round(100 * pops.confidence_level))} % trajectory-bootstrap "
-              "bands; lower panel: fraction of trajectories with a frame and (SQC) in no window"))
+        note=(f"adiabatic populations vs time, bands: {pops.interval}; "
+              "lower panel: fraction of trajectories with a frame and (SQC) in no window"))
 
     # initial-state population and fits ----------------------------------------------------------
     init, life = results.initial_population, results.lifetimes
@@ -162,11 +209,13 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         name = "observable_" + _slug(obs.name)
         cols, data = _time_columns(obs.times)
         u = "angstrom" if obs.unit == "Å" else obs.unit
-        cols += [f"mean_{u}", f"std_{u}", f"q10_{u}", f"q90_{u}", "n"]
+        stat = "circmean" if obs.circular else "mean"
+        cols += [f"{stat}_{u}", f"{'circstd' if obs.circular else 'std'}_{u}", f"q10_{u}", f"q90_{u}", "n"]
         data += [obs.mean, obs.std, obs.q10, obs.q90, obs.n]
         tab(name, cols, data)
         fig(name, plots.plot_observable, obs, time_unit=tu,
-            note=f"{obs.name} ({obs.unit}): ensemble mean ± standard deviation and 10/90 % quantiles")
+            note=f"{obs.name} ({obs.unit}): ensemble {obs.statistic} and 10/90 % quantiles"
+                 + (" (of deviations from the circular mean; angles folded into (−180°, 180°])" if obs.circular else ""))
 
     for ent in results.first_entries:
         name = f"first_entry_state{ent.state}_" + _slug(ent.name)
@@ -213,6 +262,16 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         fig("spectrum", plots.plot_spectrum, spec,
             note="nuclear-ensemble absorption spectrum of the sampled geometries (Å²) with per-state contributions")
 
+    sc = getattr(results, "scattering", None)
+    if sc is not None:
+        F = sc.transmission.size
+        tab("scattering", ["channel", "state", "probability", "standard_error", "low", "high"],
+            [["transmission"] * F + ["reflection"] * F, list(range(F)) * 2,
+             np.concatenate([sc.transmission, sc.reflection]),
+             np.concatenate([sc.transmission_error, sc.reflection_error]),
+             np.concatenate([sc.transmission_low, sc.reflection_low]),
+             np.concatenate([sc.transmission_high, sc.reflection_high])])
+
     summary = _summary(results, figs, tabs, notes, title, tu)
     spath = plots.atomic_write_text(os.path.join(folder, "summary.md"), summary)
     return Report(folder, figs, tabs, spath)
@@ -224,7 +283,7 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append(f"# {title or ts.metadata.get('name') or 'mapdyn analysis report'}")
     L.append("")
     L.append("## Inputs")
-    L.append(f"- method: {ts.options.describe()} (window γ = {ts.options.window_gamma:.6g})")
+    L.append(f"- method: {ts.options.long_name()} [{ts.options.describe()}]")
     L.append(f"- trajectories: {ts.ntraj}; states: {ts.nstates}; time points: {ts.times.size}, "
              f"t = {ts.times[0]:.6g} … {ts.times[-1]:.6g} a.u. ({ts.times[0] * AU_TIME_IN_FS:.4g} … "
              f"{ts.times[-1] * AU_TIME_IN_FS:.4g} fs)")
@@ -232,12 +291,13 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append("- initial states: " + ", ".join(f"{s}: {c}" for s, c in zip(states, counts)))
     for k, v in ts.metadata.items():
         if k != "method":
-            L.append(f"- {k}: {v}")
+            shown = f"{v:.6g}" if isinstance(v, (float, np.floating)) else v  # no 16-digit floats in prose
+            L.append(f"- {k}: {shown}")
     st = res.settings
     if st:
         L.append(f"- analysis: {int(round(100 * st.get('confidence_level', 0.95)))} % bootstrap intervals, "
                  f"{st.get('n_resamples')} resamples (seed {st.get('bootstrap_seed')}), "
-                 f"energy tolerance {st.get('energy_tolerance_hartree')} Eh")
+                 f"energy tolerance {_energy_text(st.get('energy_tolerance_hartree'))}")
     L.append("")
     L.append("## Counts")
     sc = ts.status_counts()
@@ -248,52 +308,86 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
         L.append(f"- trajectories in no window: {int(pops.n_none[-1])} at the last time, at most "
                  f"{int(pops.n_none.max())}")
     L.append("")
-    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_IN_FS:.4g} fs, "
-             f"{int(round(100 * pops.confidence_level))} % interval, {pops.bootstrap_method}):")
+    L.append(f"Populations at the last time (t = {pops.times[-1] * AU_TIME_IN_FS:.4g} fs; interval: "
+             f"{pops.interval or pops.bootstrap_method}):")
     L.append("")
     L.append("| state | population | interval |")
     L.append("|---|---|---|")
     for k, lab in enumerate(pops.labels):
         L.append(f"| {lab} | {pops.populations[-1, k]:.4f} | [{pops.low[-1, k]:.4f}, {pops.high[-1, k]:.4f}] |")
     L.append("")
+    sc = getattr(res, "scattering", None)
+    if sc is not None:
+        L.append("## Scattering channels")
+        a, b = sc.region
+        L.append(f"A scattering study: what it measures is where the packet ends up, so no lifetime is fitted. "
+                 f"Trajectories that left the interaction region [{a:.3g}, {b:.3g}] bohr at their last frame: "
+                 f"{sc.n_counted} counted, {sc.n_unassigned} in no window, {sc.n_inside} still inside (left out).")
+        L.append(f"Estimator: {sc.estimator}; ± standard error; "
+                 f"{int(round(100 * sc.confidence_level))} % Clopper–Pearson interval.")
+        L.append("")
+        L.append("| channel | state | probability | interval |")
+        L.append("|---|---|---|---|")
+        for name, p_, e_, lo_, hi_ in (("transmission", sc.transmission, sc.transmission_error, sc.transmission_low,
+                                        sc.transmission_high),
+                                       ("reflection", sc.reflection, sc.reflection_error, sc.reflection_low,
+                                        sc.reflection_high)):
+            for f in range(p_.size):
+                L.append(f"| {name} | {f} | {p_[f]:.4f} ± {e_[f]:.2g} | [{lo_[f]:.4f}, {hi_[f]:.4f}] |")
+        L.append("")
     L.append("## Lifetime of the initial state")
     life = res.lifetimes
-    if life.lifetime is None:
+    if sc is not None:
+        L.append("Not reported for a scattering study (the initial-state population follows the passage through "
+                 "the coupling region, not a decay); see the scattering channels above.")
+        L.append("")
+    elif life.lifetime is None:
         L.append("No lifetime reported: " + ("; ".join(life.reasons) if life.reasons else "not supported") + ".")
     else:
         tau_fs, err_fs = life.lifetime_fs()
         what = "τ" if life.preferred == "mono" else "amplitude-weighted mean a·τ1 + (1 − a)·τ2"
         L.append(f"**{_pm(tau_fs, err_fs, 4)} fs** ({what}, {'single' if life.preferred == 'mono' else 'bi'}-exponential fit).")
     L.append("")
-    if life.fits:
+    if life.fits and sc is None:
         L.append("| model | parameters (times in fs) | reduced χ² | AIC | supported |")
         L.append("|---|---|---|---|---|")
         for name, f in life.fits.items():
-            parts = []
-            for p in f.names:
-                scale = AU_TIME_IN_FS if p.startswith("tau") or p == "delay" else 1.0
-                parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
+            ok, why = fit_supported(life, f)
+            if ok:
+                parts = []
+                for p in f.names:
+                    scale = AU_TIME_IN_FS if p.startswith("tau") or p == "delay" else 1.0
+                    parts.append(f"{p} = {_pm(f.parameters[p] * scale, f.uncertainties[p] * scale)}")
+                params = ", ".join(parts)
+            else:
+                params = f"not supported ({why})"
             d = f.diagnostics
             rc = f"{d['reduced_chi2']:.3g}" if "reduced_chi2" in d else "n/a"
             aic = f"{d['aic']:.4g}" if "aic" in d else "n/a"
-            sup = "yes" if f.supported else "no: " + "; ".join(f.reasons)
-            L.append(f"| {name} | {', '.join(parts)} | {rc} | {aic} | {sup} |")
+            sup = "yes" if ok else "no"
+            L.append(f"| {name} | {params} | {rc} | {aic} | {sup} |")
         L.append("")
         meth = {f.diagnostics.get("uncertainty_method") for f in life.fits.values() if f.diagnostics.get("converged")}
         L.append("Uncertainties (1σ): " + ", ".join(sorted(m for m in meth if m)) + ".")
         L.append("")
-    L.append(f"Rule: {life.rule}")
+    if sc is None:
+        L.append(f"Rule: {life.rule}")
     L.append("")
     if res.observables or res.first_entries:
         L.append("## Geometric observables")
         for o in res.observables:
+            rng = ", angles folded into (−180°, 180°]" if o.circular else ""
             L.append(f"- {o.name}: {o.mean[0]:.4g} ± {o.std[0]:.2g} {o.unit} at the start, "
-                     f"{o.mean[-1]:.4g} ± {o.std[-1]:.2g} {o.unit} at the end (mean ± std)")
+                     f"{o.mean[-1]:.4g} ± {o.std[-1]:.2g} {o.unit} at the end ({o.statistic}{rng})")
         for e in res.first_entries:
             ok = np.isfinite(e.times)
             if ok.any():
-                extra = (f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit}"
-                         if np.isfinite(e.values).any() else "")
+                if not np.isfinite(e.values).any():
+                    extra = ""
+                elif getattr(e, "circular", False):
+                    extra = f", {e.name} there {_circ_pm(e.values, e.unit)}"
+                else:
+                    extra = f", {e.name} there {np.nanmean(e.values):.4g} ± {np.nanstd(e.values):.2g} {e.unit} (mean ± std)"
                 L.append(f"- first entry into state {e.state}: {int(ok.sum())} of {ok.size} trajectories, "
                          f"mean time {np.nanmean(e.times) * AU_TIME_IN_FS:.4g} fs{extra}")
             else:
@@ -329,6 +423,17 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
                  f"max deviation {e['max_deviation'] * HARTREE_IN_EV * 1e3:.3g} meV")
         L.append(f"- flagged (max deviation > {en.tolerance:.3g} Eh = {en.tolerance * HARTREE_IN_EV * 1e3:.3g} meV): "
                  f"{e['n_flagged']}")
+    L.append("")
+    L.append("## Warnings raised during the dynamics")
+    wrec = getattr(ts, "warnings", None) or []
+    if not wrec:
+        L.append("None recorded.")
+    else:
+        ntr = len({int(r.get("index", -1)) for r in wrec})
+        L.append(f"{len(wrec)} distinct warning(s) in {ntr} trajectory record(s) (per-trajectory details in "
+                 "`warnings.json` next to each trajectory's checkpoints):")
+        L.append("")
+        L.extend("- " + line for line in summarise_warnings(wrec))
     L.append("")
     L.append("## Flagged and failed trajectories")
     if not res.flags:

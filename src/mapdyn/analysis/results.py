@@ -37,20 +37,23 @@ class AnalysisResults:
     vibrational: list = dataclasses.field(default_factory=list)
     spectrum: Any = None
     settings: dict = dataclasses.field(default_factory=dict)
+    scattering: Any = None
 
 
 def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry: Sequence[tuple] = (),
             classifier: Callable | Mapping | None = None, vibrational: Sequence[Any] = (),
             spectrum: Any = None, confidence_level: float = 0.95, n_resamples: int = 999, seed: int = 0,
             energy_tolerance: float = 1e-3, lifetime_delay: bool = True, lifetime_asymptote: bool = True,
-            lifetime_resamples: int = 100) -> AnalysisResults:
+            lifetime_resamples: int = 100, scattering: tuple | None = None) -> AnalysisResults:
     """Run every estimator on ``tset``.
 
     observables : specs for :class:`GeometricObservable`; first_entry : (state, observable-spec or
     None) pairs; classifier : product classifier (see :func:`classify_products`); vibrational :
     :class:`mapdyn.analysis.vibrational.FragmentAnalysis` objects (or specs) evaluated on final frames;
     spectrum : an :class:`mapdyn.initial.excitation.AbsorptionSpectrum` to include in the report;
-    lifetime_resamples : trajectory-bootstrap refits for the lifetime uncertainties (0 = covariance).
+    lifetime_resamples : trajectory-bootstrap refits for the lifetime uncertainties (0 = covariance);
+    scattering : ((a, b) interaction region in Bohr, transmitted side 1 = +x / 0 = −x) for 1D
+    scattering studies: transmission/reflection per channel are reported instead of a lifetime.
     """
     kw = dict(confidence_level=confidence_level, n_resamples=n_resamples, seed=seed)
     pops = populations(tset, **kw)
@@ -75,6 +78,13 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     settings = {"confidence_level": confidence_level, "n_resamples": n_resamples, "bootstrap_seed": seed,
                 "energy_tolerance_hartree": energy_tolerance, "lifetime_delay": lifetime_delay,
                 "lifetime_asymptote": lifetime_asymptote, "lifetime_resamples": lifetime_resamples}
-    return AnalysisResults(tset, pops, init, life, obs, entries, branching, energy, flags, vib, spectrum, settings)
+    scat = None
+    if scattering is not None:
+        from mapdyn.analysis.scattering import scattering_channels
+
+        region, side = scattering
+        scat = scattering_channels(tset, region, side, confidence_level)
+    return AnalysisResults(tset, pops, init, life, obs, entries, branching, energy, flags, vib, spectrum, settings,
+                           scat)
 
 

@@ -38,6 +38,8 @@ class TrajectorySet:
     reasons : per trajectory a short text why it is flagged/failed ("" if nothing to say).
     indices : (n,) trajectory indices within the study.
     metadata : free-form description of the inputs (study name, method, dt, seed, …).
+    warnings : warning records raised while the trajectories ran (dicts with index, category,
+        message, first_step, last_step, count; see :mod:`mapdyn.study.diagnostics`).
     """
 
     times: np.ndarray
@@ -55,6 +57,7 @@ class TrajectorySet:
     reasons: tuple[str, ...] | None = None
     indices: np.ndarray | None = None
     metadata: dict = dataclasses.field(default_factory=dict)
+    warnings: list = dataclasses.field(default_factory=list)
 
     def __post_init__(self):
         self.times = np.asarray(self.times, dtype=float)

@@ -6,7 +6,7 @@ import dataclasses
 import difflib
 import math
 
-__all__ = ["MethodOptions", "SQUARE_GAMMA", "TRIANGLE_GAMMA", "METHODS", "WINDOWS", "ZERO_POINTS"]
+__all__ = ["MethodOptions", "SQUARE_GAMMA", "TRIANGLE_GAMMA", "METHODS", "WINDOWS", "ZERO_POINTS", "DEFAULT_WINDOW"]
 
 #: Square-window half-width γ = (√3 − 1)/2 (Cotton & Miller, J. Phys. Chem. A 117, 7190 (2013)).
 SQUARE_GAMMA = (math.sqrt(3.0) - 1.0) / 2.0
@@ -15,6 +15,9 @@ TRIANGLE_GAMMA = 1.0 / 3.0
 
 METHODS = ("sqc", "ehrenfest")
 WINDOWS = ("square", "triangle")
+#: The window used when none is given — by studies, ``mapdyn validate`` and :class:`MethodOptions`
+#: alike: the triangle window, the better validated of the two (Cotton & Miller 2016; docs/theory.md).
+DEFAULT_WINDOW = "triangle"
 ZERO_POINTS = ("symmetrized", "adjusted", "fixed")
 
 
@@ -29,14 +32,15 @@ class MethodOptions:
     """How the electronic oscillators are sampled, propagated and read out.
 
     method : "sqc" (windowed mapping) or "ehrenfest" (mean field, actions (1, 0, …), γ = 0).
-    window : "square" (γ = (√3−1)/2) or "triangle" (γ = 1/3); decides sampling and binning (sqc only).
+    window : "square" (γ = (√3−1)/2) or "triangle" (γ = 1/3, the default :data:`DEFAULT_WINDOW`);
+        decides sampling and binning (sqc only).
     zero_point : "symmetrized" (trace-subtracted Hamiltonian, Σ ρ̃_kk = 1; default), "adjusted"
         (trajectory-adjusted γ_k = e_k(0) − N_k) or "fixed" (plain MMST with one γ; models only).
     gamma : override of the square-window half-width (dimensionless, 0 < γ < 1/2); None = standard.
     """
 
     method: str = "sqc"
-    window: str = "square"
+    window: str = DEFAULT_WINDOW
     zero_point: str = "symmetrized"
     gamma: float | None = None
 
@@ -67,3 +71,12 @@ class MethodOptions:
         if self.method == "ehrenfest":
             return "ehrenfest"
         return f"sqc/{self.window}/{self.zero_point}"
+
+    def long_name(self) -> str:
+        """The method in words, e.g. "symmetrical quasi-classical (SQC) mapping dynamics with triangle
+        windows (γ = 1/3), symmetrized zero-point treatment"."""
+        if self.method == "ehrenfest":
+            return "Ehrenfest (mean-field) mapping dynamics"
+        g = "1/3" if self.window == "triangle" else f"{self.window_gamma:.4f}"
+        return (f"symmetrical quasi-classical (SQC) Meyer–Miller–Stock–Thoss mapping dynamics with {self.window} "
+                f"windows (γ = {g}), {self.zero_point} zero-point treatment")

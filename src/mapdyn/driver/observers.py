@@ -22,7 +22,7 @@ from mapdyn.driver.state import DriverState
 from mapdyn.files import atomic_open
 from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
 
-__all__ = ["FrameRecorder", "DriftMonitor", "frame_atoms", "electronic_discontinuity", "DISCONTINUITY_OVERLAP",
+__all__ = ["FrameRecorder", "DriftMonitor", "frame_atoms", "backend_frame_diagnostics", "electronic_discontinuity", "DISCONTINUITY_OVERLAP",
            "write_frames_extxyz"]
 
 def state_populations(e: np.ndarray, options: MethodOptions) -> tuple[np.ndarray, int]:
@@ -33,6 +33,31 @@ def state_populations(e: np.ndarray, options: MethodOptions) -> tuple[np.ndarray
     if options.method == "ehrenfest":
         return w / w.sum(), -1
     return w, int(window_assignment(e[None], options)[0])
+
+
+def backend_frame_diagnostics(diagnostics: dict) -> dict:
+    """Per-frame backend health numbers (NaN where the backend does not report one):
+    ``active_space_change`` 1/0 (CASSCF active orbitals rotated out of the previous space),
+    ``active_overlap_min_singular`` (smallest singular value of the active-orbital overlap),
+    ``overlap_retries`` (extra CASSCF solutions tried because the state overlap was low),
+    ``response_residual`` (largest TDDFT Z-vector residual), ``response_converged`` 1/0 (CASSCF
+    gradient and coupling response equations)."""
+    d = diagnostics or {}
+    nan = float("nan")
+
+    def flag(v):
+        return nan if v is None else float(bool(v))
+
+    retry = d.get("overlap_retry")
+    res = d.get("cphf_residuals")
+    conv = None
+    if "gradients_converged" in d or "couplings_converged" in d:
+        conv = bool(d.get("gradients_converged", True)) and bool(d.get("couplings_converged", True))
+    return {"active_space_change": flag(d.get("active_space_change")),
+            "active_overlap_min_singular": float(d.get("active_overlap_min_singular", nan)),
+            "overlap_retries": float(max(len(retry.get("candidates", [])) - 1, 0)) if isinstance(retry, dict) else 0.0,
+            "response_residual": float(np.nanmax(res)) if res is not None and len(res) else nan,
+            "response_converged": flag(conv)}
 
 
 @dataclasses.dataclass
@@ -74,6 +99,7 @@ class FrameRecorder:
             "sigma": None if sigma is None else np.array(sigma),
             "min_overlap": r.diagnostics.get("min_overlap"), "swap": bool(r.diagnostics.get("swap", False)),
             "permutation": r.diagnostics.get("permutation"),
+            **backend_frame_diagnostics(r.diagnostics),
         })
 
 

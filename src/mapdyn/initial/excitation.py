@@ -88,13 +88,16 @@ class ExcitationProperties:
         return self.excitation_energies_hartree * units.Hartree
 
 
-def excitation_properties(backend: Any, positions_bohr: np.ndarray, guess: Any = None) -> ExcitationProperties:
+def excitation_properties(backend: Any, positions_bohr: np.ndarray, guess: Any = None,
+                          progress: bool = False) -> ExcitationProperties:
     """Run ``backend.compute(x, guess, need_gradients=False)`` at every geometry x (n, N, 3), Bohr.
 
     Each geometry starts from the same ``guess`` (e.g. the reference geometry's) so the result
     does not depend on sample order.  Needs ``transition_dipoles`` from the backend.
+    ``progress``: a progress bar on a terminal (:func:`mapdyn.progress.iterate`).
     """
     from mapdyn.backends.contract import BackendError
+    from mapdyn.progress import iterate
 
     x = np.asarray(positions_bohr, dtype=float)
     if x.ndim != 3 or x.shape[2] != 3:
@@ -102,7 +105,7 @@ def excitation_properties(backend: Any, positions_bohr: np.ndarray, guess: Any =
     if int(backend.nstates) < 2:
         raise ValueError("backend.nstates must be >= 2 (ground plus at least one excited state)")
     ee, ff, mm = [], [], []
-    for i, xi in enumerate(x):
+    for i, xi in enumerate(iterate(x, "excitation energies of the sampled geometries", total=len(x), enabled=progress)):
         res = backend.compute(xi, guess=guess, need_gradients=False)
         if not res.converged:
             raise BackendError(f"electronic structure did not converge at sample {i}")

@@ -13,7 +13,9 @@ from mapdyn.analysis.trajectories import TrajectorySet
 from mapdyn.study.analysis_settings import settings_from_table
 from mapdyn.study.backend_factory import make_model
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
+from mapdyn.study.diagnostics import study_warnings
 from mapdyn.study.folder import INITIAL_CONDITIONS, REPORT, Study, StudyError
+from mapdyn.units import AU_TIME_IN_FS
 
 
 # ----------------------------------------------------------------------------------------------
@@ -51,6 +53,24 @@ def study_spectrum(folder: str, fwhm_ev: float = 0.15) -> Any:
     return absorption_spectrum(arrays["excitation_energies_hartree"], arrays["oscillator_strengths"], fwhm_ev=fwhm_ev)
 
 
+def scattering_setup(cfg) -> tuple | None:
+    """((a, b), transmitted side) for a 1D model study whose packet starts outside the model's
+    interaction region (a scattering experiment); None otherwise."""
+    from mapdyn.models.regions import default_interaction_region
+
+    model = make_model(cfg)
+    if model.ndof != 1:
+        return None
+    try:
+        a, b = default_interaction_region(model)
+    except ValueError:
+        return None
+    x0, k0 = float(cfg.initial.position_bohr[0]), float(cfg.initial.momentum_au[0])
+    if a < x0 < b or k0 == 0:
+        return None
+    return (a, b), (1 if k0 > 0 else 0)
+
+
 def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     """Load a study folder (or :class:`mapdyn.study.folder.Study`), read its ``[analysis]`` table, add the
     spectrum when present and run :func:`analyze`; ``overrides`` replace keyword arguments.
@@ -83,6 +103,8 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
     spec = study_spectrum(study.folder)
     if spec is not None:
         kw["spectrum"] = spec
+    if cfg.is_model and "scattering" not in overrides:
+        kw["scattering"] = scattering_setup(cfg)
     drift = getattr(getattr(cfg, "dynamics", None), "drift_threshold_hartree", None)
     if "energy_tolerance" not in kw and drift:
         kw["energy_tolerance"] = float(drift)      # the study's own drift threshold flags trajectories
@@ -110,7 +132,8 @@ def load_trajectory_set(study: Study):
     T = grid_steps.size
     status_map = {e.index: e for e in study.status().entries}
     F = cfg.electronic.states
-    meta = {"study": study.name, "method": cfg.options.describe(), "time_step_au": dt,
+    meta = {"study": study.name, "method": cfg.options.describe(),
+            "time step": f"{dt:.4g} au ({dt * AU_TIME_IN_FS:.4g} fs)",
             "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
     if study.batched:
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
@@ -144,7 +167,7 @@ def load_trajectory_set(study: Study):
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
                              coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
-                             metadata={**meta, "initial_basis": cfg.initial.basis})
+                             metadata={**meta, "initial_basis": cfg.initial.basis}, warnings=study_warnings(study))
     rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
     symbols = None
     masses = None
@@ -195,13 +218,18 @@ def load_trajectory_set(study: Study):
         kw = dict(positions=np.array(rows_R), momenta=np.array(rows_P), symbols=symbols, masses=masses)
     return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.options,
                          initial_states=np.array(init_states), energies=np.array(rows_e), status=tuple(stat),
-                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, **kw)
+                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, warnings=study_warnings(study), **kw)
 
 
 def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None) -> str | None:
     """Analyse the study and write ``report/``; returns the report folder."""
+    import warnings
+
     from mapdyn.analysis import report
 
-    results = analyze_study(study)
-    out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
+    with warnings.catch_warnings():
+        # empty/NaN time slices (no trajectory in a window yet) give NaN entries, which the report shows
+        warnings.filterwarnings("ignore", category=RuntimeWarning, message=".*(slice|Degrees of freedom|invalid value).*")
+        results = analyze_study(study)
+        out = report.write_report(results, study.path(REPORT), title=f"mapdyn study {study.name}")
     return out.folder

@@ -11,7 +11,7 @@ File rules
   ``meta``) with its own digest.  :func:`read_h5` verifies all of them; any mismatch, truncation
   or unreadable file raises :class:`CheckpointError` naming the file.
 
-Trajectory folder (``trajectories/traj_000042/``)
+Trajectory folder (``trajectories/000042/``)
 -------------------------------------------------
 * ``state.h5`` — the complete :class:`mapdyn.driver.dynamics.DriverState` as pickle bytes (numpy arrays
   pickle bit-for-bit; the backend ``guess`` travels inside it), plus readable copies of step,
@@ -68,6 +68,20 @@ def _array_bytes(arr: np.ndarray) -> bytes:
     return np.ascontiguousarray(arr).tobytes()
 
 
+#: Unit of each dataset mapdyn writes (the ``units`` attribute); names not listed are dimensionless
+#: indices, flags or bytes.
+DATASET_UNITS = {
+    "time_au": "a.u. of time (hbar/Eh)", "times": "a.u. of time (hbar/Eh)", "final_time": "a.u. of time (hbar/Eh)",
+    "positions_bohr": "bohr", "reference_positions_bohr": "bohr", "R": "bohr", "final_R": "bohr",
+    "momenta_au": "a.u. (m_e bohr / a.u. time)", "P": "a.u. (m_e bohr / a.u. time)", "final_P": "a.u. (m_e bohr / a.u. time)",
+    "energies_Eh": "Eh", "total_energy_Eh": "Eh", "kinetic_energy_Eh": "Eh", "potential_energy_Eh": "Eh",
+    "drift_Eh": "Eh", "energy": "Eh", "reference_energies_hartree": "Eh", "excitation_energies_hartree": "Eh",
+    "actions": "1", "actions_adiabatic": "1", "actions_diabatic": "1", "populations": "1",
+    "coupling_norms": "1/bohr", "sigma": "1/(a.u. of time)", "min_overlap": "1",
+    "hessian": "Eh/bohr^2", "frequencies_cm": "cm-1", "oscillator_strengths": "1",
+}
+
+
 def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[str, Any] | None = None,
              sync_directory: bool = True) -> str:
     """Write ``arrays`` (name → ndarray or bytes) and JSON ``meta`` atomically to ``path``.
@@ -97,6 +111,8 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
                     ds = h5.create_dataset(name, data=arr)
                 ds.attrs["sha256"] = _digest(_array_bytes(arr))
                 ds.attrs["kind"] = kind
+                if name in DATASET_UNITS:
+                    ds.attrs["units"] = DATASET_UNITS[name]
             h5.flush()
 
     return atomic_write(path, write, sync_directory)
@@ -149,6 +165,8 @@ def file_digest(path: str | os.PathLike) -> str:
 # ----------------------------------------------------------------------------------------------
 _FRAME_SCALARS = {"step": np.int64, "time_au": float, "window": np.int64, "kinetic_energy_Eh": float,
                   "potential_energy_Eh": float, "total_energy_Eh": float, "drift_Eh": float, "swap": bool}
+_FRAME_DIAGNOSTICS = ("active_space_change", "active_overlap_min_singular", "overlap_retries", "response_residual",
+                      "response_converged")
 _FRAME_ARRAYS = ("positions_bohr", "momenta_au", "energies_Eh", "actions", "populations",
                  "coupling_norms", "sigma", "permutation")
 
@@ -164,6 +182,8 @@ def frames_to_arrays(frames: Sequence[Mapping[str, Any]]) -> dict[str, np.ndarra
     for k, dtype in _FRAME_SCALARS.items():
         out[k] = np.array([f[k] for f in frames], dtype=dtype)
     out["min_overlap"] = np.array([np.nan if f.get("min_overlap") is None else f["min_overlap"] for f in frames], dtype=float)
+    for k in _FRAME_DIAGNOSTICS:  # backend health per frame (NaN: not reported)
+        out[k] = np.array([np.nan if f.get(k) is None else f[k] for f in frames], dtype=float)
     for k in _FRAME_ARRAYS:
         vals = [f.get(k) for f in frames]
         if all(v is None for v in vals):

@@ -10,9 +10,12 @@ what is allowed, e.g.::
 The command line turns it into exit code 2.
 
 Units.  Durations are strings with a unit: ``"0.5 fs"``, ``"500 as"``, ``"0.1 ps"``, ``"20 au"``
-(atomic units of time, ħ/Eh ≈ 0.02419 fs); energies likewise ``"1e-3 Eh"`` or ``"0.03 eV"``.
+(atomic units of time, ħ/Eh ≈ 0.02419 fs); energies likewise ``"1e-3 Eh"``, ``"0.03 eV"``,
+``"3 meV"``, ``"0.5 kcal/mol"``, ``"2 kJ/mol"``, ``"20 cm-1"``.
 Inline atom positions are in Å (``molecule.units = "bohr"`` switches to Bohr).  Model initial
-conditions carry their unit in the key name (``position_bohr``, ``momentum_au``, ``width_bohr``).
+conditions are strings with units too (``position = "-8 bohr"``, ``momentum = "15 au"``,
+``width = "1 bohr"``, ``temperature = "300 K"``); the older unit-in-name keys (``position_bohr``,
+``momentum_au``, ``width_bohr``, ``temperature_kelvin``) are still read, with a FutureWarning.
 Internally (the dataclass fields) everything is Hartree atomic units; conversions use
 :mod:`ase.units`.
 
@@ -27,8 +30,8 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
                  tddft:    basis, functional, response, grid_level, gradient_residual_limit
                  model:    model, parameters, engine
                  callback: function
-    [initial]    molecules: optimize, normal_modes_from, temperature_kelvin, excitation, state
-                 models:    position_bohr, momentum_au, width_bohr, state, basis
+    [initial]    molecules: optimize, normal_modes_from, temperature, excitation, state
+                 models:    position, momentum, width, state, basis
     [method]     method, window, zero_point, gamma                 (:class:`MethodOptions`)
     [dynamics]   time_step, duration, checkpoint_every, record_every, drift_threshold,
                  stop_on_drift, substeps, propagation
@@ -47,12 +50,21 @@ import math
 import os
 import re
 import tomllib
+import warnings
 from typing import Any, Mapping
 
 import numpy as np
 
-from mapdyn.core.options import METHODS, WINDOWS, ZERO_POINTS, MethodOptions
-from mapdyn.study.input_values import ConfigError, Section, did_you_mean, parse_duration, parse_energy, show_value
+from mapdyn.core.options import DEFAULT_WINDOW, METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+from mapdyn.study.input_values import (
+    ConfigError,
+    Section,
+    did_you_mean,
+    parse_duration,
+    parse_energy,
+    parse_quantity,
+    show_value,
+)
 from mapdyn.units import BOHR_IN_ANGSTROM
 
 __all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "InitialConfig",
@@ -222,8 +234,13 @@ _ELEC_BY_BACKEND = {
     "model": ("model", "parameters", "engine"),
     "callback": ("function",),
 }
-_INITIAL_MOLECULE = ("optimize", "normal_modes_from", "temperature_kelvin", "excitation", "state")
-_INITIAL_MODEL = ("position_bohr", "momentum_au", "width_bohr", "state", "basis")
+_INITIAL_MOLECULE = ("optimize", "normal_modes_from", "temperature", "temperature_kelvin", "excitation", "state")
+_INITIAL_MODEL = ("position", "momentum", "width", "position_bohr", "momentum_au", "width_bohr", "state", "basis")
+#: Old keys with the unit in the name → (new key, unit to write): still read, with a FutureWarning.
+DEPRECATED_KEYS = {"initial.temperature_kelvin": ("initial.temperature", "K"),
+                   "initial.position_bohr": ("initial.position", "bohr"),
+                   "initial.momentum_au": ("initial.momentum", "au"),
+                   "initial.width_bohr": ("initial.width", "bohr")}
 _METHOD_KEYS = ("method", "window", "zero_point", "gamma")
 _DYNAMICS_KEYS = ("time_step", "duration", "checkpoint_every", "record_every", "drift_threshold",
                   "stop_on_drift", "substeps", "propagation")
@@ -467,16 +484,46 @@ def _vector(sec: Section, k: str, ndof: int, default=None, positive: bool = Fals
     return tuple(float(x) for x in (vals * ndof if len(vals) == 1 else vals))
 
 
-def _parse_initial(sec: Section, elec: ElectronicConfig) -> InitialConfig:
+def _quantities(sec: Section, new: str, old: str, kind: str, ndof: int, deprecated: list, *,
+                positive: bool = False, default=None, what: str) -> tuple:
+    """``new`` = "<number> <unit>" (or a list of them) in atomic units, or the deprecated
+    unit-in-name key ``old`` (plain numbers, recorded in ``deprecated``)."""
+    if sec.has(new) and sec.has(old):
+        raise ConfigError(sec.key(old), f"is given together with {sec.key(new)}; keep only {sec.key(new)}")
+    if sec.has(old):
+        deprecated.append(sec.key(old))
+        return _vector(sec, old, ndof, default, positive=positive, what=what)
+    v = sec.raw(new, default)
+    if v is None:
+        raise ConfigError(sec.key(new), f"is missing; give {what} with a unit, e.g. {_EXAMPLES[kind]}")
+    if isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0 and kind == "temperature":
+        return (0.0,)
+    vals = v if isinstance(v, list) else [v]
+    if len(vals) not in (1, ndof):
+        raise ConfigError(sec.key(new), f"= {show_value(v)}: give one value or a list of {ndof}")
+    out = tuple(parse_quantity(x, sec.key(new), kind) for x in vals)
+    if positive and any(x <= 0 for x in out):
+        raise ConfigError(sec.key(new), f"= {show_value(v)}: must be positive")
+    return out * ndof if len(out) == 1 else out
+
+
+_EXAMPLES = {"length": '"-8 bohr"', "momentum": '"15 au"', "temperature": '"300 K"'}
+
+
+def _parse_initial(sec: Section, elec: ElectronicConfig, deprecated: list | None = None) -> InitialConfig:
     F = elec.states
+    deprecated = [] if deprecated is None else deprecated
     if elec.backend == "model":
         state = sec.integer("state", 0, minimum=0, what=f"an electronic state index 0..{F - 1}")
         if state >= F:
             raise ConfigError("initial.state", f"= {state}: only states 0..{F - 1} are computed (electronic.states = {F})")
         return InitialConfig(state=state,
-                             position_bohr=_vector(sec, "position_bohr", 1, what="the wavepacket centre in Bohr"),
-                             momentum_au=_vector(sec, "momentum_au", 1, what="the mean momentum in a.u."),
-                             width_bohr=_vector(sec, "width_bohr", 1, positive=True, what="the position width σ_R in Bohr"),
+                             position_bohr=_quantities(sec, "position", "position_bohr", "length", 1, deprecated,
+                                                       what="the wavepacket centre"),
+                             momentum_au=_quantities(sec, "momentum", "momentum_au", "momentum", 1, deprecated,
+                                                     what="the mean momentum"),
+                             width_bohr=_quantities(sec, "width", "width_bohr", "length", 1, deprecated, positive=True,
+                                                    what="the position width σ_R"),
                              basis=sec.choice("basis", ("adiabatic", "diabatic"), "adiabatic"))
     excitation = sec.choice("excitation", ("fixed", "brightest"), "fixed")
     if excitation == "fixed":
@@ -491,16 +538,25 @@ def _parse_initial(sec: Section, elec: ElectronicConfig) -> InitialConfig:
     modes = sec.choice("normal_modes_from", ("scf", "dynamics"), default_modes)
     if elec.backend == "callback" and modes == "scf":
         raise ConfigError("initial.normal_modes_from", "= \"scf\" needs a PySCF backend; with a callback use \"dynamics\"")
-    temp = sec.number("temperature_kelvin", 0.0, what="a temperature in K (>= 0)")
-    if temp < 0:
-        raise ConfigError("initial.temperature_kelvin", f"= {temp}: must be >= 0 K")
+    if sec.has("temperature_kelvin"):
+        if sec.has("temperature"):
+            raise ConfigError("initial.temperature_kelvin",
+                              "is given together with initial.temperature; keep only initial.temperature")
+        deprecated.append("initial.temperature_kelvin")
+        temp = sec.number("temperature_kelvin", 0.0, what="a temperature in K (>= 0)")
+        if temp < 0:
+            raise ConfigError("initial.temperature_kelvin", f"= {temp}: must be >= 0 K")
+    else:
+        temp = parse_quantity(sec.raw("temperature", "0 K"), "initial.temperature", "temperature")
+        if temp < 0:
+            raise ConfigError("initial.temperature", f"= {show_value(sec.raw('temperature'))}: must be >= 0 K")
     return InitialConfig(state=state, optimize=sec.boolean("optimize", True), normal_modes_from=modes,
                          temperature_kelvin=temp, excitation=excitation)
 
 
 def _parse_method(sec: Section, elec: ElectronicConfig) -> MethodOptions:
     method = sec.choice("method", METHODS, "sqc")
-    window = sec.choice("window", WINDOWS, "square")
+    window = sec.choice("window", WINDOWS, DEFAULT_WINDOW)
     zero = sec.choice("zero_point", ZERO_POINTS, "symmetrized")
     gamma = sec.number("gamma", None, what="a window half-width strictly between 0 and 1/2")
     if zero == "fixed" and method == "sqc" and not (elec.backend == "model" and elec.engine == "batched"):
@@ -595,6 +651,15 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     """Validate a parsed TOML mapping; relative geometry/callback files are relative to ``base_dir``,
     a relative ``study.folder`` to the current directory.  ``check_extras=False`` skips checking
     the [analysis] and [cluster] tables (done once when the study was created)."""
+    if not source_text and isinstance(data, Mapping):
+        # a mapping given directly (notebooks): store its TOML text so the study folder can be
+        # reopened from study.toml like any file-based study
+        from mapdyn.study.toml_text import dumps
+
+        try:
+            source_text = dumps(data)
+        except ValueError as err:
+            raise ConfigError("study input", str(err).splitlines()[0]) from None
     for k in data:
         if k not in SECTIONS:
             raise ConfigError(k, f" is not a known section{did_you_mean(k, SECTIONS)}; allowed: {', '.join(SECTIONS)}")
@@ -622,7 +687,14 @@ def parse_study(data: Mapping[str, Any], *, base_dir: str = ".", source_path: st
     else:
         init_sec = Section("initial", data.get("initial", {}), _INITIAL_MOLECULE,
                             {k: "for molecules (it is a model-study key)" for k in _INITIAL_MODEL if k not in _INITIAL_MOLECULE})
-    initial = _parse_initial(init_sec, elec)
+    deprecated: list = []
+    initial = _parse_initial(init_sec, elec, deprecated)
+    if check_extras:  # once, when the input is read from the user (not when a study folder reopens it)
+        for key in deprecated:
+            new, unit = DEPRECATED_KEYS[key]
+            msg = (f"{key} is deprecated: write {new} = \"<number> {unit}\" (units are read from the string; "
+                   "energies also take eV, meV, kcal/mol, kJ/mol, cm-1, lengths Å)")
+            warnings.warn(msg, FutureWarning, stacklevel=3)
     method = _parse_method(Section("method", data.get("method", {}), _METHOD_KEYS), elec)
     dynamics = _parse_dynamics(Section("dynamics", data["dynamics"], _DYNAMICS_KEYS), elec)
     ensemble = _parse_ensemble(Section("ensemble", data["ensemble"], _ENSEMBLE_KEYS))

@@ -7,8 +7,10 @@ Layout::
       study.toml              the input file, verbatim (its sha256 is in the manifest)
       manifest.json           what the study is now: trajectories, duration, task layout, history
       initial_conditions.h5   molecules: reference geometry, Hessian, modes, sampled rows
-      trajectories/traj_000042/   per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`)
-          state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json
+      trajectories/000042/    per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`); folders
+                              named traj_000042/ by older versions are still read
+          state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json, warnings.json
+      mapdyn.log              study log of command-line runs
       chunks/chunk_0003_seg00.h5  batched model studies: one file per chunk of trajectories
                               (and per time segment after an ``extend`` to a later end time)
       report/                 figures, CSV, summary (written by the analysis)
@@ -36,6 +38,7 @@ from mapdyn.study.checkpoint import (
     read_h5,
 )
 from mapdyn.study.config import ConfigError, StudyConfig, load_study_config
+from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings
 
 __all__ = ["Study", "StudyError", "TrajectoryStatus", "StudyStatus",
            "write_json", "read_json", "STUDY_TOML", "MANIFEST",
@@ -109,6 +112,7 @@ class TrajectoryStatus:
     drift: dict | None = None
     trajectories: tuple = ()
     problems: tuple = ()
+    warnings: int = 0
 
 
 @dataclasses.dataclass
@@ -127,6 +131,11 @@ class StudyStatus:
         return out
 
     @property
+    def warning_count(self) -> int:
+        """Distinct warnings recorded by the workers (see :mod:`mapdyn.study.diagnostics`)."""
+        return int(sum(e.warnings for e in self.entries))
+
+    @property
     def total_steps(self) -> int:
         return int(sum(e.target * len(e.trajectories) for e in self.entries))
 
@@ -143,7 +152,8 @@ class StudyStatus:
         n = sum(c.values())
         lines = [f"study {self.name} ({self.folder})",
                  f"trajectories: {n}  finished {c['finished']}  running {c['running']}  failed {c['failed']}  "
-                 f"pending {c['pending']}   steps {self.done_steps}/{self.total_steps}"]
+                 f"pending {c['pending']}   steps {self.done_steps}/{self.total_steps}   "
+                 f"warnings {self.warning_count}"]
         drift = [e for e in self.entries if e.drift]
         if details:
             for e in self.entries:
@@ -156,6 +166,11 @@ class StudyStatus:
                 d = e.drift
                 lines.append(f"  drift   {e.kind} {e.index}: |ΔE| = {abs(d.get('drift_Eh', float('nan'))):.3g} Eh > "
                              f"{d.get('threshold_Eh', float('nan')):.3g} Eh at step {d.get('step')}")
+            warned = [e for e in self.entries if e.warnings]
+            for e in warned[:10]:
+                lines.append(f"  warning {e.kind} {e.index}: {e.warnings} distinct warning(s), see warnings.json")
+            if len(warned) > 10:
+                lines.append(f"  warning … and {len(warned) - 10} more tasks with warnings (listed in report/summary.md)")
             for e in self.entries:
                 for p in e.problems:
                     lines.append(f"  damaged {e.kind} {e.index}: {p}")
@@ -164,7 +179,7 @@ class StudyStatus:
         return "\n".join(lines)
 
     def as_dict(self) -> dict:
-        return {"name": self.name, "folder": self.folder, "counts": self.counts(),
+        return {"name": self.name, "folder": self.folder, "counts": self.counts(), "warnings": self.warning_count,
                 "steps": [self.done_steps, self.total_steps],
                 "tasks": [dataclasses.asdict(e) for e in self.entries]}
 
@@ -248,7 +263,9 @@ class Study:
         return os.path.join(self.folder, *parts)
 
     def trajectory_folder(self, index: int) -> str:
-        return self.path(TRAJECTORIES, f"traj_{index:06d}")
+        new = self.path(TRAJECTORIES, f"{index:06d}")
+        old = self.path(TRAJECTORIES, f"traj_{index:06d}")  # older layout: still read and continued
+        return old if not os.path.isdir(new) and os.path.isdir(old) else new
 
     def chunk_segment_path(self, chunk: int, segment: int) -> str:
         return self.path(CHUNKS, f"chunk_{chunk:04d}_seg{segment:02d}.h5")
@@ -339,8 +356,9 @@ class Study:
                     status = "running"
                 elif os.path.exists(failure):
                     status, reason = "failed", read_json(failure).get("reason", "")
+                nwarn = len(read_warnings(self.path(CHUNKS, f"chunk_{c:04d}.warnings.json")))
                 entries.append(TrajectoryStatus("chunk", c, status, int(step), target, reason, None,
-                                                tuple(range(first, first + count))))
+                                                tuple(range(first, first + count)), (), nwarn))
             return StudyStatus(self.name, self.folder, entries)
         for i in range(self.ntraj):
             folder = self.trajectory_folder(i)
@@ -368,7 +386,8 @@ class Study:
                     status, reason = "failed", read_json(failure).get("reason", "")
                 except (OSError, ValueError):
                     status, reason = "failed", "failure record unreadable"
-            entries.append(TrajectoryStatus("trajectory", i, status, step, target, reason, drift, (i,), problems))
+            nwarn = len(read_warnings(os.path.join(folder, WARNINGS_FILE)))
+            entries.append(TrajectoryStatus("trajectory", i, status, step, target, reason, drift, (i,), problems, nwarn))
         return StudyStatus(self.name, self.folder, entries)
 
 

@@ -46,7 +46,7 @@ def _choose_states(config: StudyConfig, backend, positions, guess) -> tuple[np.n
         return np.full(n, int(init.state)), {}
     from mapdyn.initial.excitation import choose_initial_states, excitation_properties
 
-    props = excitation_properties(backend, positions, guess=guess)
+    props = excitation_properties(backend, positions, guess=guess, progress=True)
     choice = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths, "brightest")
     states = np.zeros(n, dtype=int)
     states[choice.sample_index] = choice.state

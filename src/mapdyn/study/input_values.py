@@ -8,10 +8,15 @@ import math
 import re
 from typing import Any, Mapping
 
-from mapdyn.units import AU_TIME_IN_ASE, FS_IN_ASE, HARTREE_IN_EV
-
-_TIME_UNITS_FS = {"fs": 1.0, "as": 1e-3, "ps": 1e3}
-_ENERGY_UNITS = ("eh", "hartree", "ev")
+from mapdyn.units import (
+    AU_TIME_IN_FS,
+    BOHR_IN_ANGSTROM,
+    ENERGY_UNITS_IN_EV,
+    HARTREE_IN_EV,
+    LENGTH_UNITS_IN_ANGSTROM,
+    TIME_UNITS_IN_FS,
+    UNIT_ALIASES,
+)
 
 
 class ConfigError(ValueError):
@@ -55,32 +60,64 @@ def number_with_unit(text: Any, key: str, what: str, example: str, unit_pattern:
         raise ConfigError(key, f"= {show_value(text)}: {m.group(1)!r} is not a number") from None
 
 
+_NUMBER_AND_UNIT = re.compile(r"\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S.*?)?\s*")
+_KINDS = {
+    "energy": (ENERGY_UNITS_IN_EV, "Eh, eV, meV, kcal/mol, kJ/mol, cm-1", '"0.03 eV" or "5 kcal/mol"'),
+    "time": (TIME_UNITS_IN_FS, "au, as, fs, ps", '"0.5 fs" or "20 au"'),
+    "length": (LENGTH_UNITS_IN_ANGSTROM, "bohr, Å (or angstrom), nm", '"-8 bohr" or "1.2 Å"'),
+    "temperature": ({"K": 1.0}, "K", '"300 K"'),
+    "momentum": ({"au": 1.0}, "au (m_e bohr / a.u. time)", '"15 au"'),
+}
+
+
+def parse_quantity(text: Any, key: str, kind: str) -> float:
+    """A number with a unit → Hartree atomic units (Eh, a.u. of time, bohr) or K.
+
+    ``kind`` energy: Eh, eV, meV, kcal/mol, kJ/mol, cm-1; time: au, as, fs, ps; length: bohr, Å,
+    nm; temperature: K; momentum: au.  Factors from :mod:`ase.units` (via :mod:`mapdyn.units`).  One-line
+    :class:`ConfigError` naming ``key`` for a missing or unknown unit.
+    """
+    table, allowed, example = _KINDS[kind]
+    noun = {"time": "a duration", "energy": "an energy"}.get(kind, f"a {kind}")
+    if isinstance(text, bool) or not isinstance(text, str):
+        raise ConfigError(key, f"= {show_value(text)}: give {noun} with a unit as a string, e.g. {example} ({allowed})")
+    m = _NUMBER_AND_UNIT.fullmatch(text)
+    if not m or m.group(2) is None:
+        raise ConfigError(key, f"= {show_value(text)}: cannot read {noun}; write a number and a unit, e.g. {example}")
+    value, written = float(m.group(1)), m.group(2)
+    unit = UNIT_ALIASES.get(written.lower().replace(" ", ""))
+    if unit not in table:
+        raise ConfigError(key, f"= {show_value(text)}: unknown {kind} unit {written!r}; use {allowed}"
+                          f"{did_you_mean(written, list(table))}")
+    size = table[unit]
+    if kind == "energy":
+        return value * size / HARTREE_IN_EV
+    if kind == "time":
+        return value * size / AU_TIME_IN_FS
+    if kind == "length":
+        return value * size / BOHR_IN_ANGSTROM
+    return value * size
+
+
 def parse_duration(text: Any, key: str = "duration") -> float:
-    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time."""
-    value, written = number_with_unit(text, key, "a duration", '"0.5 fs" or "20 au" (fs, as, ps, au)', r"[A-Za-z.]+")
-    unit = written.lower().replace(".", "")
-    if unit in _TIME_UNITS_FS:
-        au = value * _TIME_UNITS_FS[unit] * FS_IN_ASE / AU_TIME_IN_ASE if math.isfinite(value) else value
-    elif unit in ("au", "aut"):
-        au = value
-    else:
-        raise ConfigError(key, f"= {show_value(text)}: unknown time unit {written!r}; use fs, as, ps or au"
-                                f"{did_you_mean(unit, ['fs', 'as', 'ps', 'au'])}")
+    """A duration string ("0.5 fs", "500 as", "0.1 ps", "20 au") → atomic units of time (> 0)."""
+    au = parse_quantity(text, key, "time")
     if not math.isfinite(au) or au <= 0:
         raise ConfigError(key, f"= {show_value(text)}: must be a positive duration, e.g. \"0.5 fs\"")
     return float(au)
 
 
 def parse_energy(text: Any, key: str) -> float:
-    """An energy string ("1e-3 Eh", "0.03 eV") → Eh (positive)."""
-    value, written = number_with_unit(text, key, "an energy", '"1e-3 Eh" or "0.03 eV" (Eh, eV)', r"[A-Za-z]+")
-    unit = written.lower()
-    if unit not in _ENERGY_UNITS:
-        raise ConfigError(key, f"= {show_value(text)}: unknown energy unit {written!r}; use Eh or eV")
-    eh = value / HARTREE_IN_EV if unit == "ev" else value
+    """A positive energy string ("1e-3 Eh", "3 meV", "0.5 kcal/mol", "20 cm-1", …) → Eh."""
+    eh = parse_quantity(text, key, "energy")
     if not math.isfinite(eh) or eh <= 0:
         raise ConfigError(key, f"= {show_value(text)}: must be a positive energy, e.g. \"1e-3 Eh\"")
     return float(eh)
+
+
+def format_quantity(value: float, unit: str, digits: int = 4) -> str:
+    """A value rounded to ``digits`` significant digits with its unit ("20.67 au")."""
+    return f"{float(value):.{digits}g} {unit}"
 
 
 class Section:

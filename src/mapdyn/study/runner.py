@@ -25,8 +25,10 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import dataclasses
+import logging
 import multiprocessing
 import os
+import re
 import signal
 import time
 import traceback
@@ -37,6 +39,7 @@ import numpy as np
 from mapdyn.files import write_json
 from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
+from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings, record_warnings
 from mapdyn.study.folder import CHUNKS, Study, write_marker
 from mapdyn.study.initial_conditions import initial_row
 from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
@@ -46,6 +49,8 @@ __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "ru
            "run_ensemble", "Progress"]
 
 
+log = logging.getLogger(__name__)
+_SEEN_WARNINGS: set = set()
 _PARENT_PID: int | None = None
 _STUDY_CACHE: dict = {}
 #: in-process runs (:class:`SerialExecutor`): the runner's stop callable, checked at checkpoints.
@@ -183,6 +188,14 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
     target = study.nsteps
     K = study.config.dynamics.checkpoint_every
     steps_done = 0
+    caught: list = []
+    step_now = 0
+    wpath = os.path.join(folder, WARNINGS_FILE)
+
+    def flush_warnings() -> None:
+        record_warnings(wpath, index, step_now, caught)
+        del caught[:]
+
     try:
         point = store.restart_point()
         meta = point.meta
@@ -193,8 +206,8 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         if os.path.exists(failure):
             os.unlink(failure)
         store.adopt(point)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # one-per-run warnings are kept in the driver state
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")  # collected with their step into warnings.json
             if point.state is None:
                 dyn = _fresh_driver(study, index)
                 chunks, digests = store.commit(dyn.state, dyn.frames, 0, _state_meta(study, dyn), [])
@@ -212,6 +225,10 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
                 steps_done += dyn.state.step - before
                 chunks, digests = store.commit(dyn.state, dyn.frames, chunks, _state_meta(study, dyn), digests)
                 dyn.frames.clear()
+                step_now = dyn.state.step
+                flush_warnings()
+            step_now = dyn.state.step
+            flush_warnings()
         st = dyn.state
         if st.stopped:
             return TaskResult("trajectory", index, "failed", steps_done, time.perf_counter() - t0, st.stop_reason or "")
@@ -221,6 +238,10 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         write_json(failure, {"reason": reason, "traceback": traceback.format_exc(), "time": time.time()})
         return TaskResult("trajectory", index, "failed", steps_done, time.perf_counter() - t0, reason)
     finally:
+        try:
+            flush_warnings()
+        except Exception:  # noqa: BLE001 - a warning record never takes the trajectory down
+            pass
         if os.path.exists(marker):
             try:
                 os.unlink(marker)
@@ -270,8 +291,15 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
             state = gaussian_wavepacket_ensemble(model, count, cfg.ensemble.seed, np.array(init.position_bohr),
                                                  np.array(init.momentum_au), np.array(init.width_bohr), init.state,
                                                  cfg.options, basis=init.basis, first_index=first)
-        run = run_diabatic(model, state, cfg.options, cfg.dynamics.time_step_au, target - step,
-                           record_every=cfg.dynamics.record_every, record_nuclei=True)
+        import warnings
+
+        with warnings.catch_warnings(record=True) as caught_chunk:
+            warnings.simplefilter("always")
+            try:
+                run = run_diabatic(model, state, cfg.options, cfg.dynamics.time_step_au, target - step,
+                                   record_every=cfg.dynamics.record_every, record_nuclei=True)
+            finally:  # step of a chunk warning: the segment's end step
+                record_warnings(study.path(CHUNKS, f"chunk_{chunk:04d}.warnings.json"), first, target, caught_chunk)
         keep = slice(1, None) if segs else slice(None)  # a continuation's first frame repeats the last one
         f = run.final
         arrays = {"times": run.times[keep], "actions_adiabatic": run.actions_adiabatic[keep],
@@ -386,6 +414,22 @@ def _live_steps(study: Study, ids: Sequence[int]) -> int:
     return total
 
 
+def _log_task(study: Study, res: TaskResult) -> None:
+    """Log a returned task (study log) and the warnings its worker recorded."""
+    level = logging.WARNING if res.status == "failed" else logging.INFO
+    log.log(level, "%s %d %s (%d steps, %.1f s)%s", res.kind, res.index, res.status, res.steps, res.seconds,
+            f": {res.reason}" if res.reason else "")
+    path = (study.path(CHUNKS, f"chunk_{res.index:04d}.warnings.json") if study.batched
+            else os.path.join(study.trajectory_folder(res.index), WARNINGS_FILE))
+    for w in read_warnings(path):
+        shape = (study.folder, w["category"], re.sub(r"[-+]?\d+\.?\d*(?:[eE][-+]?\d+)?", "#", w["message"]))
+        first = shape not in _SEEN_WARNINGS  # the console gets each kind once, the log file every one
+        _SEEN_WARNINGS.add(shape)
+        log.log(logging.WARNING if first else logging.INFO, "%s %d, step %d: %s: %s%s", res.kind, res.index,
+                w["first_step"], w["category"], w["message"],
+                " (further ones of this kind go to the log file only)" if first else "")
+
+
 def run_ensemble(study: Study, executor: cf.Executor | None = None, workers: int | None = None, *,
                  tasks: Sequence[int] | None = None, retry_failed: bool = False,
                  progress: Callable[[Progress], None] | None = None, progress_interval: float = 1.0,
@@ -458,6 +502,7 @@ def run_ensemble(study: Study, executor: cf.Executor | None = None, workers: int
                     if not study.batched:  # the steps it checkpointed count; its files say how far it got
                         res.steps = 0
                 results.append(res)
+                _log_task(study, res)
                 finished_steps += res.steps
                 if res.status in ("finished", "skipped"):
                     done += res.ntraj

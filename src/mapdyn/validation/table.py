@@ -38,7 +38,7 @@ from typing import Callable
 
 import numpy as np
 
-from mapdyn.core.options import MethodOptions
+from mapdyn.core.options import DEFAULT_WINDOW, MethodOptions
 from mapdyn.files import atomic_write_text
 from mapdyn.models.tully import tully_model
 from mapdyn.validation.scattering import run_scattering
@@ -236,12 +236,16 @@ def run_validation(options: MethodOptions, quick: bool = False, ntraj: int | Non
     if not cases:
         raise RuntimeError("no reference data found in mapdyn/data; reinstall the package")
     results = []
-    for c in cases:
+    from mapdyn.progress import iterate
+
+    for c in iterate(cases, "validation cases", total=len(cases), enabled=progress is not None):
         t0 = time.perf_counter()
         exact, value, diff, err = c.run(options, ntraj, seed)
         results.append(CaseResult(c.name, exact, value, diff, err, c.tolerance, time.perf_counter() - t0))
         if progress is not None:
             progress(f"  {c.name}: {'pass' if results[-1].passed else 'FAIL'} ({results[-1].seconds:.1f} s)")
+    if progress is not None:
+        progress(f"  {len(results)} cases in {sum(r.seconds for r in results):.0f} s")
     return results
 
 
@@ -264,13 +268,21 @@ def results_as_json(results: list[CaseResult]) -> str:
 def add_arguments(parser) -> None:
     """Options of ``mapdyn validate`` (shared with the command line)."""
     parser.add_argument("--method", default="sqc", help="sqc or ehrenfest (default sqc)")
-    parser.add_argument("--window", default="triangle", help="square or triangle (default triangle)")
+    parser.add_argument("--window", default=DEFAULT_WINDOW, help=f"square or triangle (default {DEFAULT_WINDOW}, as for studies)")
     parser.add_argument("--zero-point", dest="zero_point", default="symmetrized",
                         help="symmetrized, adjusted or fixed (default symmetrized)")
-    parser.add_argument("--quick", action="store_true", help="one case per model, 1500 trajectories (< 1 minute)")
+    parser.add_argument("--quick", action="store_true",
+                        help="one case per model (6 cases), 1500 trajectories each; 82 s wall measured on a busy "
+                             "2-core machine, longer on slower or more loaded ones")
     parser.add_argument("--trajectories", type=int, default=None, help="trajectories per case (default 2000, quick 1500)")
     parser.add_argument("--seed", type=int, default=2024, help="ensemble seed (default 2024)")
     parser.add_argument("--json", dest="json_path", default=None, help="also write the rows to this JSON file")
+
+
+def _print_above_bar(line: str) -> None:
+    from tqdm import tqdm
+
+    tqdm.write(line)
 
 
 def main_from_args(args) -> int:
@@ -280,7 +292,7 @@ def main_from_args(args) -> int:
         options = MethodOptions(args.method, args.window, args.zero_point)
         print(f"mapdyn validate: {options.describe()}{' (quick)' if args.quick else ''}", flush=True)
         results = run_validation(options, quick=args.quick, ntraj=args.trajectories, seed=args.seed,
-                                 progress=lambda s: print(s, flush=True))
+                                 progress=_print_above_bar)
     except ValueError as exc:
         print(f"mapdyn validate: error: {exc}", file=sys.stderr)
         return 2
