@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import io
 import json
 import os
 from typing import Any, Mapping, Sequence
@@ -78,27 +79,31 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
     """
     meta_text = json.dumps(dict(meta or {}), sort_keys=True, allow_nan=True)
 
+    buffer = io.BytesIO()  # HDF5 writes to memory; the disk sees one plain write (a full disk fails cleanly)
+    with h5py.File(buffer, "w") as h5:
+        h5.attrs["meta"] = meta_text
+        h5.attrs["meta_sha256"] = _digest(meta_text.encode())
+        h5.attrs["format_version"] = FORMAT_VERSION
+        for name, value in arrays.items():
+            kind = "array"
+            if isinstance(value, (bytes, bytearray)):
+                arr = np.frombuffer(bytes(value), dtype=np.uint8)
+                kind = "bytes"
+            else:
+                arr = np.asarray(value)
+                if arr.dtype == object:
+                    raise ValueError(f"array {name!r} has dtype object; store it as bytes")
+            if arr.ndim >= 1 and arr.size > 0:
+                ds = h5.create_dataset(name, data=arr, chunks=arr.shape, fletcher32=True)
+            else:
+                ds = h5.create_dataset(name, data=arr)
+            ds.attrs["sha256"] = _digest(_array_bytes(arr))
+            ds.attrs["kind"] = kind
+    data = buffer.getvalue()
+
     def write(tmp: str) -> None:
-        with h5py.File(tmp, "w") as h5:
-            h5.attrs["meta"] = meta_text
-            h5.attrs["meta_sha256"] = _digest(meta_text.encode())
-            h5.attrs["format_version"] = FORMAT_VERSION
-            for name, value in arrays.items():
-                kind = "array"
-                if isinstance(value, (bytes, bytearray)):
-                    arr = np.frombuffer(bytes(value), dtype=np.uint8)
-                    kind = "bytes"
-                else:
-                    arr = np.asarray(value)
-                    if arr.dtype == object:
-                        raise ValueError(f"array {name!r} has dtype object; store it as bytes")
-                if arr.ndim >= 1 and arr.size > 0:
-                    ds = h5.create_dataset(name, data=arr, chunks=arr.shape, fletcher32=True)
-                else:
-                    ds = h5.create_dataset(name, data=arr)
-                ds.attrs["sha256"] = _digest(_array_bytes(arr))
-                ds.attrs["kind"] = kind
-            h5.flush()
+        with open(tmp, "wb") as fh:
+            fh.write(data)
 
     return atomic_write(path, write, sync_directory)
 

@@ -71,14 +71,14 @@ class TaskResult:
     ntraj: int = 1
 
 
-def _worker_init() -> None:
+def _worker_init(parent_pid: int | None = None) -> None:
     """Local worker: one thread, SIGINT left to the parent, and it dies with its parent: the kernel
     sends SIGKILL when the parent dies (Linux ``PR_SET_PDEATHSIG``), and a watchdog thread
     polls the parent id every 0.5 s elsewhere.  Files stay consistent: every write is atomic."""
     global _PARENT_PID
     os.environ.update(SINGLE_THREAD_ENV)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    _PARENT_PID = os.getppid()
+    _PARENT_PID = os.getppid() if parent_pid is None else int(parent_pid)  # given: it may be dead already
     _die_with_parent()
 
 
@@ -348,7 +348,7 @@ def local_executor(workers: int) -> cf.ProcessPoolExecutor:
     """``workers`` spawned processes with one OpenMP/BLAS thread each (set before they start)."""
     os.environ.update(SINGLE_THREAD_ENV)
     return cf.ProcessPoolExecutor(max_workers=int(workers), mp_context=multiprocessing.get_context("spawn"),
-                                  initializer=_worker_init)
+                                  initializer=_worker_init, initargs=(os.getpid(),))
 
 
 class SerialExecutor(cf.Executor):
