@@ -5,7 +5,6 @@ after the repair; the model engine is deterministic, so any difference is a bug)
 from __future__ import annotations
 
 import os
-import shutil
 import signal
 import subprocess
 import sys

@@ -327,3 +327,65 @@ def test_old_pickled_state_and_unknown_format_are_clear_errors(tmp_path):
     bad = {"o.tree": json.dumps({"format": 1, "root": {"$c": "os:system", "f": {}}}).encode()}
     with pytest.raises(ObjectFormatError, match="not a mapdyn class"):
         decode_object(bad, "o")
+
+
+# ----------------------------------------------------------------------------------------------
+# damaged initial conditions (molecular, H2 SA2-CASSCF(2,2)/STO-3G, one trajectory of 2 steps)
+# ----------------------------------------------------------------------------------------------
+H2 = """
+[study]
+name = "h2_ic"
+description = "scenario of our own: H2 after excitation, SA2-CASSCF(2,2)/STO-3G"
+[molecule]
+atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
+[electronic]
+backend = "casscf"
+basis = "sto-3g"
+active_orbitals = 2
+active_electrons = 2
+states = 2
+[initial]
+state = 1
+[dynamics]
+time_step = "0.5 fs"
+duration = "1 fs"
+checkpoint_every = 2
+[ensemble]
+trajectories = 1
+seed = 5
+workers = 1
+"""
+
+
+@pytest.mark.parametrize("fault", ["altered_rows", "garbage_bytes", "deleted"])
+def test_damaged_initial_conditions_are_reported_and_recomputed(tmp_path, capsys, fault):
+    """Fault: initial_conditions.h5 of a finished molecular study altered (rows changed through
+    HDF5), overwritten with random bytes, or deleted.  Status names it; resume recomputes it from
+    the same seeds and geometry (one thread: the same arrays bit for bit) and keeps the finished
+    trajectory."""
+    toml = write(tmp_path, "h2.toml", H2)
+    ref = tmp_path / "ref"
+    assert main(["run", toml, "--output", str(ref), *QUIET, "--no-analysis"]) == 0
+    folder = tmp_path / "hurt"
+    shutil.copytree(ref, folder)
+    ic = folder / "initial_conditions.h5"
+    if fault == "altered_rows":
+        alter_dataset(ic, "positions_bohr")
+    elif fault == "garbage_bytes":
+        ic.write_bytes(os.urandom(4096))
+    else:
+        ic.unlink()
+    status = Study(folder).status()
+    if fault != "deleted":
+        assert status.problems and "initial_conditions.h5" in status.problems[0] and not status.complete
+        assert main(["status", str(folder)]) == 0
+        assert "damaged initial_conditions.h5" in capsys.readouterr().out
+    traj_files = sorted(os.listdir(folder / "trajectories" / "traj_000000"))
+    assert main(["resume", str(folder), *QUIET, "--no-analysis"]) == 0
+    a, _ = read_h5(ref / "initial_conditions.h5")
+    b, _ = read_h5(ic)
+    assert a.keys() == b.keys()
+    for k in a:
+        assert np.array_equal(a[k], b[k]) if isinstance(a[k], np.ndarray) else a[k] == b[k], k
+    assert sorted(os.listdir(folder / "trajectories" / "traj_000000")) == traj_files
+    assert Study(folder).status().complete
