@@ -32,6 +32,9 @@ examples:
   mapdyn check inputs/ethylene_tiny.toml     preflight: finite-difference checks and core-hours
   mapdyn validate --quick                    the method's accuracy on built-in exact benchmarks
 
+exit codes: 0 done; 1 failed trajectories or an internal error; 2 invalid input or an environment
+fault (one line, nothing computed); 3 report from incomplete data (see --allow-incomplete); 130 Ctrl-C.
+
 A study folder holds everything: the input, initial conditions, checkpoints of every
 trajectory and the report.  Work is never repeated: run, resume and extend only compute
 what the files show is missing.  Ctrl-C stops after the current checkpoint.
@@ -196,6 +199,13 @@ def _execute(study, args) -> int:
         _log(f"stopped; continue with: mapdyn resume {study.folder}")
         return 130
     code = 1 if counts["failed"] else 0
+    lost = [r for r in summary.results if r.reason.startswith("worker lost")]
+    if lost:
+        _log(f"{len(lost)} task(s) lost their worker, e.g. {lost[0].kind} {lost[0].index}: {lost[0].reason}")
+    if not status.complete:
+        _log(f"incomplete: {counts['pending'] + counts['damaged'] + counts['running']} trajectories not computed; "
+             f"continue with: mapdyn resume {study.folder}")
+        code = code or 1
     if not args.no_analysis:
         rc = _report(study, args.allow_incomplete)
         code = code or rc

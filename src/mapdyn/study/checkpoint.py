@@ -277,8 +277,9 @@ class TrajectoryStore:
         digests = meta.get("chunk_sha256", [])
         for c in range(n):
             cp = self.chunk_path(c)
-            if not os.path.exists(cp):
-                raise CheckpointError(cp, f"frame chunk {c} named by {os.path.basename(path)} is missing")
+            if not os.path.isfile(cp):
+                what = "is not a file" if os.path.exists(cp) else "is missing"
+                raise CheckpointError(cp, f"frame chunk {c} named by {os.path.basename(path)} {what}")
             if check and (c >= len(digests) or file_digest(cp) != digests[c]):
                 raise CheckpointError(cp, f"frame chunk {c} differs from the digest recorded in {os.path.basename(path)}")
             if read:
@@ -323,7 +324,7 @@ class TrajectoryStore:
         if point.state is None:
             for path in (self.state_path, self.previous_state_path):
                 if os.path.exists(path):
-                    os.unlink(path)
+                    _remove(path)
         elif point.source == self.previous_state_path:
             os.replace(self.previous_state_path, self.state_path)
         self.discard_after(point.chunks)
@@ -339,7 +340,17 @@ class TrajectoryStore:
                 except ValueError:
                     continue
                 if idx >= chunks:
-                    os.unlink(os.path.join(self.folder, name))
+                    _remove(os.path.join(self.folder, name))
+
+
+def _remove(path: str) -> None:
+    """Delete a file, or a folder found where a file belongs."""
+    if os.path.isdir(path) and not os.path.islink(path):
+        import shutil
+
+        shutil.rmtree(path)
+    else:
+        os.unlink(path)
 
 
 def _jsonable(value: Any) -> Any:

@@ -4,8 +4,10 @@ conditions of molecular studies, results as a :class:`mapdyn.analysis.Trajectory
 Layout::
 
     <folder>/
-      study.toml              the input file, verbatim (its sha256 is in the manifest)
-      manifest.json           what the study is now: trajectories, duration, task layout, history
+      study.toml              the input file (sealed: its text and sha256 are in the manifest)
+      manifest.json           what the study is now: trajectories, duration, task layout, history,
+                              its own checksum
+      .lock                   one writer at a time (:mod:`mapdyn.study.integrity`)
       initial_conditions.h5   molecules: reference geometry, Hessian, modes, sampled rows
       trajectories/traj_000042/   per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`)
           state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json
@@ -14,7 +16,8 @@ Layout::
       report/                 figures, CSV, summary (written by the analysis)
 
 Status is never stored separately: it is read from these files every time, so it cannot
-disagree with them.  ``running.json`` (process id and host) marks work in progress; a marker
+disagree with them; every checksum and recorded digest is verified on the way and damaged tasks
+are reported as "damaged" with the reason.  ``running.json`` (process id and host) marks work in progress; a marker
 whose process on this host no longer exists is ignored.
 
 Units: times in the manifest in a.u. (``duration_au``) and fs (``duration_fs``, for reading).

@@ -25,7 +25,8 @@ import tomllib
 from typing import Any
 
 __all__ = ["LOCK_FILE", "StudyLock", "LockedError", "manifest_checksum", "first_difference",
-           "remove_temporaries", "disk_full_message", "is_disk_full"]
+           "remove_temporaries", "disk_full_message", "is_disk_full",
+           "is_environment_fault"]
 
 LOCK_FILE = ".lock"
 
@@ -139,6 +140,16 @@ def remove_temporaries(folder: str) -> list[str]:
                 except OSError:
                     pass
     return removed
+
+
+def is_environment_fault(err: BaseException) -> bool:
+    """A file-system condition no retry of the same task can fix (full disk, permissions, a file
+    where a folder belongs, read-only file system): the run stops with one line instead of
+    recording every task as failed."""
+    if is_disk_full(err):
+        return True
+    return isinstance(err, OSError) and err.errno in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOTDIR,
+                                                      errno.EISDIR, errno.EEXIST)
 
 
 def is_disk_full(err: BaseException) -> bool:

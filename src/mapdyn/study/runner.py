@@ -39,7 +39,7 @@ from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
 from mapdyn.study.folder import CHUNKS, Study, write_marker
 from mapdyn.study.initial_conditions import initial_row
-from mapdyn.study.integrity import is_disk_full
+from mapdyn.study.integrity import is_environment_fault
 from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
 
 __all__ = ["TaskResult", "EnsembleSummary", "trajectory_task", "chunk_task", "run_task", "local_executor",
@@ -243,7 +243,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
             return TaskResult("trajectory", index, "failed", steps_done, time.perf_counter() - t0, st.stop_reason or "")
         return TaskResult("trajectory", index, "finished", steps_done, time.perf_counter() - t0)
     except Exception as err:  # isolate failures: record and report, never take the ensemble down
-        if is_disk_full(err):  # not the trajectory's fault: stop the run, resume later
+        if is_environment_fault(err):  # not the trajectory's fault: stop the run, resume later
             raise
         reason = f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"
         write_json(failure, {"reason": reason, "traceback": traceback.format_exc(), "time": time.time()})
@@ -317,7 +317,7 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
                   "segment": len(segs), "seconds": time.perf_counter() - t0})
         return TaskResult("chunk", chunk, "finished", (target - step) * count, time.perf_counter() - t0, ntraj=count)
     except Exception as err:
-        if is_disk_full(err):
+        if is_environment_fault(err):
             raise
         reason = f"{type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}"
         write_json(failure, {"reason": reason, "traceback": traceback.format_exc(), "time": time.time()})
@@ -493,7 +493,7 @@ def run_ensemble(study: Study, executor: cf.Executor | None = None, workers: int
                 try:
                     res = fut.result()
                 except Exception as err:  # the worker process itself died (or a Dask KilledWorker)
-                    if is_disk_full(err):
+                    if is_environment_fault(err):
                         raise
                     res = TaskResult("chunk" if study.batched else "trajectory", i, "failed",
                                      reason=f"worker lost: {type(err).__name__}: {err}", ntraj=ntraj_of[i])
