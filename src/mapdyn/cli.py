@@ -371,9 +371,12 @@ def _cmd_analyze(args) -> int:
 
 def _cmd_check(args) -> int:
     from mapdyn.study.config import ConfigError, load_study_config
+    from mapdyn.study.feasibility import check_analysis, check_electronic
 
     try:
         cfg = load_study_config(args.study)
+        check_analysis(cfg)
+        check_electronic(cfg)  # infeasible settings are refused before the backend runs
     except ConfigError as err:
         return _error(str(err))
     from mapdyn.study import preflight
@@ -430,7 +433,8 @@ def _guarded(handler, args) -> int:
     except OSError as err:
         path = err.filename or ""
         if is_disk_full(err):
-            return _error(disk_full_message(path or getattr(args, "folder", None) or getattr(args, "output", "") or "."))
+            return _error(disk_full_message(path or getattr(args, "folder", None) or getattr(args, "output", "") or ".",
+                                            getattr(err, "needed_bytes", None)))
         if err.errno in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOTDIR, errno.EISDIR, errno.ENOENT,
                          errno.EEXIST, errno.EDQUOT, errno.ENAMETOOLONG):
             return _error(f"{path or 'a file'}: {os.strerror(err.errno)}")

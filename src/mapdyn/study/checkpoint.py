@@ -33,6 +33,7 @@ previous generation; otherwise start from scratch.  Every problem found is repor
 from __future__ import annotations
 
 import dataclasses
+import errno
 import hashlib
 import io
 import json
@@ -102,8 +103,15 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
     data = buffer.getvalue()
 
     def write(tmp: str) -> None:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
+        try:
+            with open(tmp, "wb") as fh:
+                fh.write(data)
+        except OSError as err:
+            if err.errno in (errno.ENOSPC, errno.EDQUOT):
+                full = OSError(err.errno, os.strerror(err.errno), os.fspath(path))
+                full.needed_bytes = len(data)  # type: ignore[attr-defined]
+                raise full from None
+            raise
 
     return atomic_write(path, write, sync_directory)
 

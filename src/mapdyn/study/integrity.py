@@ -160,6 +160,10 @@ def is_disk_full(err: BaseException) -> bool:
     return err.errno in (errno.ENOSPC, errno.EDQUOT) or "No space left" in text or "errno = 28" in text
 
 
+def _size(n: float) -> str:
+    return f"{n / 1e6:.1f} MB" if n >= 1e6 else f"{n / 1e3:.0f} kB"
+
+
 def disk_full_message(path: str, needed_bytes: int | None = None) -> str:
     """'no space left on device writing PATH (free: X MB on its file system)'."""
     probe = path
@@ -167,8 +171,8 @@ def disk_full_message(path: str, needed_bytes: int | None = None) -> str:
         probe = os.path.dirname(probe)
     try:
         free = shutil.disk_usage(probe or ".").free
-        room = f"free: {free / 1e6:.1f} MB on its file system"
+        room = f"free: {_size(free)} on its file system"
     except OSError:
         room = "free space unknown"
-    need = f", at least {needed_bytes / 1e6:.1f} MB more needed" if needed_bytes else ""
+    need = f"; this file alone needs {_size(needed_bytes)}" if needed_bytes else ""
     return f"no space left on the device writing {path} ({room}{need}); free some space and run 'mapdyn resume'"
