@@ -263,6 +263,9 @@ def test_extend_writes_the_input_and_reseals(refs, tmp_path, capsys):
     assert data["ensemble"]["trajectories"] == 4 and data["dynamics"]["duration"] == "140.0 au"
     study = Study(folder)
     assert study.ntraj == 4 and study.nsteps == 70 and study.config.ensemble.trajectories == 4
+    # the file it was created from still continues it (its hash is in the history)
+    assert main(["run", refs["otf_toml"], "--output", str(folder), *QUIET, "--no-analysis"]) == 0
+    assert Study(folder).status().complete and Study(folder).ntraj == 4
     # interrupted: the new text exists as study.toml.next, the manifest already sealed it
     sealed = (folder / "study.toml").read_text()
     (folder / "study.toml.next").write_text(sealed)

@@ -133,6 +133,7 @@ def _mole(cfg: StudyConfig):
     from pyscf import gto
 
     mol_cfg = cfg.molecule
+    assert mol_cfg is not None
     from mapdyn.units import BOHR_IN_ANGSTROM
 
     atoms = [(s, tuple(float(x) * BOHR_IN_ANGSTROM for x in r)) for s, r in zip(mol_cfg.symbols, mol_cfg.positions_bohr)]

@@ -239,7 +239,9 @@ class Study:
         if os.path.isfile(mpath):
             if holds_results(folder):
                 study = cls(folder)
-                if study.manifest.get("source_sha256") != config.source_hash:
+                known = {study.manifest.get("source_sha256")} | {h.get("previous_sha256") for h in study.manifest["history"]
+                                                                  if isinstance(h, dict)}
+                if config.source_hash not in known:  # the input it was created or extended from continues it
                     raise StudyError(f"{folder} already holds a different study; use 'mapdyn resume {folder}' or "
                                      f"'mapdyn extend {folder}', or choose another study.folder")
                 return study

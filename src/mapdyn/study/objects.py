@@ -132,7 +132,7 @@ def decode_object(arrays: dict[str, Any], prefix: str) -> Any:
             return complex(*n["$z"])
         if "$c" in n:
             cls = _class(n["$c"])
-            obj = object.__new__(cls)
+            obj: Any = object.__new__(cls)
             names = {f.name for f in dataclasses.fields(cls)}
             if set(n["f"]) != names:
                 raise ObjectFormatError(f"stored object {prefix!r}: fields of {n['$c']} differ from this mapdyn version")
