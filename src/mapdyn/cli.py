@@ -90,6 +90,8 @@ def build_parser() -> argparse.ArgumentParser:
                         description="Status derived from the files of the study folder.")
     st.add_argument("folder", metavar="DIR", help="study folder")
     st.add_argument("--json", action="store_true", help="machine-readable output")
+    st.add_argument("--quick", action="store_true",
+                    help="metadata only: skip verifying every checksum and digest (damage may go unseen)")
 
     e = sub.add_parser("extend", help="add trajectories or a later end time, keeping finished work",
                        description="Raise the number of trajectories and/or the end time of a study; finished "
@@ -322,7 +324,7 @@ def _cmd_status(args) -> int:
 
     try:
         study = _open_study(args.folder)
-        status = study.status()
+        status = study.status(verify=not getattr(args, "quick", False))
     except StudyError as err:
         return _error(str(err))
     if getattr(args, "json", False):
