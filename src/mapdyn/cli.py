@@ -162,6 +162,7 @@ def _execute(study, args) -> int:
     from mapdyn.study.runner import run_ensemble
 
     cfg = study.config
+    study.check_layout()
     stopper = _Stop()
     old = signal.signal(signal.SIGINT, stopper)
     try:

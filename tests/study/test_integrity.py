@@ -198,10 +198,10 @@ def _edit_manifest(folder, change, keep_checksum=False):
 
 
 @pytest.mark.parametrize("fault", ["garbage", "empty", "not_object", "edited_value", "missing_key",
-                                   "old_format", "future_format", "deleted"])
+                                   "old_format", "future_format", "deleted", "directory"])
 def test_damaged_manifest_is_refused_by_every_command(refs, tmp_path, capsys, fault):
     """Fault: manifest.json replaced by garbage, emptied, a JSON list, a value edited (trajectories
-    3 → 2), a required key removed, format 1 (pickled era), format 99, deleted."""
+    3 → 2), a required key removed, format 1 (pickled era), format 99, deleted, a folder in its place."""
     folder = copy(refs, "otf", tmp_path)
     path = folder / "manifest.json"
     if fault == "garbage":
@@ -218,8 +218,11 @@ def test_damaged_manifest_is_refused_by_every_command(refs, tmp_path, capsys, fa
         _edit_manifest(folder, lambda m: m.update(format=1), keep_checksum=True)
     elif fault == "future_format":
         _edit_manifest(folder, lambda m: m.update(format=99), keep_checksum=True)
+    elif fault == "deleted":
+        path.unlink()
     else:
         path.unlink()
+        path.mkdir()
     for cmd in (["status"], ["resume", *QUIET], ["analyze"], ["extend", "--trajectories", "5"]):
         line = one_line_error(capsys, main([cmd[0], str(folder), *cmd[1:]]))
         assert "manifest.json" in line
@@ -243,6 +246,18 @@ def test_edited_input_is_refused_naming_the_key(refs, tmp_path, capsys, edit, ke
     for cmd in (["status"], ["resume", *QUIET], ["analyze"], ["extend", "--trajectories", "5"]):
         line = one_line_error(capsys, main([cmd[0], str(folder), *cmd[1:]]))
         assert "changed after the study was sealed" in line and key in line, line
+
+
+def test_file_where_the_chunks_folder_belongs(refs, tmp_path, capsys):
+    """Fault: chunks/ of a batched study replaced by a file: status names it, resume refuses with
+    one line and leaves the file alone."""
+    folder = copy(refs, "bat", tmp_path)
+    shutil.rmtree(folder / "chunks")
+    (folder / "chunks").write_text("not a folder")
+    status = Study(folder).status()
+    assert not status.complete and "chunks is not a folder" in status.problems[0]
+    assert "chunks" in one_line_error(capsys, main(["resume", str(folder), *QUIET, "--no-analysis"]))
+    assert (folder / "chunks").read_text() == "not a folder"
 
 
 def test_deleted_input_is_refused(refs, tmp_path, capsys):

@@ -201,6 +201,8 @@ class Study:
         mpath = os.path.join(self.folder, MANIFEST)
         if os.path.exists(self.folder) and not os.path.isdir(self.folder):
             raise StudyError(f"{self.folder} is a file, not a study folder")
+        if os.path.exists(mpath) and not os.path.isfile(mpath):
+            raise StudyError(f"{mpath} is not a file; the study cannot be read")
         if not os.path.isfile(mpath):
             raise StudyError(f"{self.folder} is not a study folder (no {MANIFEST}); start one with 'mapdyn run STUDY.toml'")
         self.manifest = _read_manifest(mpath)
@@ -426,8 +428,17 @@ class Study:
                 problems.append(f"segment {seg} is missing but segment {min(later)} exists")
         return out, problems
 
+    def check_layout(self) -> None:
+        """Refuse (one line) a file where one of the study's folders belongs; nothing is deleted."""
+        for sub in (TRAJECTORIES, CHUNKS, REPORT):
+            if os.path.exists(self.path(sub)) and not os.path.isdir(self.path(sub)):
+                raise StudyError(f"{self.path(sub)} is a file where the study keeps a folder; move it away and resume")
+
     def file_problems(self) -> list[str]:
-        """Damage to study-level files (initial conditions)."""
+        """Damage to study-level files (initial conditions, a file where a folder belongs)."""
+        for sub in (TRAJECTORIES, CHUNKS):
+            if os.path.exists(self.path(sub)) and not os.path.isdir(self.path(sub)):
+                return [f"{sub} is not a folder; move it away and resume"]
         path = self.path(INITIAL_CONDITIONS)
         if os.path.exists(path):
             try:
