@@ -75,7 +75,7 @@ def test_model_study_end_to_end(tmp_path, capsys, monkeypatch):
         assert (folder / "report" / name).is_file()
     assert main(["status", str(folder), "--json"]) == 0
     status = json.loads(capsys.readouterr().out)
-    assert status["counts"] == {"finished": 80, "running": 0, "failed": 0, "pending": 0}
+    assert status["counts"] == {"finished": 80, "running": 0, "failed": 0, "pending": 0, "damaged": 0}
     # chunk 1 = trajectories 40..79, compared with the engine called directly
     opts = MethodOptions(window="triangle")
     model = tully_model("tully1")

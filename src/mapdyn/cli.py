@@ -1,7 +1,11 @@
 """The ``mapdyn`` command line (also ``python -m mapdyn``).
 
-Exit codes: 0 success; 1 the run finished with failed trajectories or could not proceed;
-2 invalid input (nothing written); 130 stopped by Ctrl-C (resume later with ``mapdyn resume``).
+Exit codes: 0 success; 1 the run finished with failed trajectories, or an internal error (a bug:
+set MAPDYN_TRACEBACK=1 for the traceback); 2 invalid input or an environment fault (unwritable or
+blocked path, full disk, damaged or edited study files, folder in use) — one line on stderr, nothing
+written for invalid input; 3 a report was written from incomplete data (missing or damaged
+trajectories are listed; ``--allow-incomplete`` accepts that with exit 0); 130 stopped by Ctrl-C
+(resume later with ``mapdyn resume``).
 """
 
 from __future__ import annotations
@@ -30,6 +34,9 @@ examples:
   mapdyn analyze runs/model_tully1           (re)write the report folder
   mapdyn check inputs/methaniminium_demo.toml  preflight: finite-difference checks and core-hours
   mapdyn validate --quick                    the method's accuracy on built-in exact benchmarks
+
+exit codes: 0 done; 1 failed trajectories or an internal error; 2 invalid input or an environment
+fault (one line, nothing computed); 3 report from incomplete data (see --allow-incomplete); 130 Ctrl-C.
 
 A study folder holds everything: the input, initial conditions, checkpoints of every
 trajectory and the report.  Work is never repeated: run, resume and extend only compute
@@ -64,6 +71,9 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--scheduler", metavar="ADDRESS", help="run the tasks on a Dask scheduler, e.g. tcp://10.0.0.5:8786")
         sp.add_argument("--no-analysis", action="store_true", help="do not write the report at the end")
         sp.add_argument("--quiet", action="store_true", help="no progress line")
+        sp.add_argument("--allow-incomplete", action="store_true",
+                        help="exit 0 even when the report lacks missing or damaged trajectories (listed in it)")
+        sp.add_argument("--force", action="store_true", help="run a study above the size limits")
 
     r = sub.add_parser("run", help="run a study from a TOML input file",
                        description="Validate STUDY.toml, create its folder, prepare initial conditions (optimise, "
@@ -83,6 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
                         description="Status derived from the files of the study folder.")
     st.add_argument("folder", metavar="DIR", help="study folder")
     st.add_argument("--json", action="store_true", help="machine-readable output")
+    st.add_argument("--quick", action="store_true",
+                    help="metadata only: skip verifying every checksum and digest (damage may go unseen)")
 
     e = sub.add_parser("extend", help="add trajectories or a later end time, keeping finished work",
                        description="Raise the number of trajectories and/or the end time of a study; finished "
@@ -96,6 +108,8 @@ def build_parser() -> argparse.ArgumentParser:
     a = sub.add_parser("analyze", help="write the report folder (figures, CSV, summary)",
                        description="Analyse a finished or partial study and write DIR/report/.")
     a.add_argument("folder", metavar="DIR", help="study folder")
+    a.add_argument("--allow-incomplete", action="store_true",
+                   help="exit 0 even when trajectories are missing or damaged (they are listed in the report)")
 
     x = sub.add_parser("export", help="write open formats: extended XYZ per trajectory, CSV, HDF5",
                        description="Write DIR/export/: <index>.xyz per trajectory (ase.io.read(path, index=':') "
@@ -151,11 +165,11 @@ def _log(msg: str) -> None:
 
 def _execute(study, args) -> int:
     """Initial conditions (molecules), the ensemble, the report."""
-    from mapdyn.study.analyze import write_study_report
     from mapdyn.study.initial_conditions import prepare_initial_conditions
     from mapdyn.study.runner import run_ensemble
 
     cfg = study.config
+    study.check_layout()
     add_study_log(study.folder)
     stopper = _Stop()
     old = signal.signal(signal.SIGINT, stopper)
@@ -199,31 +213,107 @@ def _execute(study, args) -> int:
     if stopper.requested or summary.interrupted:
         _log(f"stopped; continue with: mapdyn resume {study.folder}")
         return 130
+    code = 1 if counts["failed"] else 0
+    lost = [r for r in summary.results if r.reason.startswith("worker lost")]
+    if lost:
+        _log(f"{len(lost)} task(s) lost their worker, e.g. {lost[0].kind} {lost[0].index}: {lost[0].reason}")
+    if not status.complete:
+        _log(f"incomplete: {counts['pending'] + counts['damaged'] + counts['running']} trajectories not computed; "
+             f"continue with: mapdyn resume {study.folder}")
+        code = code or 1
     if not args.no_analysis:
-        try:
-            out = write_study_report(study, log=_log)
-            if out:
-                _log(f"report written to {out}")
-        except Exception as err:  # the run itself succeeded; say why the report did not
-            _log(f"report not written: {type(err).__name__}: {err}")
-    return 1 if counts["failed"] else 0
+        rc = _report(study, args.allow_incomplete)
+        code = code or rc
+    return code
+
+
+def _report(study, allow_incomplete: bool) -> int:
+    """Write the report; list what is missing or damaged (in the summary and on stderr).
+    Returns 0, 3 (incomplete without ``--allow-incomplete``) or 1 (no report)."""
+    from mapdyn.study.analyze import write_study_report
+    from mapdyn.study.folder import StudyError
+
+    missing = study.status().incomplete()
+    for line in missing[:20]:
+        _log(f"incomplete: {line}")
+    if len(missing) > 20:
+        _log(f"incomplete: ... and {len(missing) - 20} more (see the report summary)")
+    try:
+        out = write_study_report(study, log=_log)
+    except StudyError as err:
+        _log(f"report not written: {err}")
+        return 1
+    except (OSError, MemoryError):
+        raise
+    except Exception as err:  # the run itself succeeded; say why the report did not
+        _log(f"report not written: {type(err).__name__}: {err}")
+        return 1
+    if out is None:
+        return _error("the analysis modules are not available", 1)
+    if missing:
+        _append_missing(out, missing)
+    _log(f"report written to {out}" + (f" from incomplete data ({len(missing)} item(s) missing or damaged)"
+                                       if missing else ""))
+    return 3 if missing and not allow_incomplete else 0
+
+
+def _append_missing(report_folder: str, missing: list) -> None:
+    import os
+
+    from mapdyn.files import atomic_write_text
+
+    path = os.path.join(report_folder, "summary.md")
+    text = open(path, encoding="utf-8").read() if os.path.exists(path) else ""
+    text += ("\n\n## Missing or damaged data\n\nThis report was built WITHOUT the following "
+             "(resume the study to compute them):\n\n" + "\n".join(f"- {m}" for m in missing) + "\n")
+    atomic_write_text(path, text)
 
 
 def _cmd_run(args) -> int:
-    from mapdyn.study.config import ConfigError, load_study_config
-    from mapdyn.study.folder import Study, StudyError
+    import os
 
-    try:
-        cfg = load_study_config(args.study)
-    except ConfigError as err:
-        return _error(str(err))
+    from mapdyn.study.config import load_study_config
+    from mapdyn.study.feasibility import validate_study
+    from mapdyn.study.folder import Study
+    from mapdyn.study.integrity import StudyLock
+
+    cfg = load_study_config(args.study)
     if args.workers is not None and args.workers < 1:
         return _error(f"--workers = {args.workers}: must be >= 1")
-    try:
-        study = Study.create(cfg, args.output)
-    except StudyError as err:
-        return _error(str(err))
-    return _execute(study, args)
+    validate_study(cfg, force=args.force)
+    folder = os.path.abspath(args.output or cfg.folder)
+    _check_writable(folder)
+    os.makedirs(folder, exist_ok=True)
+    with StudyLock(folder, "mapdyn run"):
+        study = Study.create(cfg, folder)
+        _clean(study)
+        return _execute(study, args)
+
+
+def _check_writable(folder: str) -> None:
+    """One-line refusal when ``folder`` cannot be created or written (checked before writing)."""
+    import os
+
+    from mapdyn.study.folder import StudyError
+
+    probe = folder
+    while not os.path.exists(probe):
+        parent = os.path.dirname(probe)
+        if parent == probe:
+            break
+        probe = parent
+    if not os.path.isdir(probe):
+        raise StudyError(f"cannot create {folder}: {probe} is a file, not a folder")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise StudyError(f"cannot write {folder}: no write permission in {probe}")
+
+
+def _clean(study) -> None:
+    from mapdyn.study.integrity import remove_temporaries
+
+    removed = remove_temporaries(study.folder)
+    if removed:
+        _log(f"removed {len(removed)} temporary file(s) left by an interrupted write")
 
 
 def _open_study(folder: str):
@@ -233,15 +323,13 @@ def _open_study(folder: str):
 
 
 def _cmd_resume(args) -> int:
-    from mapdyn.study.config import ConfigError
-    from mapdyn.study.folder import StudyError
+    from mapdyn.study.integrity import StudyLock
 
-    try:
-        study = _open_study(args.folder)
-        _ = study.config  # reads and checks the stored input before any work
-    except (StudyError, ConfigError) as err:
-        return _error(str(err))
-    return _execute(study, args)
+    study = _open_study(args.folder)
+    _ = study.config  # parses the stored input (refuses a damaged one)
+    with StudyLock(study.folder, "mapdyn resume"):
+        _clean(study)
+        return _execute(study, args)
 
 
 def _cmd_status(args) -> int:
@@ -249,10 +337,10 @@ def _cmd_status(args) -> int:
 
     try:
         study = _open_study(args.folder)
-        status = study.status()
+        status = study.status(verify=not getattr(args, "quick", False))
     except StudyError as err:
         return _error(str(err))
-    if args.json:
+    if getattr(args, "json", False):
         print(json.dumps(status.as_dict(), indent=1))
     else:
         print(status.text())
@@ -261,41 +349,40 @@ def _cmd_status(args) -> int:
 
 def _cmd_extend(args) -> int:
     from mapdyn.study.config import ConfigError, parse_duration
-    from mapdyn.study.folder import StudyError
 
     if args.trajectories is None and args.duration is None:
         return _error("extend needs --trajectories N and/or --duration TIME")
-    try:
-        study = _open_study(args.folder)
-        duration = parse_duration(args.duration, "--duration") if args.duration is not None else None
-        if args.trajectories is not None and args.trajectories < 1:
-            raise ConfigError("--trajectories", f"= {args.trajectories}: must be >= 1")
+    from mapdyn.study.feasibility import check_size
+    from mapdyn.study.integrity import StudyLock
+
+    study = _open_study(args.folder)
+    duration = parse_duration(args.duration, "--duration") if args.duration is not None else None
+    if args.trajectories is not None and args.trajectories < 1:
+        raise ConfigError("--trajectories", f"= {args.trajectories}: must be >= 1")
+    with StudyLock(study.folder, "mapdyn extend"):
+        _clean(study)
+        n_new = max(args.trajectories or 0, study.ntraj)
+        steps = study.config.with_overrides(duration_au=duration).dynamics.nsteps if duration else study.nsteps
+        check_size(n_new, steps, study.config.is_model, args.force)
         changes = study.extend(args.trajectories, duration)
-    except (StudyError, ConfigError) as err:
-        return _error(str(err))
-    if not changes:
-        _log("nothing to extend (the study already has that many trajectories and that end time)")
-    else:
-        _log("extended: " + ", ".join(f"{k} {v[0]:g} -> {v[1]:g}" for k, v in changes.items()))
-    if args.no_run:
-        return 0
-    return _execute(study, args)
+        if not changes:
+            _log("nothing to extend (the study already has that many trajectories and that end time)")
+        else:
+            _log("extended: " + ", ".join(f"{k} {v[0]:g} -> {v[1]:g}" for k, v in changes.items()))
+        if args.no_run:
+            return 0
+        return _execute(study, args)
 
 
 def _cmd_analyze(args) -> int:
-    from mapdyn.study.analyze import write_study_report
-    from mapdyn.study.folder import StudyError
+    from mapdyn.study.integrity import StudyLock
 
-    try:
-        study = _open_study(args.folder)
+    study = _open_study(args.folder)
+    with StudyLock(study.folder, "mapdyn analyze"):
+        _clean(study)
         add_study_log(study.folder)
-        out = write_study_report(study, log=_log)
-    except StudyError as err:
-        return _error(str(err), 1)
-    if out is None:
-        return _error("the analysis modules are not available", 1)
-    _log(f"report written to {out}")
-    return 0
+        rc = _report(study, args.allow_incomplete)
+    return rc if rc != 1 else 2  # nothing to report from is a property of the folder, not a bug
 
 
 def _cmd_export(args) -> int:
@@ -314,9 +401,12 @@ def _cmd_export(args) -> int:
 
 def _cmd_check(args) -> int:
     from mapdyn.study.config import ConfigError, load_study_config
+    from mapdyn.study.feasibility import check_analysis, check_electronic
 
     try:
         cfg = load_study_config(args.study)
+        check_analysis(cfg)
+        check_electronic(cfg)  # infeasible settings are refused before the backend runs
     except ConfigError as err:
         return _error(str(err))
     from mapdyn.study import preflight
@@ -362,9 +452,51 @@ def _main(argv: Sequence[str] | None) -> int:
                "validate": _cmd_validate}[args.command]
     configure_console()  # --quiet only drops the progress bar; messages and warnings stay
     warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"
-    code = handler(args)
+    code = _guarded(handler, args)
     sys.stdout.flush()
     return code
+
+
+def _guarded(handler, args) -> int:
+    """Run a command; user and environment faults become one line and exit 2, bugs exit 1."""
+    import errno
+    import os
+    import traceback
+
+    from mapdyn.study.checkpoint import CheckpointError
+    from mapdyn.study.config import ConfigError
+    from mapdyn.study.folder import StudyError
+    from mapdyn.study.integrity import LockedError, disk_full_message, is_disk_full
+
+    try:
+        return handler(args)
+    except (ConfigError, StudyError, LockedError) as err:
+        return _error(str(err))
+    except CheckpointError as err:
+        return _error(f"{err.path} is damaged ({err.reason})")
+    except BrokenPipeError:  # the reader left (`mapdyn status | head`): handled by main
+        raise
+    except OSError as err:
+        path = err.filename or ""
+        if is_disk_full(err):
+            return _error(disk_full_message(path or getattr(args, "folder", None) or getattr(args, "output", "") or ".",
+                                            getattr(err, "needed_bytes", None)))
+        if err.errno in (errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOTDIR, errno.EISDIR, errno.ENOENT,
+                         errno.EEXIST, errno.EDQUOT, errno.ENAMETOOLONG):
+            return _error(f"{path or 'a file'}: {os.strerror(err.errno)}")
+        if os.environ.get("MAPDYN_TRACEBACK"):
+            traceback.print_exc()
+        return _error(f"{type(err).__name__}: {err}", 2)
+    except MemoryError:
+        return _error("out of memory; reduce ensemble.batch, ensemble.workers or the study size")
+    except KeyboardInterrupt:
+        return 130
+    except Exception as err:  # a bug: one line, the traceback on request
+        if os.environ.get("MAPDYN_TRACEBACK"):
+            traceback.print_exc()
+        first = str(err).splitlines()[0] if str(err) else ""
+        return _error(f"internal error ({type(err).__name__}: {first}); set MAPDYN_TRACEBACK=1 for the traceback "
+                      f"and report it", 1)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import os
-import pickle
 from typing import Any, Callable
 
 import numpy as np
@@ -138,7 +137,7 @@ def load_trajectory_set(study: Study):
     if study.batched:
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
         for c, first, count in study.chunks():
-            segs = study.chunk_segments(c)
+            segs = study.checked_chunk_segments(c, full=True)[0]  # intact segments only
             if not segs:
                 continue
             parts = [read_h5(p)[0] for p, _ in segs]
@@ -158,7 +157,7 @@ def load_trajectory_set(study: Study):
             Ps.append(np.transpose(P[:T], (1, 0, 2)))
             idx.extend(range(first, first + count))
             s = status_map[c].status
-            stat.extend([s if s != "pending" else "running"] * count)
+            stat.extend([s if s in ("finished", "failed") else "running"] * count)  # damaged: partial
         if not acts:
             raise StudyError(f"{study.folder}: no results yet")
         model = make_model(cfg)
@@ -173,9 +172,11 @@ def load_trajectory_set(study: Study):
     masses = None
     initial_states = None
     if not cfg.is_model and os.path.exists(study.path(INITIAL_CONDITIONS)):
-        arrays, _ = read_h5(study.path(INITIAL_CONDITIONS), ["initial_states", "modes_pickle"])
+        from mapdyn.study.objects import decode_object
+
+        arrays, _ = read_h5(study.path(INITIAL_CONDITIONS))
         initial_states = arrays["initial_states"]
-        masses = np.asarray(pickle.loads(arrays["modes_pickle"]).masses_me)
+        masses = np.asarray(decode_object(arrays, "modes").masses_me)
         symbols = cfg.molecule.symbols
     for i in range(study.ntraj):
         store = TrajectoryStore(study.trajectory_folder(i))
@@ -202,7 +203,7 @@ def load_trajectory_set(study: Study):
         rows_P.append(P)
         idx.append(i)
         entry = status_map[i]
-        stat.append(entry.status if entry.status != "pending" else "running")
+        stat.append(entry.status if entry.status in ("finished", "failed") else "running")  # damaged: partial
         reasons.append(entry.reason)
         init_states.append(int(initial_states[i]) if initial_states is not None else int(cfg.initial.state))
     if not rows_a:

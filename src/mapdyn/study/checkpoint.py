@@ -13,8 +13,9 @@ File rules
 
 Trajectory folder (``trajectories/000042/``)
 -------------------------------------------------
-* ``state.h5`` — the complete :class:`mapdyn.driver.dynamics.DriverState` as pickle bytes (numpy arrays
-  pickle bit-for-bit; the backend ``guess`` travels inside it), plus readable copies of step,
+* ``state.h5`` — the complete :class:`mapdyn.driver.dynamics.DriverState` as named arrays plus a
+  JSON tree (``driver_state.*``, :mod:`mapdyn.study.objects`; arrays bit for bit, no pickle; the
+  backend ``guess`` travels inside it), plus readable copies of step,
   time, positions, momenta and mapping variables, and ``meta`` with ``chunks`` = the number of
   frame chunks it covers (it covers chunks 0 … chunks−1) and their digests.
 * ``state_previous.h5`` — the state before the last one (one older generation), the fallback.
@@ -32,16 +33,18 @@ previous generation; otherwise start from scratch.  Every problem found is repor
 from __future__ import annotations
 
 import dataclasses
+import errno
 import hashlib
+import io
 import json
 import os
-import pickle
 from typing import Any, Mapping, Sequence
 
 import h5py
 import numpy as np
 
 from mapdyn.files import atomic_write
+from mapdyn.study.objects import ObjectFormatError, decode_object, encode_object
 
 __all__ = ["CheckpointError", "write_h5", "read_h5", "file_digest",
            "frames_to_arrays", "TrajectoryStore", "RestartPoint", "STATE_FILE", "PREVIOUS_STATE_FILE",
@@ -91,29 +94,40 @@ def write_h5(path: str | os.PathLike, arrays: Mapping[str, Any], meta: Mapping[s
     """
     meta_text = json.dumps(dict(meta or {}), sort_keys=True, allow_nan=True)
 
+    buffer = io.BytesIO()  # HDF5 writes to memory; the disk sees one plain write (a full disk fails cleanly)
+    with h5py.File(buffer, "w") as h5:
+        h5.attrs["meta"] = meta_text
+        h5.attrs["meta_sha256"] = _digest(meta_text.encode())
+        h5.attrs["format_version"] = FORMAT_VERSION
+        for name, value in arrays.items():
+            kind = "array"
+            if isinstance(value, (bytes, bytearray)):
+                arr = np.frombuffer(bytes(value), dtype=np.uint8)
+                kind = "bytes"
+            else:
+                arr = np.asarray(value)
+                if arr.dtype == object:
+                    raise ValueError(f"array {name!r} has dtype object; store it as bytes")
+            if arr.ndim >= 1 and arr.size > 0:
+                ds = h5.create_dataset(name, data=arr, chunks=arr.shape, fletcher32=True)
+            else:
+                ds = h5.create_dataset(name, data=arr)
+            ds.attrs["sha256"] = _digest(_array_bytes(arr))
+            ds.attrs["kind"] = kind
+            if name in DATASET_UNITS:
+                ds.attrs["units"] = DATASET_UNITS[name]
+    data = buffer.getvalue()
+
     def write(tmp: str) -> None:
-        with h5py.File(tmp, "w") as h5:
-            h5.attrs["meta"] = meta_text
-            h5.attrs["meta_sha256"] = _digest(meta_text.encode())
-            h5.attrs["format_version"] = FORMAT_VERSION
-            for name, value in arrays.items():
-                kind = "array"
-                if isinstance(value, (bytes, bytearray)):
-                    arr = np.frombuffer(bytes(value), dtype=np.uint8)
-                    kind = "bytes"
-                else:
-                    arr = np.asarray(value)
-                    if arr.dtype == object:
-                        raise ValueError(f"array {name!r} has dtype object; store it as bytes")
-                if arr.ndim >= 1 and arr.size > 0:
-                    ds = h5.create_dataset(name, data=arr, chunks=arr.shape, fletcher32=True)
-                else:
-                    ds = h5.create_dataset(name, data=arr)
-                ds.attrs["sha256"] = _digest(_array_bytes(arr))
-                ds.attrs["kind"] = kind
-                if name in DATASET_UNITS:
-                    ds.attrs["units"] = DATASET_UNITS[name]
-            h5.flush()
+        try:
+            with open(tmp, "wb") as fh:
+                fh.write(data)
+        except OSError as err:
+            if err.errno in (errno.ENOSPC, errno.EDQUOT):
+                full = OSError(err.errno, os.strerror(err.errno), os.fspath(path))
+                full.needed_bytes = len(data)  # type: ignore[attr-defined]
+                raise full from None
+            raise
 
     return atomic_write(path, write, sync_directory)
 
@@ -244,13 +258,13 @@ class TrajectoryStore:
                                  "last_step": int(steps[-1]) if len(steps) else None},
                  sync_directory=False)  # the state write below syncs the directory
         digests = list(chunk_digests) + [file_digest(cpath)]
-        payload = pickle.dumps(state, protocol=pickle.HIGHEST_PROTOCOL)
         full_meta = dict(meta)
         full_meta.update({"chunks": chunks_before + 1, "chunk_sha256": digests, "step": int(state.step),
                           "time_au": float(state.time), "stopped": bool(state.stopped),
                           "stop_reason": state.stop_reason, "drift_flag": _jsonable(state.drift_flag)})
-        arrays = {"driver_state": payload, "step": np.int64(state.step), "time_au": np.float64(state.time),
+        arrays = {"step": np.int64(state.step), "time_au": np.float64(state.time),
                   "positions_bohr": state.positions, "momenta_au": state.momenta, "x": state.x, "p": state.p}
+        arrays.update(encode_object(state, "driver_state"))
         if os.path.exists(self.state_path):
             os.replace(self.state_path, self.previous_state_path)
         write_h5(self.state_path, arrays, full_meta)
@@ -258,23 +272,46 @@ class TrajectoryStore:
 
     # ------------------------------------------------------------------ reading
     def _load_state(self, path: str) -> tuple[Any, dict]:
-        arrays, meta = read_h5(path, ["driver_state"])
+        arrays, meta = read_h5(path)  # every dataset verified, not only the one restored
+        if "driver_state" in arrays:
+            raise CheckpointError(path, "holds a pickled restart state written by an older mapdyn; re-run the study "
+                                        "with the version that made it")
         try:
-            state = pickle.loads(arrays["driver_state"])
-        except Exception as err:
-            raise CheckpointError(path, f"restart state does not unpickle ({type(err).__name__})") from None
+            state = decode_object(arrays, "driver_state")
+        except ObjectFormatError as err:
+            raise CheckpointError(path, f"restart state cannot be read: {err}") from None
         return state, meta
 
-    def _check_chunks(self, meta: dict, path: str) -> None:
+    def verified_meta(self, full: bool = True) -> tuple[dict | None, list[str]]:
+        """(meta of the newest state that verifies, problems found) without unpickling anything.
+
+        ``full``: every dataset checksum of the state and the recorded digest of every frame chunk
+        it covers; otherwise the metadata checksum and the chunk files' presence only."""
+        problems: list[str] = []
+        for path in (self.state_path, self.previous_state_path):
+            if not os.path.exists(path):
+                continue
+            try:
+                _, meta = read_h5(path, None if full else [])
+                self._check_chunks(meta, path, digests=full, read=False)
+                return meta, problems
+            except CheckpointError as err:
+                problems.append(f"{os.path.basename(err.path)}: {err.reason}")
+        return None, problems
+
+    def _check_chunks(self, meta: dict, path: str, digests: bool = True, read: bool = True) -> None:
         n = int(meta.get("chunks", 0))
+        check = digests
         digests = meta.get("chunk_sha256", [])
         for c in range(n):
             cp = self.chunk_path(c)
-            if not os.path.exists(cp):
-                raise CheckpointError(cp, f"frame chunk {c} named by {os.path.basename(path)} is missing")
-            if c < len(digests) and file_digest(cp) != digests[c]:
+            if not os.path.isfile(cp):
+                what = "is not a file" if os.path.exists(cp) else "is missing"
+                raise CheckpointError(cp, f"frame chunk {c} named by {os.path.basename(path)} {what}")
+            if check and (c >= len(digests) or file_digest(cp) != digests[c]):
                 raise CheckpointError(cp, f"frame chunk {c} differs from the digest recorded in {os.path.basename(path)}")
-            read_h5(cp)
+            if read:
+                read_h5(cp)
 
     def read_meta(self) -> dict | None:
         """Meta of the current state file (cheap, no chunk checks), or None if absent/unreadable."""
@@ -315,7 +352,7 @@ class TrajectoryStore:
         if point.state is None:
             for path in (self.state_path, self.previous_state_path):
                 if os.path.exists(path):
-                    os.unlink(path)
+                    _remove(path)
         elif point.source == self.previous_state_path:
             os.replace(self.previous_state_path, self.state_path)
         self.discard_after(point.chunks)
@@ -331,7 +368,17 @@ class TrajectoryStore:
                 except ValueError:
                     continue
                 if idx >= chunks:
-                    os.unlink(os.path.join(self.folder, name))
+                    _remove(os.path.join(self.folder, name))
+
+
+def _remove(path: str) -> None:
+    """Delete a file, or a folder found where a file belongs."""
+    if os.path.isdir(path) and not os.path.islink(path):
+        import shutil
+
+        shutil.rmtree(path)
+    else:
+        os.unlink(path)
 
 
 def _jsonable(value: Any) -> Any:

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import os
-import pickle
 import time
 from typing import Callable
 
@@ -13,11 +12,13 @@ import numpy as np
 
 from mapdyn.study.backend_factory import _ground_state_backend, make_backend
 from mapdyn.study.checkpoint import (
+    CheckpointError,
     read_h5,
     write_h5,
 )
 from mapdyn.study.config import StudyConfig
 from mapdyn.study.folder import INITIAL_CONDITIONS, Study, StudyError
+from mapdyn.study.objects import decode_object, encode_object
 
 
 # ----------------------------------------------------------------------------------------------
@@ -66,15 +67,21 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
     path = study.path(INITIAL_CONDITIONS)
     n = study.ntraj
     if os.path.exists(path):
+        try:
+            read_h5(path)
+        except CheckpointError as err:  # recomputed from the same seeds: the same rows come back
+            log(f"{err}; recomputing the initial conditions")
+            os.unlink(path)
+    if os.path.exists(path):
         arrays, meta = read_h5(path)
         have = int(meta["trajectories"])
         if have >= n:
             return path
-        modes = pickle.loads(arrays["modes_pickle"])
+        modes = decode_object(arrays, "modes")
         backend = make_backend(config)
         log(f"sampling initial conditions for trajectories {have}..{n - 1}")
         rows = _sample_rows(config, modes, range(have, n))
-        guess = pickle.loads(arrays["reference_guess_pickle"]) if "reference_guess_pickle" in arrays else None
+        guess = decode_object(arrays, "reference_guess") if "reference_guess.tree" in arrays else None
         states, extra = _choose_states(config, backend, rows["positions_bohr"], guess)
         arrays["positions_bohr"] = np.concatenate([arrays["positions_bohr"], rows["positions_bohr"]])
         arrays["momenta_au"] = np.concatenate([arrays["momenta_au"], rows["momenta_au"]])
@@ -116,13 +123,14 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
     ref = backend.compute(x, guess=None, need_gradients=False)
     states, extra = _choose_states(config, backend, rows["positions_bohr"], ref.guess)
     arrays = {"reference_positions_bohr": x, "hessian": hess.hessian, "frequencies_cm": modes.frequencies_cm,
-              "modes_pickle": pickle.dumps(modes), "positions_bohr": rows["positions_bohr"],
+              "positions_bohr": rows["positions_bohr"],
               "momenta_au": rows["momenta_au"], "initial_states": states,
               "reference_energies_hartree": np.asarray(ref.energies, dtype=float),
               "rng_states_json": json.dumps(rows["rng_states"]).encode()}
+    arrays.update(encode_object(modes, "modes"))
     try:
-        arrays["reference_guess_pickle"] = pickle.dumps(ref.guess)
-    except Exception:  # an unpicklable guess only costs the warm start of later excitation choices
+        arrays.update(encode_object(ref.guess, "reference_guess"))
+    except TypeError:  # a guess that cannot be stored only costs the warm start of later excitation choices
         pass
     arrays.update(extra)
     meta = {"trajectories": n, "level_of_theory": level, "hessian_method": hess.method, **opt_info,
@@ -138,7 +146,10 @@ def initial_row(study: Study, index: int) -> tuple[np.ndarray, np.ndarray, int, 
     arrays, meta = read_h5(study.path(INITIAL_CONDITIONS))
     if index >= int(meta["trajectories"]):
         raise StudyError(f"initial conditions hold {meta['trajectories']} rows, trajectory {index} asked")
-    modes = pickle.loads(arrays["modes_pickle"])
+    if "modes_pickle" in arrays:
+        raise StudyError(f"{study.path(INITIAL_CONDITIONS)} holds pickled data written by an older mapdyn; re-run "
+                         f"the study with the version that made it")
+    modes = decode_object(arrays, "modes")
     rng_state = json.loads(arrays["rng_states_json"].decode())[index]
     return (arrays["positions_bohr"][index], arrays["momenta_au"][index], int(arrays["initial_states"][index]),
             rng_state, np.asarray(modes.masses_me))
