@@ -15,7 +15,8 @@ Layout::
 
 Status is never stored separately: it is read from these files every time, so it cannot
 disagree with them.  ``running.json`` (process id and host) marks work in progress; a marker
-whose process on this host no longer exists is ignored.
+whose process on this host no longer exists is ignored.  Runs on SLURM/PBS also keep
+``cluster.json`` (their batch jobs, :mod:`mapdyn.study.batch_jobs`).
 
 Units: times in the manifest in a.u. (``duration_au``) and fs (``duration_fs``, for reading).
 """
@@ -91,7 +92,11 @@ def marker_active(path: str) -> bool:
 
 
 def write_marker(path: str) -> None:
-    write_json(path, {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()})
+    info = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+    job = os.environ.get("SLURM_JOB_ID") or os.environ.get("PBS_JOBID")
+    if job:  # inside a batch job: `mapdyn status` lists the trajectories of each job
+        info["job"] = job
+    write_json(path, info)
 
 
 @dataclasses.dataclass

@@ -37,6 +37,7 @@ import numpy as np
 from mapdyn.files import write_json
 from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
+from mapdyn.study.cluster import dask_worker_leaving
 from mapdyn.study.folder import CHUNKS, Study, write_marker
 from mapdyn.study.initial_conditions import initial_row
 from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
@@ -79,7 +80,10 @@ def _worker_init() -> None:
 
 
 def _orphaned() -> bool:
-    return _PARENT_PID is not None and os.getppid() != _PARENT_PID
+    """The runner that started this local worker died, or this Dask worker is shutting down (its
+    batch job was cancelled or ran out of time): the task must stop writing, its trajectory is
+    re-run elsewhere from the last checkpoint."""
+    return (_PARENT_PID is not None and os.getppid() != _PARENT_PID) or dask_worker_leaving()
 
 
 def _open(study_dir: str) -> Study:
