@@ -32,7 +32,7 @@ sys.path.insert(0, str(HERE.parent))
 from conftest import ENV, tully1_study  # noqa: E402
 from local_slurm import LocalSlurm, unavailable_reason  # noqa: E402
 
-pytestmark = pytest.mark.slow
+pytestmark = [pytest.mark.slow, pytest.mark.slurm]
 
 #: Dask drops a lost batch worker after `distributed.deploy.lost-worker-timeout` (default 15 s)
 #: before mapdyn submits its replacement; 2 s keeps the test short.
