@@ -155,6 +155,7 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
             return jobs if len(jobs) == 2 and all(states.get(j) == "RUNNING" for j in jobs) else None
 
         jobs = _wait("two running worker jobs", two_running_jobs, proc)
+        _log(tmp_path, f"jobs {sorted(jobs)} RUNNING {time.time() - t0:.1f} s after 'mapdyn run' started")
 
         def trajectory_mid_run():  # (index, job) of a trajectory past its first checkpoint, in a job
             study = Study(str(folder))
