@@ -21,7 +21,11 @@ Rules the executor enforces or documents:
   checkpoint or recomputes it from its own seeded stream), so a re-run gives the same result.  A
   task that takes down ``allowed_failures`` workers is given up (Dask ``KilledWorker``) and the
   runner counts it as failed.  Exceptions raised inside a task are retried ``task_retries`` times
-  (for transient trouble such as a briefly unavailable file system).
+  (for transient trouble such as a briefly unavailable file system).  On SLURM/PBS the executor keeps
+  ``workers`` requested: a worker job that was cancelled or ended is submitted again once Dask
+  has dropped its worker, and listeners (``cluster.json`` for ``mapdyn status``) hear of the new
+  job.  A task in a worker that is closing stops at its next checkpoint
+  (:func:`dask_worker_leaving`), so it does not write while its re-run does (docs/cluster.md).
 * **Shared file system.**  Workers write trajectory files straight into the study folder, so the
   study folder must be visible at the same absolute path on every worker node (an NFS/Lustre/GPFS
   home or project directory; not node-local scratch).  Results are therefore "in the same study
