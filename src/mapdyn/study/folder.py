@@ -30,6 +30,7 @@ import socket
 import time
 
 from mapdyn.files import read_json, write_json
+from mapdyn.study.batch_jobs import current_batch_job
 from mapdyn.study.checkpoint import (
     CheckpointError,
     TrajectoryStore,
@@ -93,7 +94,7 @@ def marker_active(path: str) -> bool:
 
 def write_marker(path: str) -> None:
     info = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
-    job = os.environ.get("SLURM_JOB_ID") or os.environ.get("PBS_JOBID")
+    job = current_batch_job()
     if job:  # inside a batch job: `mapdyn status` lists the trajectories of each job
         info["job"] = job
     write_json(path, info)
