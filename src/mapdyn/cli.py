@@ -188,6 +188,12 @@ def _execute(study, args) -> int:
         _log(f"running {study.ntraj} trajectories ({kind}) of {study.nsteps} steps on "
              f"{'Dask' if executor is not None else f'{workers} local process(es)'}; folder {study.folder}")
         progress = _progress_printer(args.quiet)
+        recorder = None
+        if executor is not None and getattr(executor, "system", None) in ("slurm", "pbs"):
+            from mapdyn.study.batch_jobs import JobRecorder
+
+            recorder = JobRecorder(study.folder, executor.system, executor.description)
+            executor.add_job_listener(recorder)
         try:
             summary = run_ensemble(study, executor, None if executor is not None else workers,
                                    retry_failed=getattr(args, "retry_failed", False), progress=progress,
@@ -195,6 +201,8 @@ def _execute(study, args) -> int:
         finally:
             if executor is not None:
                 executor.shutdown()
+            if recorder is not None:
+                recorder.close()
         if progress is not None:
             progress.close()
     except KeyboardInterrupt:
@@ -340,10 +348,16 @@ def _cmd_status(args) -> int:
         status = study.status(verify=not getattr(args, "quick", False))
     except StudyError as err:
         return _error(str(err))
+    from mapdyn.study.batch_jobs import jobs_report, jobs_text
+
+    jobs = jobs_report(study)
     if getattr(args, "json", False):
-        print(json.dumps(status.as_dict(), indent=1))
+        out = status.as_dict()
+        if jobs is not None:
+            out["batch_jobs"] = jobs
+        print(json.dumps(out, indent=1))
     else:
-        print(status.text())
+        print(status.text() + (("\n" + jobs_text(jobs)) if jobs is not None else ""))
     return 0
 
 

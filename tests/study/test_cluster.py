@@ -97,7 +97,8 @@ def test_missing_jobqueue_is_a_one_line_error(monkeypatch):
 
 
 def test_jobqueue_arguments_give_one_thread_per_worker(monkeypatch):
-    # dask-jobqueue is optional and not installed here; a recording stand-in checks what we ask of it.
+    # A recording stand-in for dask-jobqueue checks what we ask of it (no batch system needed;
+    # tests/cluster runs the real one on SLURM).
     calls = {}
 
     class Recorder:
@@ -256,3 +257,76 @@ def test_run_command_with_scheduler_address(dask_executor, tmp_path):
         assert run_task(local.folder, i).status == "finished"
     _same_results(load_trajectory_set(local), load_trajectory_set(study))
     assert dask_executor.submit(pow, 3, 2).result(timeout=60) == 9  # the cluster outlives the command
+
+
+# ---------------------------------------------------------------------------------------------
+# Batch jobs: a lost job is submitted again, recorded in cluster.json and shown by `mapdyn status`
+# ---------------------------------------------------------------------------------------------
+
+class _FakeJobCluster:
+    """Stand-in for a dask-jobqueue cluster: ``workers`` maps worker names to jobs; ``scale(n)``
+    submits a new job for every name that has lost its job (as SpecCluster does)."""
+
+    def __init__(self):
+        self.workers = {"w0": types.SimpleNamespace(job_id="101"), "w1": types.SimpleNamespace(job_id="102")}
+        self.next_id = 103
+        self.scale_calls = []
+
+    def scale(self, n=None):
+        self.scale_calls.append(n)
+        for name in ("w0", "w1")[:n]:
+            if name not in self.workers:
+                self.workers[name] = types.SimpleNamespace(job_id=str(self.next_id))
+                self.next_id += 1
+
+    def close(self):
+        pass
+
+
+def test_lost_batch_job_is_submitted_again_and_recorded(tmp_path):
+    from mapdyn.files import read_json
+    from mapdyn.study.batch_jobs import JobRecorder
+
+    client = types.SimpleNamespace(get_executor=lambda **kw: types.SimpleNamespace(shutdown=lambda wait: None),
+                                   close=lambda: None)
+    fake = _FakeJobCluster()
+    executor = cluster.DaskExecutor(client, fake, description="fake slurm", system="slurm", keep_workers=2,
+                                    watch_interval=0.02)
+    recorder = JobRecorder(str(tmp_path), "slurm", executor.description)
+    executor.add_job_listener(recorder)
+    assert read_json(tmp_path / "cluster.json")["jobs"] == {"w0": "101", "w1": "102"}
+    del fake.workers["w1"]  # job 102 cancelled: the cluster has dropped its worker
+    deadline = time.time() + 10
+    while time.time() < deadline and read_json(tmp_path / "cluster.json")["jobs"].get("w1") != "103":
+        time.sleep(0.02)
+    executor.shutdown()
+    recorder.close()
+    record = read_json(tmp_path / "cluster.json")
+    assert record["jobs"] == {"w0": "101", "w1": "103"} and record["all_jobs"] == ["101", "102", "103"]
+    assert record["ended"] and set(fake.scale_calls) == {2}
+
+
+def test_status_lists_batch_jobs_and_their_trajectories(tmp_path, monkeypatch, capsys):
+    from mapdyn.cli import main
+    from mapdyn.files import write_json
+    from mapdyn.study.batch_jobs import JobRecorder
+
+    study = _study(tmp_path, OTF_STUDY, "jobs")
+    JobRecorder(study.folder, "slurm")({"w0": "101", "w1": "103"})
+    os.makedirs(study.trajectory_folder(2), exist_ok=True)
+    write_json(os.path.join(study.trajectory_folder(2), "running.json"),
+               {"pid": 1, "host": "node-elsewhere", "started": 0.0, "job": "103"})
+    # stand-in squeue answering in the format we ask for (-o '%i|%T|%M|%N'): only job 103 is listed
+    bindir = tmp_path / "bin"
+    bindir.mkdir()
+    (bindir / "squeue").write_text("#!/bin/sh\necho '103|RUNNING|1:05|node7'\n")
+    (bindir / "squeue").chmod(0o755)
+    monkeypatch.setenv("PATH", f"{bindir}{os.pathsep}{os.environ['PATH']}")
+    assert main(["status", study.folder]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert any(ln.startswith("batch jobs (slurm): run on") and "active" in ln for ln in lines)
+    assert any(ln.split() == ["job", "101", "gone"] for ln in lines)
+    assert any(ln.split() == ["job", "103", "RUNNING", "1:05", "node7", "trajectories", "2"] for ln in lines)
+    assert main(["status", study.folder, "--json"]) == 0
+    jobs = __import__("json").loads(capsys.readouterr().out)["batch_jobs"]["jobs"]
+    assert [(j["job"], j["state"], j["trajectories"]) for j in jobs] == [("101", "gone", []), ("103", "RUNNING", [2])]

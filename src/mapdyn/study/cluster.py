@@ -21,7 +21,11 @@ Rules the executor enforces or documents:
   checkpoint or recomputes it from its own seeded stream), so a re-run gives the same result.  A
   task that takes down ``allowed_failures`` workers is given up (Dask ``KilledWorker``) and the
   runner counts it as failed.  Exceptions raised inside a task are retried ``task_retries`` times
-  (for transient trouble such as a briefly unavailable file system).
+  (for transient trouble such as a briefly unavailable file system).  On SLURM/PBS the executor keeps
+  ``workers`` requested: a worker job that was cancelled or ended is submitted again once Dask
+  has dropped its worker, and listeners (``cluster.json`` for ``mapdyn status``) hear of the new
+  job.  A task in a worker that is closing stops at its next checkpoint
+  (:func:`dask_worker_leaving`), so it does not write while its re-run does (docs/cluster.md).
 * **Shared file system.**  Workers write trajectory files straight into the study folder, so the
   study folder must be visible at the same absolute path on every worker node (an NFS/Lustre/GPFS
   home or project directory; not node-local scratch).  Results are therefore "in the same study
@@ -38,6 +42,9 @@ import dataclasses
 import difflib
 import functools
 import os
+import sys
+import threading
+import time
 from typing import Any, Callable, Mapping
 
 from mapdyn.study.threads import SINGLE_THREAD_ENV, use_single_thread
@@ -50,6 +57,7 @@ __all__ = [
     "cluster_executor",
     "local_cluster_executor",
     "single_threaded_call",
+    "dask_worker_leaving",
     "CLUSTER_KEYS",
     "SYSTEMS",
 ]
@@ -243,6 +251,22 @@ def single_threaded_call(fn: Callable, *args, **kwargs):
     return fn(*args, **kwargs)
 
 
+def dask_worker_leaving() -> bool:
+    """True inside a Dask worker that is closing (cancelled batch job, walltime, lost scheduler).
+
+    The scheduler re-runs that worker's tasks elsewhere as soon as it has left, so a task still
+    computing there must stop writing the trajectory's files at its next checkpoint.
+    """
+    mod = sys.modules.get("distributed")
+    if mod is None:
+        return False
+    try:
+        worker = mod.get_worker()
+    except ValueError:  # not inside a Dask task
+        return False
+    return getattr(worker.status, "name", "") in ("closing", "closed", "failed")
+
+
 def _import_distributed():
     try:
         import distributed
@@ -262,14 +286,23 @@ class DaskExecutor(cf.Executor):
     """
 
     def __init__(self, client: Any, cluster: Any = None, task_retries: int = 1, description: str = "",
-                 expected_workers: int | None = None):
+                 expected_workers: int | None = None, system: str | None = None,
+                 keep_workers: int | None = None, watch_interval: float = 2.0):
         self.client = client
         self.cluster = cluster
         self.expected_workers = expected_workers
+        self.system = system
         self.task_retries = int(task_retries)
         self.description = description or f"Dask scheduler {client.scheduler.address}"
         self._inner = client.get_executor(pure=False, retries=self.task_retries)
         self._closed = False
+        self._job_listeners: list[Callable[[dict[str, str]], None]] = []
+        self._watch_stop = threading.Event()
+        self._watcher: threading.Thread | None = None
+        if keep_workers is not None and cluster is not None:
+            self._watcher = threading.Thread(target=self._watch_jobs, args=(int(keep_workers), float(watch_interval)),
+                                             name="mapdyn-batch-jobs", daemon=True)
+            self._watcher.start()
 
     # -------------------------------------------------------------- executor protocol
     def submit(self, fn: Callable, /, *args, **kwargs) -> cf.Future:
@@ -281,6 +314,9 @@ class DaskExecutor(cf.Executor):
         if self._closed:
             return
         self._closed = True
+        self._watch_stop.set()
+        if self._watcher is not None:
+            self._watcher.join(timeout=30)
         try:
             self._inner.shutdown(wait=wait and not cancel_futures)
         finally:
@@ -302,6 +338,46 @@ class DaskExecutor(cf.Executor):
         """Tasks that can run at once: worker threads connected now, or the workers requested from
         a batch system / local cluster if more (they may still be queued); at least 1."""
         return max(1, sum(self.worker_threads.values()), int(self.expected_workers or 0))
+
+    def batch_jobs(self) -> dict[str, str]:
+        """Batch job id of each worker job this executor started, by Dask worker name (empty
+        when the workers are not batch jobs)."""
+        workers = getattr(self.cluster, "workers", None) if self.system in ("slurm", "pbs") else None
+        if not workers:
+            return {}
+        for _ in range(5):  # the cluster's event loop may change the dict while we copy it
+            try:
+                items = list(workers.items())
+                break
+            except RuntimeError:
+                time.sleep(0.01)
+        else:
+            return {}
+        return {str(name): str(job.job_id) for name, job in items if getattr(job, "job_id", None)}
+
+    def add_job_listener(self, listener: Callable[[dict[str, str]], None]) -> None:
+        """Call ``listener(batch_jobs())`` now and whenever the set of batch jobs changes."""
+        self._job_listeners.append(listener)
+        listener(self.batch_jobs())
+
+    def _watch_jobs(self, keep: int, interval: float) -> None:
+        """Keep ``keep`` workers requested: a worker job that was cancelled, pre-empted or ran out
+        of wall time is dropped by the cluster once its worker is gone (after Dask's
+        ``distributed.deploy.lost-worker-timeout``) and submitted again here; tell the listeners."""
+        last: dict[str, str] = {}
+        while not self._watch_stop.wait(interval):
+            try:
+                self.cluster.scale(n=keep)
+                jobs = self.batch_jobs()
+            except Exception:  # the cluster is closing; the next round or shutdown settles it
+                continue
+            if jobs != last:
+                last = jobs
+                for listener in list(self._job_listeners):
+                    try:
+                        listener(jobs)
+                    except Exception:  # a status file that cannot be written must not stop the run
+                        pass
 
     def worker_pids(self) -> dict[str, int]:
         """Process id of each worker, by address (for diagnostics)."""
@@ -407,7 +483,8 @@ def cluster_executor(settings: ClusterSettings | Mapping[str, Any] | None = None
             cluster = _jobqueue_cluster(settings)
         client = distributed.Client(cluster)
         executor = DaskExecutor(client, cluster, settings.task_retries, settings.describe(),
-                                expected_workers=settings.workers)
+                                expected_workers=settings.workers, system=settings.system,
+                                keep_workers=settings.workers)
         _wait_for_first_worker(client, settings.connect_timeout, f"the {settings.system} cluster")
         return executor
     target = settings.scheduler

@@ -19,8 +19,9 @@ Layout::
 
 Status is never stored separately: it is read from these files every time, so it cannot
 disagree with them; every checksum and recorded digest is verified on the way and damaged tasks
-are reported as "damaged" with the reason.  ``running.json`` (process id and host) marks work in progress; a marker
-whose process on this host no longer exists is ignored.
+are reported as "damaged" with the reason.  ``running.json`` (process id and host) marks work in
+progress; a marker whose process on this host no longer exists is ignored.  Runs on SLURM/PBS
+also keep ``cluster.json`` (their batch jobs, :mod:`mapdyn.study.batch_jobs`).
 
 Units: times in the manifest in a.u. (``duration_au``) and fs (``duration_fs``, for reading).
 """
@@ -36,6 +37,7 @@ import socket
 import time
 
 from mapdyn.files import atomic_write_text, read_json, write_json
+from mapdyn.study.batch_jobs import current_batch_job
 from mapdyn.study.checkpoint import (
     CheckpointError,
     TrajectoryStore,
@@ -104,7 +106,11 @@ def marker_active(path: str) -> bool:
 
 
 def write_marker(path: str) -> None:
-    write_json(path, {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()})
+    info = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+    job = current_batch_job()
+    if job:  # inside a batch job: `mapdyn status` lists the trajectories of each job
+        info["job"] = job
+    write_json(path, info)
 
 
 @dataclasses.dataclass

@@ -39,6 +39,7 @@ import numpy as np
 from mapdyn.files import write_json
 from mapdyn.study.backend_factory import make_backend, make_model
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
+from mapdyn.study.cluster import dask_worker_leaving
 from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings, record_warnings
 from mapdyn.study.folder import CHUNKS, Study, write_marker
 from mapdyn.study.initial_conditions import initial_row
@@ -110,7 +111,10 @@ def _die_with_parent() -> None:
 
 
 def _orphaned() -> bool:
-    return _PARENT_PID is not None and os.getppid() != _PARENT_PID
+    """The runner that started this local worker died, or this Dask worker is shutting down (its
+    batch job was cancelled or ran out of time): the task must stop writing, its trajectory is
+    re-run elsewhere from the last checkpoint."""
+    return (_PARENT_PID is not None and os.getppid() != _PARENT_PID) or dask_worker_leaving()
 
 
 def _open(study_dir: str) -> Study:
