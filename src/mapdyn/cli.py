@@ -20,7 +20,7 @@ import warnings
 from typing import Sequence
 
 from mapdyn import __version__
-from mapdyn.logs import LOG_FILE, add_study_log, configure_console
+from mapdyn.logs import LOG_FILE, add_study_log, close_study_logs, configure_console
 from mapdyn.study.cluster import ClusterError
 
 __all__ = ["main", "build_parser"]
@@ -453,6 +453,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 141
+    finally:
+        close_study_logs()
 
 
 def _main(argv: Sequence[str] | None) -> int:

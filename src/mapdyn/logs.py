@@ -13,7 +13,7 @@ import logging
 import os
 import sys
 
-__all__ = ["LOG_FILE", "configure_console", "add_study_log"]
+__all__ = ["LOG_FILE", "configure_console", "add_study_log", "close_study_logs"]
 
 #: Name of the per-study log file.
 LOG_FILE = "mapdyn.log"
@@ -74,3 +74,12 @@ def add_study_log(folder: str | os.PathLike) -> str | None:
     if _ROOT.level == logging.NOTSET or _ROOT.level > logging.INFO:
         _ROOT.setLevel(logging.INFO)
     return path
+
+
+def close_study_logs() -> None:
+    """Detach and close every study log file (end of a command: no file stays open, so an
+    in-process caller can move or unmount the folder)."""
+    for h in list(_ROOT.handlers):
+        if isinstance(h, logging.FileHandler):
+            _ROOT.removeHandler(h)
+            h.close()
