@@ -90,7 +90,7 @@ def main() -> None:
 
     window = (9.0, 10.8)
     starts = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths,
-                                   "window", energy_range_ev=window, seed=args.seed)
+                                   "energy_range", energy_range_ev=window, seed=args.seed)
     counts = {f"S{s}": int(np.sum(starts.state == s)) for s in np.unique(starts.state)}
     print(f"window {window} eV: {starts.sample_index.size} of {args.samples} geometries start, by state {counts}")
 
