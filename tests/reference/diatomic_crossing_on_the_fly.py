@@ -131,6 +131,18 @@ def make_backend():
                          nelecas=KCL_SCAN["nelecas"], nstates=2, cas_orbitals=KCL_SCAN["cas_orbitals"])
 
 
+def stored_guess(bundle_npz: str, backend, r_start: float):
+    """The carried start orbitals stored in the bundle, as a CASSCFGuess in the centre-of-mass frame."""
+    import dataclasses
+
+    from mapdyn.backends.pyscf.casscf import CASSCFGuess
+
+    with np.load(bundle_npz, allow_pickle=False) as d:
+        g = CASSCFGuess(positions_bohr=np.array(d["guess/positions_bohr"]), mo_coeff=np.array(d["guess/mo_coeff"]),
+                        ci=np.array(d["guess/ci"]), energies=np.array(d["guess/energies"]), signature=backend.signature)
+    return dataclasses.replace(g, positions_bohr=centre_of_mass_frame(r_start, atomic_masses_amu(KCL_SCAN["symbols"])))
+
+
 def centre_of_mass_frame(r: float, masses_amu) -> np.ndarray:
     """K at −(m_Cl/M) r ê, Cl at +(m_K/M) r ê (Bohr), shape (2, 3)."""
     mA, mB = masses_amu
@@ -436,6 +448,12 @@ def report(work: str, bundle: str = BUNDLE, model_ensemble: int = 0) -> str:
                   f"the same final windows as the per-trajectory one for the on-the-fly set: {all(same)}."]
         store["model_ensemble_windows"] = w
     store["skipped"] = np.array(skipped, dtype=int)
+    guess_path = os.path.join(work, f"guess_{runs[0]['meta']['r_start']:.3f}.pkl")
+    if os.path.exists(guess_path):  # the carried start orbitals, so a rerun can skip the carry
+        with open(guess_path, "rb") as fh:
+            g = pickle.load(fh)
+        for name in ("positions_bohr", "mo_coeff", "ci", "energies"):
+            store[f"guess/{name}"] = np.asarray(getattr(g, name))
     text = "\n".join(lines) + "\n"
     with open(bundle + ".md.tmp", "w") as fh:
         fh.write(text)
