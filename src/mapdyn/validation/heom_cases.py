@@ -15,7 +15,8 @@ from importlib import resources
 import numpy as np
 
 from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
-from mapdyn.core.options import MethodOptions
+from mapdyn.core.options import HOPPING_METHODS, MethodOptions
+from mapdyn.core.populations import population_weights
 from mapdyn.core.propagators import run_diabatic
 from mapdyn.models.spin_boson import (
     ExcitonTransferModel,
@@ -62,9 +63,10 @@ def _run(model, data: dict, options: MethodOptions, ntraj: int, dt: float, seed:
                        integrator=integrator)
     pops, missing = run.populations("diabatic")
     e = run.actions_diabatic
-    if options.method == "ehrenfest":
+    if options.method in ("ehrenfest", "spin"):
         accepted = np.full(t_ref.size, ntraj)
-        w = e / e.sum(axis=2, keepdims=True)
+        w = population_weights(e, options)
+        w = w / w.sum(axis=2, keepdims=True)
         se = w.std(axis=1, ddof=1) / np.sqrt(ntraj)
         sz_err = (w[:, :, 0] - w[:, :, 1]).std(axis=1, ddof=1) / np.sqrt(ntraj) if e.shape[2] == 2 else None
     else:
@@ -78,6 +80,12 @@ def spin_boson_mapping(name: str, options: MethodOptions, ntraj: int, nmodes: in
                        seed: int = 2024) -> MappingResult:
     """Mapping ⟨σz⟩(t) for spin-boson case ``name`` (units of Δ, read as Hartree atomic units with
     Δ = 1 Eh); ``nmodes`` Debye modes, time step ``dt`` (1/Δ)."""
+    if options.method in HOPPING_METHODS:
+        if options.method == "mash":
+            raise ValueError("method='mash' has no diabatic-population estimator here (its coherence estimators "
+                             "are not implemented); the spin-boson cases need one")
+        from mapdyn.validation.hopping_runs import spin_boson_hopping
+        return spin_boson_hopping(name, options, ntraj, nmodes, dt, seed)
     d = load_reference(name)
     model = SpinBoson.debye(float(d["epsilon"]), float(d["delta"]), float(d["lam"]), float(d["omega_c"]), nmodes)
     return _run(model, d, options, ntraj, dt, seed)
