@@ -42,7 +42,7 @@ from mapdyn.core.propagators import propagate_amplitudes
 from mapdyn.core.sampling import EnsembleState, trajectory_generator
 
 __all__ = ["HoppingState", "UniformStreams", "hopping_state", "HoppingIntegrator", "HoppingRun", "run_hopping",
-           "DECOHERENCE_C", "nonadiabatic_coupling", "rescale_momentum"]
+           "DECOHERENCE_C", "adiabatic_states", "nonadiabatic_coupling", "rescale_momentum"]
 
 #: Energy-based decoherence constant C (Eh), the value recommended by Granucci & Persico (2007), from memory.
 DECOHERENCE_C = 0.1
@@ -121,7 +121,7 @@ def hopping_state(model: DiabaticModel, ens: EnsembleState, options: MethodOptio
     F = model.nstates
     if options.method == "mash" and F != 2:
         raise ValueError(f"method='mash' supports two states (model has {F}); the multi-state form is not implemented")
-    _, U = model.adiabatic(ens.R)
+    _, U = adiabatic_states(model, ens.R)
     z = ens.x + 1j * ens.p
     pop = np.abs(np.einsum("nka,nk->na", U, z)) ** 2
     pop /= pop.sum(axis=1, keepdims=True)
@@ -148,6 +148,28 @@ def _propagate(z: np.ndarray, H: np.ndarray, t) -> np.ndarray:
     w = np.einsum("nlk,nl->nk", U, z)
     ph = np.exp(-1j * lam * np.reshape(t, (-1, 1)))
     return np.einsum("nkl,nl->nk", U, ph * w)
+
+
+def adiabatic_states(model: DiabaticModel, R: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``model.adiabatic(R)``; for two states and the base-class eigensolver, the same result in closed form
+    (E = a ∓ √(b² + v²), columns (−sin θ, cos θ), (cos θ, sin θ) with tan 2θ = 2v/(H00 − H11), then
+    the base class's sign rule: the largest-magnitude component of each column positive)."""
+    if model.nstates != 2 or type(model).adiabatic is not DiabaticModel.adiabatic:
+        return model.adiabatic(R)
+    H = model.hamiltonian(R)
+    a = 0.5 * (H[:, 0, 0] + H[:, 1, 1])
+    b = 0.5 * (H[:, 0, 0] - H[:, 1, 1])
+    v = H[:, 0, 1]
+    r = np.sqrt(b * b + v * v)
+    E = np.stack([a - r, a + r], axis=1)
+    th = 0.5 * np.arctan2(v, b)
+    c, s = np.cos(th), np.sin(th)
+    U = np.empty(H.shape)
+    U[:, 0, 0], U[:, 1, 0], U[:, 0, 1], U[:, 1, 1] = -s, c, c, s
+    big = np.argmax(np.abs(U), axis=1)
+    sign = np.sign(np.take_along_axis(U, big[:, None, :], axis=1))[:, 0, :]
+    sign[sign == 0] = 1.0
+    return E, U * sign[:, None, :]
 
 
 def nonadiabatic_coupling(model: DiabaticModel, R: np.ndarray, E: np.ndarray, U: np.ndarray,
@@ -219,19 +241,19 @@ class HoppingIntegrator:
             z = _propagate(z, self.model.hamiltonian(R), 0.5 * np.asarray(h))
             R = R + hc * P / self.m
             z = _propagate(z, self.model.hamiltonian(R), 0.5 * np.asarray(h))
-        E, U = self.model.adiabatic(R)
+        E, U = adiabatic_states(self.model, R)
         F1 = self._force(R, U, active)
         P = P + 0.5 * hc * F1
         return R, P, z, E, U, F1
 
     def _refresh(self, state: HoppingState):
-        E, U = self.model.adiabatic(state.R)
+        E, U = adiabatic_states(self.model, state.R)
         F = self._force(state.R, U, state.active)
         self._cache = (state.R.copy(), state.active.copy(), E, U, F)
 
     def energy(self, state: HoppingState) -> np.ndarray:
         """T + E_λ per trajectory (Eh), the conserved energy of both methods between and across hops."""
-        E, _ = self.model.adiabatic(state.R)
+        E, _ = adiabatic_states(self.model, state.R)
         return 0.5 * np.sum(state.P ** 2 / self.m, axis=1) + E[np.arange(state.ntraj), state.active]
 
     def step(self, state: HoppingState) -> None:
@@ -404,7 +426,7 @@ def run_hopping(model: DiabaticModel, state: HoppingState, options: MethodOption
         times.append(state.time)
         act.append(state.active.copy())
         if options.method == "fssh":
-            _, U = model.adiabatic(state.R)
+            _, U = adiabatic_states(model, state.R)
             dia.append(diabatic_estimator(U, state.x + 1j * state.p, state.active))
         else:
             dia.append(np.full(state.x.shape, np.nan))

@@ -86,7 +86,7 @@ def run_hopping_scattering(model: DiabaticModel, k: float, x0: float, sig: float
                             n_unassigned=0, n_unfinished=n_unfinished, details=details)
 
 
-def spin_boson_hopping(name: str, options: MethodOptions, ntraj: int, nmodes: int = 60, dt: float = 0.05,
+def spin_boson_hopping(name: str, options: MethodOptions, ntraj: int, nmodes: int = 60, dt: float = 0.005,
                        seed: int = 2024):
     """FSSH ⟨σz⟩(t) (diabatic, mixed estimator) on the stored spin-boson case ``name``, same bath
     discretisation and thermal sampling as the mapping run (units of Δ read as a.u.); returns a
