@@ -42,7 +42,7 @@ from mapdyn.core.propagators import propagate_amplitudes
 from mapdyn.core.sampling import EnsembleState, trajectory_generator
 
 __all__ = ["HoppingState", "UniformStreams", "hopping_state", "HoppingIntegrator", "HoppingRun", "run_hopping",
-           "DECOHERENCE_C", "adiabatic_states", "nonadiabatic_coupling", "rescale_momentum"]
+           "DECOHERENCE_C", "adiabatic_states", "nonadiabatic_coupling", "rescale_momentum", "hop_probabilities", "diabatic_estimator"]
 
 #: Energy-based decoherence constant C (Eh), the value recommended by Granucci & Persico (2007), from memory.
 DECOHERENCE_C = 0.1
@@ -202,6 +202,28 @@ def rescale_momentum(P: np.ndarray, masses: np.ndarray, d: np.ndarray, dE: np.nd
     return P - kappa[:, None] * d, ok
 
 
+def hop_probabilities(U0: np.ndarray, U1: np.ndarray, z0: np.ndarray, z1: np.ndarray, active: np.ndarray,
+                      dt: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Fewest-switches probabilities g (n, F) for one step of ``dt`` (a.u.) from the adiabatic vectors
+    U0, U1 (n, F, F) and diabatic amplitudes z0, z1 (n, F) at its ends (module docstring; g_λ = 0).
+    Also returns the adiabatic amplitudes c1 (n, F) at the end and U1 with its column signs aligned to U0."""
+    rows = np.arange(z0.shape[0])
+    O = np.einsum("nka,nkb->nab", U0, U1)
+    s = np.sign(np.diagonal(O, axis1=1, axis2=2))
+    s[s == 0] = 1.0
+    Ua = U1 * s[:, None, :]
+    O = O * s[:, None, :]
+    T = (O - np.swapaxes(O, 1, 2)) / (2.0 * dt)
+    c0 = np.einsum("nka,nk->na", U0, z0) / np.sqrt(2.0)
+    c1 = np.einsum("nka,nk->na", Ua, z1) / np.sqrt(2.0)
+    cm = 0.5 * (c0 + c1)
+    cl = cm[rows, active]
+    flux = 2.0 * dt * np.real(np.conj(cl)[:, None] * cm * T[rows, active, :])
+    g = np.clip(flux / np.maximum(np.abs(cl) ** 2, 1e-300)[:, None], 0.0, None)
+    g[rows, active] = 0.0
+    return g, c1, Ua
+
+
 class HoppingIntegrator:
     """One batched step of MASH or FSSH; ``step(state)`` advances a :class:`HoppingState` by ``dt`` (a.u.)."""
 
@@ -307,20 +329,8 @@ class HoppingIntegrator:
     def _fssh_hops(self, state, z0, U0, R, P, z, E, U, F):
         n, nst = z.shape
         rows = np.arange(n)
-        O = np.einsum("nka,nkb->nab", U0, U)
-        s = np.sign(np.diagonal(O, axis1=1, axis2=2))
-        s[s == 0] = 1.0
-        Ua = U * s[:, None, :]
-        O = O * s[:, None, :]
-        T = (O - np.swapaxes(O, 1, 2)) / (2.0 * self.dt)
-        c0 = np.einsum("nka,nk->na", U0, z0) / np.sqrt(2.0)
-        c1 = np.einsum("nka,nk->na", Ua, z) / np.sqrt(2.0)
-        cm = 0.5 * (c0 + c1)
         lam = state.active
-        cl = cm[rows, lam]
-        flux = 2.0 * self.dt * np.real(np.conj(cl)[:, None] * cm * T[rows, lam, :])
-        g = np.clip(flux / np.maximum(np.abs(cl) ** 2, 1e-300)[:, None], 0.0, None)
-        g[rows, lam] = 0.0
+        g, c1, Ua = hop_probabilities(U0, U, z0, z, lam, self.dt)
         xi = state.streams.draw()
         cum = np.cumsum(g, axis=1)
         hop = xi < cum[:, -1]
