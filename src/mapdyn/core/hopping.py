@@ -32,6 +32,7 @@ per step, read in blocks of 128 (numpy's ``random(k)`` gives the same numbers as
 from __future__ import annotations
 
 import dataclasses
+from typing import cast
 
 import numpy as np
 
@@ -143,7 +144,7 @@ def hopping_state(model: DiabaticModel, ens: EnsembleState, options: MethodOptio
 def _propagate(z: np.ndarray, H: np.ndarray, t) -> np.ndarray:
     """exp(−i H t) z per trajectory with t a number or an (n,) array (a.u.)."""
     if H.shape[-1] == 2:
-        return propagate_amplitudes(z, H, t if np.ndim(t) == 0 else np.reshape(t, -1))
+        return propagate_amplitudes(z, H, cast(float, t if np.ndim(t) == 0 else np.reshape(t, -1)))
     lam, U = np.linalg.eigh(H)
     w = np.einsum("nlk,nl->nk", U, z)
     ph = np.exp(-1j * lam * np.reshape(t, (-1, 1)))
@@ -237,7 +238,8 @@ class HoppingIntegrator:
         self.harmonic = all(hasattr(model, k) for k in ("harmonic_frequencies", "system_hamiltonian",
                                                           "system_contract_gradient"))
         if self.harmonic:
-            self.w2 = np.asarray(model.harmonic_frequencies, dtype=float) ** 2
+            freqs: np.ndarray = np.asarray(model.harmonic_frequencies, dtype=float)  # type: ignore[attr-defined]
+            self.w2 = freqs ** 2
         self._cache: tuple | None = None
         self.n_hops = 0
         self.n_frustrated = 0
@@ -283,6 +285,7 @@ class HoppingIntegrator:
         if c is None or c[0].shape != state.R.shape or not np.array_equal(c[0], state.R) \
                 or not np.array_equal(c[1], state.active):
             self._refresh(state)
+        assert self._cache is not None
         _, _, E0, U0, F0 = self._cache
         R0, P0, z0 = state.R, state.P, state.x + 1j * state.p
         R, P, z, E, U, F = self._advance(R0, P0, z0, state.active, F0, self.dt)
