@@ -188,7 +188,7 @@ def _closed_channel_case(model_name: str, k: float, x0: float) -> ValidationCase
             raise RuntimeError(f"{model_name} k={k:g}: the upper transmission channel is not closed")
         res = run_scattering(model, k, x0, sigma, options, ntraj=ntraj, seed=seed)
         value = float(res.transmission[1])
-        return 0.0, value, value, float(res.transmission_error[1])
+        return 0.0, value, abs(value), float(res.transmission_error[1])
 
     return ValidationCase(f"{model_name} k={k:g} T1 (closed)", run, CLOSED_CHANNEL_TOLERANCE, quick=False)
 
