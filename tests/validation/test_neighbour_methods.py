@@ -97,7 +97,8 @@ EXPECTED_FAILURES = {
                  "tully2 k=25": "same", "tully2 k=30": "same", "tully2 k=40": "same",
                  "spin_boson": "decoherence plus the Wigner-bath zero-point energy"},
 }
-OPTIONS = {"sqc": MethodOptions("sqc", "triangle"), "ehrenfest": MethodOptions("ehrenfest"), "spin": SPIN, "mash": MASH, "fssh": FSSH, "fssh-edc": FSSH_EDC}
+OPTIONS = {"sqc": MethodOptions("sqc", "triangle"), "ehrenfest": MethodOptions("ehrenfest"), "spin": SPIN,
+           "mash": MASH, "fssh": FSSH, "fssh-edc": FSSH_EDC}
 
 
 @pytest.mark.slow
