@@ -20,9 +20,9 @@ from mapdyn.backends.pyscf.ground_state import PySCFGroundState
 from mapdyn.core.options import MethodOptions
 from mapdyn.core.sampling import trajectory_generator
 from mapdyn.driver.dynamics import MappingDynamics
+from mapdyn.initial.geometry import optimize_ground_state
 from mapdyn.initial.normal_modes import compute_hessian, normal_modes
 from mapdyn.initial.wigner import draw_wigner
-from mapdyn.initial.geometry import optimize_ground_state
 
 BOHR = units.Bohr  # Å per Bohr
 

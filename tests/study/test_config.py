@@ -115,6 +115,7 @@ CASES = [
     ("negative temperature, old key", edit(MOLECULE, "initial", "temperature_kelvin", "-5.0"), "initial.temperature_kelvin = -5.0: must be >= 0 K"),
     ("not TOML", "[study\nname = 1\n", "is not valid TOML"),
     ("bad study name", edit(MODEL, "study", "name", '"a b/c"'), "study.name = \"a b/c\": use letters"),
+    ("model-engine-only method", edit(MODEL, "method", "method", '"fssh"'), "method.method = \"fssh\" runs in `mapdyn validate` and the batched model engine"),
     ("window key with ehrenfest", edit(edit(MODEL, "method", "method", '"ehrenfest"'), "method", "window", '"square"'), "method.window is not used with method = \"ehrenfest\""),
     ("substeps on batched engine", edit(MODEL, "dynamics", "substeps", "10"), "dynamics.substeps is not used by the batched model engine"),
     ("stop_on_drift not boolean", MOLECULE.replace('duration = "5 fs"', 'duration = "5 fs"\nstop_on_drift = "yes"'), "dynamics.stop_on_drift = \"yes\": must be true or false"),

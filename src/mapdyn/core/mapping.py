@@ -16,7 +16,9 @@ docs/theory.md#zero-point-treatments):
 * ``adjusted``:     γ_k = e_k(0) − N_k, fixed per trajectory (Cotton & Miller, J. Chem. Phys. 150,
   194110 (2019): per-trajectory zero point making the initial nuclear force that of the initial
   state, as its abstract states; the per-state formula is from memory; docs/theory.md#closed-channels);
-* Ehrenfest:        γ_k = 0 with Σ e = 1.
+* Ehrenfest:        γ_k = 0 with Σ e = 1;
+* spin mapping:     the symmetrized form, which with the spin-mapping sphere Σ e = √(F+1) gives
+  γ_k = (√(F+1) − 1)/F = γ_s (docs/theory.md#spin-mapping).
 """
 
 from __future__ import annotations
@@ -56,7 +58,7 @@ def zero_point_parameters(x: np.ndarray, p: np.ndarray, options: MethodOptions,
     """Per-trajectory, per-state zero-point parameters γ_k, shape (n, F) (dimensionless)."""
     e = actions(x, p)
     n, f = e.shape
-    if options.method == "ehrenfest":
+    if options.method in ("ehrenfest", "mash", "fssh"):
         return np.zeros_like(e)
     if options.zero_point == "fixed":
         return np.full_like(e, options.window_gamma)

@@ -6,14 +6,26 @@ import dataclasses
 import difflib
 import math
 
-__all__ = ["MethodOptions", "SQUARE_GAMMA", "TRIANGLE_GAMMA", "METHODS", "WINDOWS", "ZERO_POINTS", "DEFAULT_WINDOW"]
+__all__ = ["MethodOptions", "SQUARE_GAMMA", "TRIANGLE_GAMMA", "METHODS", "WINDOWS", "ZERO_POINTS", "DEFAULT_WINDOW",
+           "HOPPING_METHODS", "DECOHERENCE", "spin_gamma"]
 
 #: Square-window half-width γ = (√3 − 1)/2 (Cotton & Miller, J. Phys. Chem. A 117, 7190 (2013)).
 SQUARE_GAMMA = (math.sqrt(3.0) - 1.0) / 2.0
 #: Triangle-window centroid offset γ = 1/3 (Cotton & Miller, J. Chem. Phys. 145, 144108 (2016)).
 TRIANGLE_GAMMA = 1.0 / 3.0
 
-METHODS = ("sqc", "ehrenfest")
+METHODS = ("sqc", "ehrenfest", "spin", "mash", "fssh")
+#: methods whose nuclei move on one active adiabat (mapdyn.core.hopping; docs/theory.md#surface-hopping)
+HOPPING_METHODS = ("mash", "fssh")
+#: FSSH decoherence corrections: none, or the energy-based one (docs/theory.md#fewest-switches-surface-hopping)
+DECOHERENCE = ("none", "energy")
+
+
+def spin_gamma(nstates: int) -> float:
+    """Spin-mapping zero-point parameter γ_s = (√(F+1) − 1)/F per state (dimensionless) in the
+    convention ρ_kk = e_k − γ_k (docs/theory.md#spin-mapping; Runeson & Richardson, J. Chem. Phys.
+    152, 084110 (2020), whose γ multiplies ½ and is twice this; from memory)."""
+    return (math.sqrt(nstates + 1.0) - 1.0) / nstates
 WINDOWS = ("square", "triangle")
 #: The window used when none is given — by studies, ``mapdyn validate`` and :class:`MethodOptions`
 #: alike: the triangle window, the better validated of the two (Cotton & Miller 2016; docs/theory.md).
@@ -37,16 +49,30 @@ class MethodOptions:
     zero_point : "symmetrized" (trace-subtracted Hamiltonian, Σ ρ̃_kk = 1; default), "adjusted"
         (trajectory-adjusted γ_k = e_k(0) − N_k) or "fixed" (plain MMST with one γ; models only).
     gamma : override of the square-window half-width (dimensionless, 0 < γ < 1/2); None = standard.
+
+    Neighbouring methods (docs/theory.md#neighbouring-methods), sharing sampling streams and engine:
+    "spin" (spin mapping: focused actions e_k = δ_ki + γ_s, population ρ_kk; window and zero_point
+    unused), "mash" (mapping approach to surface hopping, two states) and "fssh" (fewest switches).
+    decoherence : "none" or "energy" (energy-based correction, C = 0.1 Eh; fssh only).
     """
 
     method: str = "sqc"
     window: str = DEFAULT_WINDOW
     zero_point: str = "symmetrized"
     gamma: float | None = None
+    decoherence: str = "none"
 
     def __post_init__(self):
         if self.method not in METHODS:
             raise _choice_error("method", self.method, METHODS)
+        if self.decoherence not in DECOHERENCE:
+            raise _choice_error("decoherence", self.decoherence, DECOHERENCE)
+        if self.decoherence != "none" and self.method != "fssh":
+            raise ValueError(f"decoherence={self.decoherence!r} is not allowed with method={self.method!r}; "
+                             "only fssh takes a decoherence correction")
+        if self.method in ("spin",) + HOPPING_METHODS and self.zero_point != "symmetrized":
+            raise ValueError(f"zero_point={self.zero_point!r} is not allowed with method={self.method!r}; "
+                             "its zero point is fixed by the method (leave the default)")
         if self.window not in WINDOWS:
             raise _choice_error("window", self.window, WINDOWS)
         if self.zero_point not in ZERO_POINTS:
@@ -60,16 +86,18 @@ class MethodOptions:
 
     @property
     def window_gamma(self) -> float:
-        """γ of the window in use (dimensionless); 0 for Ehrenfest."""
-        if self.method == "ehrenfest":
+        """γ of the window in use (dimensionless); 0 for Ehrenfest and the hopping methods."""
+        if self.method in ("ehrenfest",) + HOPPING_METHODS:
             return 0.0
         if self.window == "triangle":
             return TRIANGLE_GAMMA
         return SQUARE_GAMMA if self.gamma is None else float(self.gamma)
 
     def describe(self) -> str:
-        if self.method == "ehrenfest":
-            return "ehrenfest"
+        if self.method in ("ehrenfest", "spin", "mash"):
+            return self.method
+        if self.method == "fssh":
+            return "fssh" if self.decoherence == "none" else f"fssh/{self.decoherence}-decoherence"
         return f"sqc/{self.window}/{self.zero_point}"
 
     def long_name(self) -> str:

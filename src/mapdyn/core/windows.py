@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from mapdyn.core.options import MethodOptions
+from mapdyn.core.options import MethodOptions, spin_gamma
 
 __all__ = [
     "sample_actions",
@@ -52,8 +52,19 @@ def sample_actions(rng: np.random.Generator, nstates: int, initial_state: int,
     xi = rng.random(nstates)
     occ = np.zeros(nstates)
     occ[initial_state] = 1.0
-    if options.method == "ehrenfest":
+    if options.method in ("ehrenfest", "fssh"):
         return occ
+    if options.method == "spin":
+        # focused spin-mapping actions e_k = δ_ki + γ_s (docs/theory.md#spin-mapping)
+        return occ + spin_gamma(nstates)
+    if options.method == "mash":
+        # uniform on the unit sphere Σe = 1 (e ~ Dirichlet(1,…,1) from −log ξ), restricted to the region where
+        # the initial state has the largest action by moving the largest entry there (docs/theory.md#mash)
+        g = -np.log1p(-xi)
+        e = g / g.sum()
+        big = int(np.argmax(e))
+        e[[big, initial_state]] = e[[initial_state, big]]
+        return e
     if options.window == "square":
         return occ + 2.0 * options.window_gamma * xi
     # pairwise two-state triangle: 1 − u = √ξ_i has density 2(1 − u) (docs/theory.md#triangle-windows-for-more-than-two-states)
@@ -84,8 +95,8 @@ def window_indicators(e: np.ndarray, options: MethodOptions) -> np.ndarray:
     e = np.asarray(e, dtype=float)
     if e.ndim != 2:
         raise ValueError(f"actions must have shape (n, F), got {e.shape}")
-    if options.method == "ehrenfest":
-        raise ValueError("window_indicators is for method='sqc'; Ehrenfest populations are the actions themselves")
+    if options.method != "sqc":
+        raise ValueError(f"window_indicators is for method='sqc', not {options.method!r} (see mapdyn.core.populations)")
     n, f = e.shape
     if options.window == "square":
         g = options.window_gamma

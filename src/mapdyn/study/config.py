@@ -54,7 +54,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from mapdyn.core.options import DEFAULT_WINDOW, METHODS, WINDOWS, ZERO_POINTS, MethodOptions
+from mapdyn.core.options import DEFAULT_WINDOW, WINDOWS, ZERO_POINTS, MethodOptions
 from mapdyn.study.input_values import (
     ConfigError,
     Section,
@@ -415,8 +415,15 @@ def _parse_initial(sec: Section, elec: ElectronicConfig, deprecated: list | None
                          temperature_kelvin=temp, excitation=excitation)
 
 
+#: methods a study can run (the neighbouring methods of docs/theory.md#neighbouring-methods are model-engine only)
+STUDY_METHODS = ("sqc", "ehrenfest")
+
+
 def _parse_method(sec: Section, elec: ElectronicConfig) -> MethodOptions:
-    method = sec.choice("method", METHODS, "sqc")
+    if sec.raw("method") in ("spin", "mash", "fssh"):
+        raise ConfigError("method.method", f"= \"{sec.raw('method')}\" runs in `mapdyn validate` and the batched model "
+                          "engine (mapdyn.core.hopping) only; studies take \"sqc\" or \"ehrenfest\"")
+    method = sec.choice("method", STUDY_METHODS, "sqc")
     window = sec.choice("window", WINDOWS, DEFAULT_WINDOW)
     zero = sec.choice("zero_point", ZERO_POINTS, "symmetrized")
     gamma = sec.number("gamma", None, what="a window half-width strictly between 0 and 1/2")

@@ -549,8 +549,10 @@ def run_mapping_photoexcitation(model: DiabaticModel, scenario: PhotoexcitationS
     run = run_diabatic(model, state, options, dt, int(round(scenario.t_final / dt)), record_every=every,
                        record_nuclei=True)
     e = run.actions_adiabatic  # (T, n, F)
-    if options.method == "ehrenfest":
-        w = e / e.sum(axis=2, keepdims=True)
+    if options.method in ("ehrenfest", "spin"):
+        from mapdyn.core.populations import population_weights
+        w = population_weights(e, options)
+        w = w / w.sum(axis=2, keepdims=True)
         pops = w.mean(axis=1)
         err = w.std(axis=1, ddof=1) / np.sqrt(ntraj)
         n_none = np.zeros(len(run.times), dtype=int)
@@ -560,7 +562,7 @@ def run_mapping_photoexcitation(model: DiabaticModel, scenario: PhotoexcitationS
         err = np.sqrt(pops * (1.0 - pops) / np.maximum(nw, 1)[:, None])
     drift = np.abs(run.energy - run.energy[0]).max()
     f = scenario.initial_state
-    if options.method == "ehrenfest":
+    if options.method in ("ehrenfest", "spin"):
         weight = w[:, :, f]
     else:
         from mapdyn.core.windows import window_assignment

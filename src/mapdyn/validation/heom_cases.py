@@ -9,46 +9,18 @@ propagated with :class:`mapdyn.core.harmonic_bath.HarmonicBathIntegrator`.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
-from importlib import resources
-
 import numpy as np
 
 from mapdyn.core.harmonic_bath import HarmonicBathIntegrator
-from mapdyn.core.options import MethodOptions
+from mapdyn.core.options import HOPPING_METHODS, MethodOptions
+from mapdyn.core.populations import population_weights
 from mapdyn.core.propagators import run_diabatic
 from mapdyn.models.spin_boson import (
     ExcitonTransferModel,
     SpinBoson,
     thermal_bath_ensemble,
 )
-
-
-def load_reference(name: str) -> dict:
-    """Arrays of ``src/mapdyn/data/heom_<name>.npz`` as a dict."""
-    path = resources.files("mapdyn") / "data" / f"heom_{name}.npz"
-    with resources.as_file(path) as p, np.load(p) as data:
-        return {k: data[k] for k in data.files}
-
-
-@dataclass
-class MappingResult:
-    """Populations on the HEOM time grid: times (T,) a.u.; populations (T, F); standard_error (T, F)
-    (binomial √(P(1−P)/N_acc) for window counts, conditional on the accepted count; sample standard
-    error of the normalised actions for Ehrenfest); accepted (T,) trajectories inside a window (all of
-    them for Ehrenfest); sigma_z_error (T,) standard error of P_1 − P_2 (two states only, else None):
-    √((1 − ⟨σz⟩²)/N_acc) for windows."""
-
-    times: np.ndarray
-    populations: np.ndarray
-    standard_error: np.ndarray
-    accepted: np.ndarray
-    sigma_z_error: np.ndarray | None
-
-    @property
-    def sigma_z(self) -> np.ndarray:
-        """⟨σz⟩ = P_1 − P_2 for two states (σz = diag(1, −1))."""
-        return self.populations[:, 0] - self.populations[:, 1]
+from mapdyn.validation.heom_reference import MappingResult, load_reference
 
 
 def _run(model, data: dict, options: MethodOptions, ntraj: int, dt: float, seed: int) -> MappingResult:
@@ -62,9 +34,10 @@ def _run(model, data: dict, options: MethodOptions, ntraj: int, dt: float, seed:
                        integrator=integrator)
     pops, missing = run.populations("diabatic")
     e = run.actions_diabatic
-    if options.method == "ehrenfest":
+    if options.method in ("ehrenfest", "spin"):
         accepted = np.full(t_ref.size, ntraj)
-        w = e / e.sum(axis=2, keepdims=True)
+        w = population_weights(e, options)
+        w = w / w.sum(axis=2, keepdims=True)
         se = w.std(axis=1, ddof=1) / np.sqrt(ntraj)
         sz_err = (w[:, :, 0] - w[:, :, 1]).std(axis=1, ddof=1) / np.sqrt(ntraj) if e.shape[2] == 2 else None
     else:
@@ -77,7 +50,14 @@ def _run(model, data: dict, options: MethodOptions, ntraj: int, dt: float, seed:
 def spin_boson_mapping(name: str, options: MethodOptions, ntraj: int, nmodes: int = 60, dt: float = 0.05,
                        seed: int = 2024) -> MappingResult:
     """Mapping ⟨σz⟩(t) for spin-boson case ``name`` (units of Δ, read as Hartree atomic units with
-    Δ = 1 Eh); ``nmodes`` Debye modes, time step ``dt`` (1/Δ)."""
+    Δ = 1 Eh); ``nmodes`` Debye modes, time step ``dt`` (1/Δ; MASH/FSSH use dt/10)."""
+    if options.method in HOPPING_METHODS:
+        if options.method == "mash":
+            raise NotImplementedError("MASH diabatic populations need its coherence estimators, not implemented")
+        from mapdyn.validation.hopping_runs import spin_boson_hopping
+        # the active-adiabat force follows the fast bath modes (ω_max ≈ 76 Δ): a tenth of the step keeps
+        # ω_max·dt ≈ 0.4 (docs/theory.md#surface-hopping)
+        return spin_boson_hopping(name, options, ntraj, nmodes, dt / 10, seed)
     d = load_reference(name)
     model = SpinBoson.debye(float(d["epsilon"]), float(d["delta"]), float(d["lam"]), float(d["omega_c"]), nmodes)
     return _run(model, d, options, ntraj, dt, seed)

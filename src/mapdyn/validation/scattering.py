@@ -5,7 +5,8 @@
 batched MMST integrator (:class:`mapdyn.core.propagators.DiabaticIntegrator`) and stops each trajectory
 when it has left the interaction region [a, b] moving outwards (x < a with p < 0, or x > b with
 p > 0).  Its adiabatic actions at that moment are read with the SQC windows (or, for Ehrenfest, as
-the mean-field weights e_f/Σe) and binned by side: "transmitted" is the side the packet moves
+the mean-field weights e_f/Σe; for spin mapping as ρ_ff) and binned by side (MASH and FSSH: the
+active state, :mod:`mapdyn.validation.hopping_runs`): "transmitted" is the side the packet moves
 towards (k > 0: x > b), "reflected" the other.  The run ends when all trajectories have left.
 
 Probabilities (SQC): P_{c,f} = N_{c,f}/N_w, N_w the trajectories that ended inside some window, with
@@ -22,7 +23,8 @@ import warnings
 import numpy as np
 
 from mapdyn.core.model import DiabaticModel
-from mapdyn.core.options import MethodOptions
+from mapdyn.core.options import HOPPING_METHODS, MethodOptions
+from mapdyn.core.populations import population_weights
 from mapdyn.core.propagators import DiabaticIntegrator, adiabatic_actions
 from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble
 from mapdyn.core.windows import window_assignment
@@ -68,6 +70,10 @@ def run_scattering(model: DiabaticModel, momentum: float, position: float, posit
     if max_time is None:
         span = max(b, x0 + 8 * sig) - min(a, x0 - 8 * sig)
         max_time = 6.0 * span / (abs(k) / M)
+    if options.method in HOPPING_METHODS:
+        from mapdyn.validation.hopping_runs import run_hopping_scattering
+        return run_hopping_scattering(model, k, x0, sig, options, ntraj, seed, initial_state, (a, b), dt,
+                                      max_time, check_every)
     state = gaussian_wavepacket_ensemble(model, ntraj, seed, x0, k, sig, initial_state, options)
     integ = DiabaticIntegrator(model, options, dt)
     side = np.full(ntraj, -1)              # 0 = lower side (x < a), 1 = upper side (x > b)
@@ -112,8 +118,9 @@ def run_scattering(model: DiabaticModel, momentum: float, position: float, posit
     prob = np.zeros((2, F))
     err = np.zeros((2, F))
     n_unassigned = 0
-    if options.method == "ehrenfest":
-        w = e_exit[fin] / e_exit[fin].sum(axis=1, keepdims=True)
+    if options.method in ("ehrenfest", "spin"):
+        w = population_weights(e_exit[fin], options)
+        w = w / w.sum(axis=1, keepdims=True)
         n = max(int(fin.sum()), 1)
         for s in (0, 1):
             ws = np.where((side[fin] == s)[:, None], w, 0.0)
