@@ -34,7 +34,7 @@ def _runs() -> dict:
     runs: dict = {}
     with np.load(BUNDLE, allow_pickle=False) as data:
         for name in data.files:
-            if "/" not in name:
+            if "/" not in name or not name.startswith("traj"):
                 continue
             key, field = name.split("/", 1)
             runs.setdefault(key, {})[field] = json.loads(str(data[name])) if field == "meta" else np.array(data[name])
