@@ -39,6 +39,21 @@ def tully1_study(*, name: str | None = "tully1_test", trajectories: int = 120, s
     return "\n" + "\n".join(lines) + "\n"
 
 
+#: H2 after excitation to S1 at SA2-CASSCF(2,2)/STO-3G (a scenario of our own): the molecule,
+#: electronic and initial sections that the molecular tests share; each test adds the rest.
+H2_SECTIONS = """[molecule]
+atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
+[electronic]
+backend = "casscf"
+basis = "sto-3g"
+active_orbitals = 2
+active_electrons = 2
+states = 2
+[initial]
+state = 1
+"""
+
+
 def write(tmp_path: Path, name: str, text: str) -> str:
     """Write ``text`` to ``tmp_path/name``; returns the path as a string."""
     path = tmp_path / name

@@ -18,7 +18,7 @@ import time
 
 import numpy as np
 import pytest
-from conftest import ENV, INPUTS, mapdyn, tully1_study, write
+from conftest import ENV, H2_SECTIONS, INPUTS, mapdyn, tully1_study, write
 
 from mapdyn.cli import main
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
@@ -209,17 +209,7 @@ H2 = """
 [study]
 name = "h2_test"
 description = "scenario of our own: H2 after excitation, SA2-CASSCF(2,2)/STO-3G"
-[molecule]
-atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
-[electronic]
-backend = "casscf"
-basis = "sto-3g"
-active_orbitals = 2
-active_electrons = 2
-states = 2
-[initial]
-state = 1
-[method]
+""" + H2_SECTIONS + """[method]
 window = "square"
 [dynamics]
 time_step = "0.5 fs"

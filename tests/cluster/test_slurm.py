@@ -29,7 +29,7 @@ import pytest
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 sys.path.insert(0, str(HERE.parent))
-from conftest import ENV, tully1_study  # noqa: E402
+from conftest import ENV, H2_SECTIONS, tully1_study  # noqa: E402
 from local_slurm import LocalSlurm, unavailable_reason  # noqa: E402
 
 pytestmark = [pytest.mark.slow, pytest.mark.slurm]
@@ -211,17 +211,7 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
 
 #: scenario of our own: H2 after excitation to S1, SA2-CASSCF(2,2)/STO-3G, 2 trajectories of 2 fs.
 H2 = """
-[molecule]
-atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
-[electronic]
-backend = "casscf"
-basis = "sto-3g"
-active_orbitals = 2
-active_electrons = 2
-states = 2
-[initial]
-state = 1
-[method]
+""" + H2_SECTIONS + """[method]
 window = "square"
 [dynamics]
 time_step = "0.5 fs"

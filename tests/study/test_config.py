@@ -9,7 +9,7 @@ import sys
 import tomllib
 
 import pytest
-from conftest import tully1_study
+from conftest import H2_SECTIONS, tully1_study
 
 from mapdyn.cli import main
 from mapdyn.study.config import load_study_config, parse_duration
@@ -20,17 +20,7 @@ MODEL = tully1_study(name="m", trajectories=10, seed=1, duration="100 au", recor
 MOLECULE = """
 [study]
 name = "h2"
-[molecule]
-atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
-[electronic]
-backend = "casscf"
-basis = "sto-3g"
-active_orbitals = 2
-active_electrons = 2
-states = 2
-[initial]
-state = 1
-[dynamics]
+""" + H2_SECTIONS + """[dynamics]
 time_step = "0.5 fs"
 duration = "5 fs"
 [ensemble]

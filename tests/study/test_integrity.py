@@ -16,7 +16,7 @@ import shutil
 import h5py
 import numpy as np
 import pytest
-from conftest import tully1_study, write
+from conftest import H2_SECTIONS, tully1_study, write
 
 from mapdyn.cli import main
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5, write_h5
@@ -361,17 +361,7 @@ H2 = """
 [study]
 name = "h2_ic"
 description = "scenario of our own: H2 after excitation, SA2-CASSCF(2,2)/STO-3G"
-[molecule]
-atoms = [["H", 0.0, 0.0, 0.0], ["H", 0.0, 0.0, 0.74]]
-[electronic]
-backend = "casscf"
-basis = "sto-3g"
-active_orbitals = 2
-active_electrons = 2
-states = 2
-[initial]
-state = 1
-[dynamics]
+""" + H2_SECTIONS + """[dynamics]
 time_step = "0.5 fs"
 duration = "1 fs"
 checkpoint_every = 2
