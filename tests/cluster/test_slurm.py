@@ -167,10 +167,11 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
                 except (OSError, ValueError):
                     continue
                 if job in jobs and meta and 0 < meta["step"] < 750:
-                    return i, job
+                    return i, job, int(meta["step"])
             return None
 
-        victim, job = _wait("a trajectory mid-run in a batch job", trajectory_mid_run, proc)
+        # the step is taken from this read: a second read can fall into the writer's state rotation
+        victim, job, step_at_cancel = _wait("a trajectory mid-run in a batch job", trajectory_mid_run, proc)
         status = _run(["status", str(folder)], tmp_path, env).stdout
         _log(tmp_path, f"mapdyn status while running:\n{status}")
         assert "batch jobs (slurm)" in status and "active" in status
@@ -178,7 +179,6 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
             assert any(line.split()[:3] == ["job", j, "RUNNING"] for line in status.splitlines()), status
         assert any(line.split()[:2] == ["job", job] and "trajectories" in line and str(victim) in line.split("trajectories")[1]
                    for line in status.splitlines()), status
-        step_at_cancel = TrajectoryStore(Study(str(folder)).trajectory_folder(victim)).read_meta()["step"]
         subprocess.run(["scancel", job], env=env, check=True, timeout=30)
         _log(tmp_path, f"scancel {job} (trajectory {victim} at step {step_at_cancel}/750) "
                        f"{time.time() - t0:.1f} s into the run")
