@@ -314,12 +314,17 @@ class TrajectoryStore:
                 read_h5(cp)
 
     def read_meta(self) -> dict | None:
-        """Meta of the current state file (cheap, no chunk checks), or None if absent/unreadable."""
-        try:
-            _, meta = read_h5(self.state_path, [])
-            return meta
-        except CheckpointError:
-            return None
+        """Meta of the current state file (cheap, no chunk checks), or None if absent/unreadable.
+        While a writer rotates ``state.h5`` to ``state_previous.h5`` the current file is briefly
+        absent; the previous one is then the newest state and is read instead."""
+        paths = [self.state_path] + ([] if os.path.exists(self.state_path) else [self.previous_state_path])
+        for path in paths:
+            try:
+                _, meta = read_h5(path, [])
+                return meta
+            except CheckpointError:
+                continue
+        return None
 
     def restart_point(self) -> RestartPoint:
         """The newest intact state whose chunks are intact (see the module docstring)."""
