@@ -238,6 +238,9 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         store.adopt(point)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")  # collected with their step into warnings.json
+            # interpreter-level notices about files PySCF leaves to the garbage collector are not
+            # about the dynamics; they stay out of the trajectory record
+            warnings.filterwarnings("ignore", category=ResourceWarning)
             if point.state is None:
                 dyn = _fresh_driver(study, index)
                 chunks, digests = store.commit(dyn.state, dyn.frames, 0, _state_meta(study, dyn), [])
