@@ -186,13 +186,19 @@ def plot_observable(series: Any, path: str | os.PathLike, *, time_unit: str = "f
         ax = ax[0, 0]
         c = STATE_COLOURS[3]
         circ = getattr(series, "circular", False)
-        ax.fill_between(t, series.mean - series.std, series.mean + series.std, color=c, alpha=0.2, lw=0,
+        mean, q10, q90 = (np.asarray(v, dtype=float) for v in (series.mean, series.q10, series.q90))
+        if circ:  # follow the mean continuously through ±180°: shift each time point by whole turns
+            ok = np.isfinite(mean)
+            shift = np.zeros_like(mean)
+            shift[ok] = np.degrees(np.unwrap(np.radians(mean[ok]))) - mean[ok]
+            mean, q10, q90 = mean + shift, q10 + shift, q90 + shift
+        ax.fill_between(t, mean - series.std, mean + series.std, color=c, alpha=0.2, lw=0,
                         label="circular mean ± circular std" if circ else "mean ± standard deviation")
-        ax.plot(t, series.mean, color=c, label="circular mean" if circ else "ensemble mean")
-        ax.plot(t, series.q10, color=c, ls=":", lw=1.0, label="10 % / 90 % quantiles")
-        ax.plot(t, series.q90, color=c, ls=":", lw=1.0)
+        ax.plot(t, mean, color=c, label="circular mean" if circ else "ensemble mean")
+        ax.plot(t, q10, color=c, ls=":", lw=1.0, label="10 % / 90 % quantiles")
+        ax.plot(t, q90, color=c, ls=":", lw=1.0)
         ax.set_xlabel(xlabel)
-        ax.set_ylabel(f"{series.name} / {series.unit}" + (" (folded into (−180, 180])" if circ else ""))
+        ax.set_ylabel(f"{series.name} / {series.unit}" + (" (continuous in time, modulo 360)" if circ else ""))
         ax.legend(loc="best")
         ax.set_title(title or f"{series.name} over the ensemble")
         return save_figure(fig, path)
