@@ -52,9 +52,8 @@ from typing import Any, Protocol
 import numpy as np
 from scipy.linalg.blas import dgemm as _dgemm
 
-from mapdyn.core.mapping import effective_density, mapping_energy
 from mapdyn.core.options import MethodOptions
-from mapdyn.core.propagators import propagate_amplitudes
+from mapdyn.core.propagators import MappingEnsemble, propagate_amplitudes
 from mapdyn.core.sampling import EnsembleState
 
 __all__ = ["HarmonicBathIntegrator", "harmonic_flow_coefficients"]
@@ -104,7 +103,7 @@ class HarmonicBathModel(Protocol):
     def system_contract_gradient(self, R: np.ndarray, rho: np.ndarray) -> np.ndarray: ...
 
 
-class HarmonicBathIntegrator:
+class HarmonicBathIntegrator(MappingEnsemble):
     """Batched MMST step with the harmonic reference V0 integrated exactly (see module docstring).
 
     Same interface as :class:`mapdyn.core.propagators.DiabaticIntegrator` (``step``, ``force``,
@@ -169,16 +168,6 @@ class HarmonicBathIntegrator:
                     MR2=np.hstack([MR, MRp]), MP2=np.hstack([MP, MPp]),
                     A=np.asarray(self.model.constant, dtype=float).reshape(F * F))
 
-    def density(self, state: EnsembleState) -> np.ndarray:
-        return effective_density(state.x, state.p, self.options, state.gamma_adjusted)
-
-    def force(self, state: EnsembleState) -> np.ndarray:
-        """MMST nuclear force −Σ_kl ρ_kl ∇H_kl (Eh/Bohr), shape (n, D)."""
-        return -self.model.contract_gradient(state.R, self.density(state))
-
-    def energy(self, state: EnsembleState) -> np.ndarray:
-        """Conserved MMST energy per trajectory (Eh)."""
-        return mapping_energy(state.P, self.model.masses, self.model.hamiltonian(state.R), self.density(state))
 
     def _harmonic_flow(self, state: EnsembleState, tr: np.ndarray, g: np.ndarray | None,
                        gdot: np.ndarray | None = None) -> None:

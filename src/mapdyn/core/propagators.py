@@ -16,6 +16,7 @@ One model evaluation (H and the force contraction) per step at the new geometry.
 from __future__ import annotations
 
 import dataclasses
+from typing import Any
 
 import numpy as np
 
@@ -59,7 +60,26 @@ def adiabatic_actions(model: DiabaticModel, R: np.ndarray, x: np.ndarray, p: np.
     return 0.5 * np.abs(z) ** 2
 
 
-class DiabaticIntegrator:
+class MappingEnsemble:
+    """Density, force and energy of a batch of MMST trajectories on ``self.model`` with
+    ``self.options``; shared by the batched integrators."""
+
+    model: Any
+    options: MethodOptions
+
+    def density(self, state: EnsembleState) -> np.ndarray:
+        return effective_density(state.x, state.p, self.options, state.gamma_adjusted)
+
+    def force(self, state: EnsembleState) -> np.ndarray:
+        """MMST nuclear force −Σ_kl ρ_kl ∇H_kl (Eh/Bohr), shape (n, D)."""
+        return -self.model.contract_gradient(state.R, self.density(state))
+
+    def energy(self, state: EnsembleState) -> np.ndarray:
+        """Conserved MMST energy per trajectory (Eh)."""
+        return mapping_energy(state.P, self.model.masses, self.model.hamiltonian(state.R), self.density(state))
+
+
+class DiabaticIntegrator(MappingEnsemble):
     """One batched time step for a diabatic model; holds H and the force at the current R.
 
     ``step(state)`` advances the :class:`EnsembleState` in place by ``dt`` (a.u.).
@@ -75,16 +95,6 @@ class DiabaticIntegrator:
         self.model, self.options, self.dt = model, options, float(dt)
         self._R_cached: np.ndarray | None = None
 
-    def density(self, state: EnsembleState) -> np.ndarray:
-        return effective_density(state.x, state.p, self.options, state.gamma_adjusted)
-
-    def force(self, state: EnsembleState) -> np.ndarray:
-        """MMST nuclear force −Σ_kl ρ_kl ∇H_kl (Eh/Bohr), shape (n, D)."""
-        return -self.model.contract_gradient(state.R, self.density(state))
-
-    def energy(self, state: EnsembleState) -> np.ndarray:
-        """Conserved MMST energy per trajectory (Eh)."""
-        return mapping_energy(state.P, self.model.masses, self.model.hamiltonian(state.R), self.density(state))
 
     def _refresh(self, state: EnsembleState) -> None:
         self._H = self.model.hamiltonian(state.R)
