@@ -21,10 +21,10 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import make_marcus_study as ms  # noqa: E402
 
+from mapdyn.core.harmonic_bath import HarmonicBathIntegrator  # noqa: E402
 from mapdyn.core.mapping import zero_point_parameters  # noqa: E402
 from mapdyn.core.windows import window_assignment  # noqa: E402
 from mapdyn.models.spin_boson import thermal_bath_ensemble  # noqa: E402
-from mapdyn.propagators_harmonic import HarmonicBathIntegrator  # noqa: E402
 
 SEGMENTS = ((10.0, 100.0), (100.0, 200.0), (200.0, 300.0), (300.0, 600.0), (10.0, 300.0))
 
