@@ -57,6 +57,8 @@ def scattering_setup(cfg) -> tuple | None:
     interaction region (a scattering experiment); None otherwise."""
     from mapdyn.models.regions import default_interaction_region
 
+    if not cfg.initial.position_bohr:  # a thermal bath, not a wavepacket
+        return None
     model = make_model(cfg)
     if model.ndof != 1:
         return None
@@ -135,13 +137,15 @@ def load_trajectory_set(study: Study):
             "time step": f"{dt:.4g} au ({dt * AU_TIME_IN_FS:.4g} fs)",
             "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
     if study.batched:
+        # harmonic-bath models start in a diabatic state (donor/acceptor): their populations are diabatic
+        basis = "diabatic" if cfg.initial.bath_center else "adiabatic"
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
         for c, first, count in study.chunks():
             segs = study.checked_chunk_segments(c, full=True)[0]  # intact segments only
             if not segs:
                 continue
             parts = [read_h5(p)[0] for p, _ in segs]
-            a = np.concatenate([p["actions_adiabatic"] for p in parts])  # (T', n, F)
+            a = np.concatenate([p[f"actions_{basis}"] for p in parts])  # (T', n, F)
             e = np.concatenate([p["energy"] for p in parts])
             R = np.concatenate([p["R"] for p in parts])
             P = np.concatenate([p["P"] for p in parts])
@@ -166,7 +170,8 @@ def load_trajectory_set(study: Study):
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
                              coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
-                             metadata={**meta, "initial_basis": cfg.initial.basis}, warnings=study_warnings(study))
+                             metadata={**meta, "initial_basis": cfg.initial.basis, "population_basis": basis},
+                             warnings=study_warnings(study))
     rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
     symbols = None
     masses = None

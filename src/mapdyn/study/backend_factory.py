@@ -15,6 +15,10 @@ from mapdyn.study.config import StudyConfig
 def make_model(config: StudyConfig):
     """The diabatic model of a model study."""
     from mapdyn.models.tully import tully_model
+    from mapdyn.study.model_input import BATH_MODELS, bath_model
+
+    if config.electronic.model in BATH_MODELS:
+        return bath_model(config.electronic.model, config.electronic.model_parameters)
 
     return tully_model(config.electronic.model, **config.electronic.model_parameters)
 

@@ -326,6 +326,13 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
             state = EnsembleState(last["final_R"], last["final_P"], last["final_x"], last["final_p"],
                                   last["final_gamma"] if "final_gamma" in last else None,
                                   float(last["final_time"]), np.arange(first, first + count))
+        elif init.bath_center:  # harmonic-bath model: thermal Wigner bath, diabatic initial state
+            from mapdyn.models.spin_boson import thermal_bath_ensemble
+            from mapdyn.units import KB_IN_HARTREE_PER_K
+
+            beta = 1.0 / (KB_IN_HARTREE_PER_K * init.temperature_kelvin) if init.temperature_kelvin > 0 else np.inf
+            state = thermal_bath_ensemble(model, count, cfg.ensemble.seed, beta, init.state, cfg.options,
+                                          bath_center=init.bath_center, first_index=first)
         else:
             state = gaussian_wavepacket_ensemble(model, count, cfg.ensemble.seed, np.array(init.position_bohr),
                                                  np.array(init.momentum_au), np.array(init.width_bohr), init.state,
