@@ -14,7 +14,7 @@ from mapdyn.study.backend_factory import make_model
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.study.diagnostics import study_warnings
 from mapdyn.study.folder import INITIAL_CONDITIONS, REPORT, Study, StudyError
-from mapdyn.units import AU_TIME_IN_FS
+from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
 
 # ----------------------------------------------------------------------------------------------
@@ -101,7 +101,8 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
 
     kw = settings_from_table(getattr(cfg, "analysis", None) or {}, folder=study.folder,
                              backend_factory=fragment_backend, symbols=symbols)
-    spec = study_spectrum(study.folder)
+    fwhm = getattr(getattr(cfg, "initial", None), "spectrum_fwhm_hartree", None)
+    spec = study_spectrum(study.folder) if fwhm is None else study_spectrum(study.folder, fwhm * HARTREE_IN_EV)
     if spec is not None:
         kw["spectrum"] = spec
     if cfg.is_model and "scattering" not in overrides:
@@ -177,10 +178,12 @@ def load_trajectory_set(study: Study):
     masses = None
     initial_states = None
     if not cfg.is_model and os.path.exists(study.path(INITIAL_CONDITIONS)):
+        from mapdyn.study.initial_conditions import sampling_description
         from mapdyn.study.objects import decode_object
 
-        arrays, _ = read_h5(study.path(INITIAL_CONDITIONS))
+        arrays, ic_meta = read_h5(study.path(INITIAL_CONDITIONS))
         initial_states = arrays["initial_states"]
+        meta["initial conditions"] = sampling_description(cfg, ic_meta, arrays["frequencies_cm"])
         masses = np.asarray(decode_object(arrays, "modes").masses_me)
         symbols = cfg.molecule.symbols
     for i in range(study.ntraj):
