@@ -20,6 +20,10 @@ from mapdyn.study.config import ConfigError, StudyConfig
 from mapdyn.study.folder import INITIAL_CONDITIONS, Study, StudyError
 from mapdyn.study.objects import decode_object, encode_object
 
+#: oscillator strengths at or below this are dark for excitation = "energy_range" (numerical zeros
+#: of symmetry-forbidden transitions come out around 1e-30; dimensionless)
+DARK_OSCILLATOR_STRENGTH = 1e-8
+
 
 # ----------------------------------------------------------------------------------------------
 # initial conditions of molecular studies
@@ -46,9 +50,10 @@ def _choose_states(config: StudyConfig, backend, positions, guess, *, first: int
     them) also the excitation energies (Eh) and oscillator strengths of every row (the spectrum).
 
     "energy_range": row i draws state k among the states inside the window with probability
-    f_ik / Σ f_ik from its own stream (:func:`mapdyn.initial.excitation.state_choice_rng`, the
-    trajectory index i); ``initial_weights`` keeps Σ_{k in window} f_ik of each row (the weight of the
-    f-weighted ensemble; docs/theory.md).  A row with no bright state in the window is refused."""
+    f_ik / Σ f_ik (f ≤ :data:`DARK_OSCILLATOR_STRENGTH` counts as dark) from its own stream
+    (:func:`mapdyn.initial.excitation.state_choice_rng` of trajectory i); ``initial_weights`` keeps
+    Σ_{k in window} f_ik of each row (the geometry weight of the f-weighted ensemble,
+    docs/theory.md#excitation-and-absorption-spectrum).  A row with no bright state in the window is refused."""
     init = config.initial
     n = positions.shape[0]
     if init.excitation == "fixed" and not excitations:
@@ -74,7 +79,7 @@ def _choose_states(config: StudyConfig, backend, positions, guess, *, first: int
     from mapdyn.units import HARTREE_IN_EV
 
     lo, hi = init.energy_range_hartree
-    fw = np.where((exc >= lo) & (exc <= hi), f, 0.0)
+    fw = np.where((exc >= lo) & (exc <= hi) & (f > DARK_OSCILLATOR_STRENGTH), f, 0.0)
     per_row = fw.sum(axis=1)
     empty = np.nonzero(per_row <= 0)[0]
     if empty.size:
