@@ -180,3 +180,20 @@ def test_prepare_refuses_bad_input_before_writing(tmp_path, capsys, bad):
     err = capsys.readouterr().err
     assert err.startswith("mapdyn: error: initial.spectrum_fwhm") and err.count("\n") == 1
     assert not (tmp_path / "b").exists()
+
+
+def test_extend_after_prepare_appends_the_excitations_of_the_new_rows(tmp_path):
+    """Rows added by ``extend`` to a prepared study get their excitation energies and oscillator
+    strengths too, equal to those of a study prepared with that many trajectories at once."""
+    from mapdyn.study.initial_conditions import prepare_initial_conditions
+
+    one = write(tmp_path, "one.toml", H2.replace("trajectories = 2", "trajectories = 1"))
+    two = write(tmp_path, "two.toml", H2)
+    assert main(["prepare", one, "--output", str(tmp_path / "a")]) == 0
+    assert main(["extend", str(tmp_path / "a"), "--trajectories", "2", "--no-run"]) == 0
+    prepare_initial_conditions(Study(str(tmp_path / "a")))
+    assert main(["prepare", two, "--output", str(tmp_path / "b")]) == 0
+    a, _ = read_h5(tmp_path / "a" / "initial_conditions.h5")
+    b, _ = read_h5(tmp_path / "b" / "initial_conditions.h5")
+    for k in ("positions_bohr", "initial_states", "excitation_energies_hartree", "oscillator_strengths"):
+        assert a[k].shape[0] == 2 and np.array_equal(a[k], b[k]), k
