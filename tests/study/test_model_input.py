@@ -178,6 +178,8 @@ def test_the_shipped_spin_boson_example_runs_and_reports_diabatic_populations(tm
     assert pops["P_state_0"][-1] < 0.9
     summary = (out / "report" / "summary.md").read_text()
     assert "population_basis: diabatic" in summary
+    # the preflight samples the same thermal bath and checks the model's gradients and couplings
+    assert main(["check", os.path.join(INPUTS, "model_spin_boson.toml")]) == 0
 
 
 MOL_PLUS = set_key(MOLECULE, "initial", "state", None)
@@ -213,7 +215,7 @@ REFUSALS = [
     ("spin-boson epsilon", set_key(SPIN_BOSON, "electronic.parameters", "epsilon", "100"),
      "electronic.parameters.epsilon = 100: give"),
     ("bath model on the fly", set_key(SPIN_BOSON, "electronic", "engine", '"on_the_fly"'),
-     "electronic.engine = \"on_the_fly\""),
+     "electronic.engine = \"on_the_fly\": model \"spin_boson\" runs on the batched engine only"),
     ("bath temperature", set_key(SPIN_BOSON, "initial", "temperature", '"-3 K"'), "initial.temperature = \"-3 K\": must be >= 0 K"),
     ("bath center", set_key(SPIN_BOSON, "initial", "bath_center", '"acceptor"'), "initial.bath_center = \"acceptor\""),
     ("bath adiabatic basis", set_key(SPIN_BOSON, "initial", "basis", '"adiabatic"'),

@@ -257,7 +257,10 @@ def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: s
             states = sec.integer("states", F, what="an integer")
             if states != F:
                 raise ConfigError("electronic.states", f"= {states}: this {name} model has {F} states")
-            engine = sec.choice("engine", ("batched",), "batched")
+            if sec.raw("engine", "batched") != "batched":
+                raise ConfigError("electronic.engine", f"= {show_value(sec.raw('engine'))}: model \"{name}\" runs on the "
+                                  "batched engine only (its initial state is diabatic); use \"batched\"")
+            engine = "batched"
             return ElectronicConfig("model", states, model=name, model_parameters=parsed, engine=engine,
                                     level_of_theory=f"model {name}")
         if not isinstance(params, Mapping):
