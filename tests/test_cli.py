@@ -314,3 +314,14 @@ def test_kill_and_resume_molecular_is_bitwise(tmp_path):
     print(f"SA-CASSCF: killed at traj0 16/16, traj1 {m1['step']}/16; resume computed {steps} steps")
     assert file_ids(kept) == ids
     assert_equal_dicts(traj_frames(str(folder)), traj_frames(ref))
+
+
+def test_prepare_is_a_command_with_an_example(capsys):
+    with pytest.raises(SystemExit) as e:
+        main(["--help"])
+    assert e.value.code == 0
+    out = capsys.readouterr().out
+    assert "prepare" in out and "mapdyn prepare inputs/methaniminium_demo.toml" in out
+    with pytest.raises(SystemExit):
+        main(["prepare", "--help"])
+    assert "absorption_spectrum.png" in capsys.readouterr().out

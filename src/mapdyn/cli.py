@@ -27,6 +27,8 @@ __all__ = ["main", "build_parser"]
 
 _EPILOG = """\
 examples:
+  mapdyn prepare inputs/methaniminium_demo.toml  initial conditions, absorption spectrum and initial
+                                             states only (preparation/); a later run reuses them
   mapdyn run inputs/model_tully1.toml        run a study from its input file (creates its folder)
   mapdyn status runs/model_tully1            what is finished, running, failed or pending
   mapdyn resume runs/model_tully1            continue after Ctrl-C, a crash or a reboot
@@ -82,6 +84,16 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("study", metavar="STUDY.toml", help="study input file")
     r.add_argument("--output", metavar="DIR", help="study folder (default: study.folder, else runs/<name>)")
     common_run(r)
+
+    pr = sub.add_parser("prepare", help="initial conditions, absorption spectrum and initial states, no trajectories",
+                        description="Create the study folder, optimise the ground state, compute normal modes, "
+                                    "Wigner-sample every trajectory, compute the excited states at every sampled "
+                                    "geometry and write DIR/preparation/ (absorption_spectrum.png/.csv, "
+                                    "initial_states.csv, summary.txt); then stop. 'mapdyn run' on the same input "
+                                    "or folder reuses these initial conditions. Molecular studies only.")
+    pr.add_argument("study", metavar="STUDY.toml", help="study input file")
+    pr.add_argument("--output", metavar="DIR", help="study folder (default: study.folder, else runs/<name>)")
+    pr.add_argument("--force", action="store_true", help="prepare a study above the size limits")
 
     s = sub.add_parser("resume", help="continue an interrupted study",
                        description="Continue every unfinished trajectory from its last good checkpoint.")
@@ -298,6 +310,31 @@ def _cmd_run(args) -> int:
         return _execute(study, args)
 
 
+def _cmd_prepare(args) -> int:
+    from mapdyn.study.config import load_study_config
+    from mapdyn.study.feasibility import validate_study
+    from mapdyn.study.folder import Study, StudyError
+    from mapdyn.study.integrity import StudyLock
+    from mapdyn.study.prepare import prepare_study
+
+    cfg = load_study_config(args.study)
+    if cfg.is_model:
+        raise StudyError("prepare applies to molecular studies; a model study samples its initial conditions inside "
+                         "each task (nothing to prepare): use 'mapdyn run'")
+    validate_study(cfg, force=args.force)
+    folder = os.path.abspath(args.output or cfg.folder)
+    _check_writable(folder)
+    os.makedirs(folder, exist_ok=True)
+    with StudyLock(folder, "mapdyn prepare"):
+        study = Study.create(cfg, folder)
+        _clean(study)
+        study.check_layout()
+        add_study_log(study.folder)
+        prep = prepare_study(study, log=_log)
+    print("\n".join(prep.lines))
+    return 0
+
+
 def _check_writable(folder: str) -> None:
     """One-line refusal when ``folder`` cannot be created or written (checked before writing)."""
     import os
@@ -463,7 +500,7 @@ def _main(argv: Sequence[str] | None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    handler = {"run": _cmd_run, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
+    handler = {"run": _cmd_run, "prepare": _cmd_prepare, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
                "analyze": _cmd_analyze, "export": _cmd_export, "check": _cmd_check,
                "validate": _cmd_validate}[args.command]
     configure_console()  # --quiet only drops the progress bar; messages and warnings stay

@@ -14,7 +14,7 @@ from mapdyn.study.backend_factory import make_model
 from mapdyn.study.checkpoint import TrajectoryStore, read_h5
 from mapdyn.study.diagnostics import study_warnings
 from mapdyn.study.folder import INITIAL_CONDITIONS, REPORT, Study, StudyError
-from mapdyn.units import AU_TIME_IN_FS
+from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
 
 # ----------------------------------------------------------------------------------------------
@@ -57,6 +57,8 @@ def scattering_setup(cfg) -> tuple | None:
     interaction region (a scattering experiment); None otherwise."""
     from mapdyn.models.regions import default_interaction_region
 
+    if not cfg.initial.position_bohr:  # a thermal bath, not a wavepacket
+        return None
     model = make_model(cfg)
     if model.ndof != 1:
         return None
@@ -99,7 +101,8 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
 
     kw = settings_from_table(getattr(cfg, "analysis", None) or {}, folder=study.folder,
                              backend_factory=fragment_backend, symbols=symbols)
-    spec = study_spectrum(study.folder)
+    fwhm = getattr(getattr(cfg, "initial", None), "spectrum_fwhm_hartree", None)
+    spec = study_spectrum(study.folder) if fwhm is None else study_spectrum(study.folder, fwhm * HARTREE_IN_EV)
     if spec is not None:
         kw["spectrum"] = spec
     if cfg.is_model and "scattering" not in overrides:
@@ -135,13 +138,15 @@ def load_trajectory_set(study: Study):
             "time step": f"{dt:.4g} au ({dt * AU_TIME_IN_FS:.4g} fs)",
             "seed": cfg.ensemble.seed, "backend": cfg.electronic.level_of_theory}
     if study.batched:
+        # harmonic-bath models start in a diabatic state (donor/acceptor): their populations are diabatic
+        basis = "diabatic" if cfg.initial.bath_center else "adiabatic"
         acts, ens, Rs, Ps, idx, stat = [], [], [], [], [], []
         for c, first, count in study.chunks():
             segs = study.checked_chunk_segments(c, full=True)[0]  # intact segments only
             if not segs:
                 continue
             parts = [read_h5(p)[0] for p, _ in segs]
-            a = np.concatenate([p["actions_adiabatic"] for p in parts])  # (T', n, F)
+            a = np.concatenate([p[f"actions_{basis}"] for p in parts])  # (T', n, F)
             e = np.concatenate([p["energy"] for p in parts])
             R = np.concatenate([p["R"] for p in parts])
             P = np.concatenate([p["P"] for p in parts])
@@ -166,16 +171,19 @@ def load_trajectory_set(study: Study):
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
                              coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
-                             metadata={**meta, "initial_basis": cfg.initial.basis}, warnings=study_warnings(study))
+                             metadata={**meta, "initial_basis": cfg.initial.basis, "population_basis": basis},
+                             warnings=study_warnings(study))
     rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
     symbols = None
     masses = None
     initial_states = None
     if not cfg.is_model and os.path.exists(study.path(INITIAL_CONDITIONS)):
+        from mapdyn.study.initial_conditions import sampling_description
         from mapdyn.study.objects import decode_object
 
-        arrays, _ = read_h5(study.path(INITIAL_CONDITIONS))
+        arrays, ic_meta = read_h5(study.path(INITIAL_CONDITIONS))
         initial_states = arrays["initial_states"]
+        meta["initial conditions"] = sampling_description(cfg, ic_meta, arrays["frequencies_cm"])
         masses = np.asarray(decode_object(arrays, "modes").masses_me)
         symbols = cfg.molecule.symbols
     for i in range(study.ntraj):

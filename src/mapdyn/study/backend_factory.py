@@ -15,6 +15,10 @@ from mapdyn.study.config import StudyConfig
 def make_model(config: StudyConfig):
     """The diabatic model of a model study."""
     from mapdyn.models.tully import tully_model
+    from mapdyn.study.model_input import BATH_MODELS, bath_model
+
+    if config.electronic.model in BATH_MODELS:
+        return bath_model(config.electronic.model, config.electronic.model_parameters)
 
     return tully_model(config.electronic.model, **config.electronic.model_parameters)
 
@@ -72,3 +76,22 @@ def _ground_state_backend(config: StudyConfig, dynamics_backend):
     return gs, gs.level_of_theory
 
 
+
+
+def model_initial_ensemble(config: StudyConfig, model, count: int, first_index: int = 0):
+    """Initial :class:`mapdyn.core.sampling.EnsembleState` of trajectories ``first_index`` … of a
+    batched model study: the Gaussian wavepacket of ``[initial]`` (Tully models) or, for the
+    harmonic-bath models, the thermal Wigner bath at ``initial.temperature`` on a diabatic state."""
+    init = config.initial
+    if init.bath_center:
+        from mapdyn.models.spin_boson import thermal_bath_ensemble
+        from mapdyn.units import KB_IN_HARTREE_PER_K
+
+        beta = 1.0 / (KB_IN_HARTREE_PER_K * init.temperature_kelvin) if init.temperature_kelvin > 0 else np.inf
+        return thermal_bath_ensemble(model, count, config.ensemble.seed, beta, init.state, config.options,
+                                     bath_center=init.bath_center, first_index=first_index)
+    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
+
+    return gaussian_wavepacket_ensemble(model, count, config.ensemble.seed, np.array(init.position_bohr),
+                                        np.array(init.momentum_au), np.array(init.width_bohr), init.state,
+                                        config.options, basis=init.basis, first_index=first_index)

@@ -28,10 +28,13 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
                            RHF orbital indices, 0 = lowest), density_fitting, coupling_form,
                            spin_purity
                  tddft:    basis, functional, response, grid_level, gradient_residual_limit
-                 model:    model, parameters, engine
+                 model:    model, parameters, engine (vibronic / spin_boson parameters:
+                           see mapdyn.study.model_input)
                  callback: function
-    [initial]    molecules: optimize, normal_modes_from, temperature, excitation, state
-                 models:    position, momentum, width, state, basis
+    [initial]    molecules: optimize, normal_modes_from, temperature, excitation, state,
+                            energy_range, spectrum_fwhm
+                 models:    position, momentum, width, state, basis (Tully models);
+                            temperature, bath_center, state (vibronic, spin_boson)
     [method]     method, window, zero_point, gamma                 (:class:`MethodOptions`)
     [dynamics]   time_step, duration, checkpoint_every, record_every, drift_threshold,
                  stop_on_drift, substeps, propagation
@@ -73,8 +76,8 @@ __all__ = ["ConfigError", "StudyConfig", "MoleculeConfig", "ElectronicConfig", "
 
 #: Backends a study can name.
 BACKENDS = ("casscf", "tddft", "model", "callback")
-#: Model names for backend = "model" (mapdyn.models.tully).
-MODEL_NAMES = ("tully1", "tully2", "tully3", "wide_crossing")
+#: Model names for backend = "model" (mapdyn.models.tully; harmonic-bath models: study/model_input).
+MODEL_NAMES = ("tully1", "tully2", "tully3", "wide_crossing", "vibronic", "spin_boson")
 #: Two atoms closer than this (Å) are refused as overlapping (no bond is shorter than ~0.5 Å;
 #: H2 is 0.74 Å — common knowledge).
 MIN_ATOM_DISTANCE_ANGSTROM = 0.3
@@ -95,8 +98,10 @@ _ELEC_BY_BACKEND = {
     "model": ("model", "parameters", "engine"),
     "callback": ("function",),
 }
-_INITIAL_MOLECULE = ("optimize", "normal_modes_from", "temperature", "temperature_kelvin", "excitation", "state")
-_INITIAL_MODEL = ("position", "momentum", "width", "position_bohr", "momentum_au", "width_bohr", "state", "basis")
+_INITIAL_MOLECULE = ("optimize", "normal_modes_from", "temperature", "temperature_kelvin", "excitation", "state",
+                     "energy_range", "spectrum_fwhm")
+_INITIAL_MODEL = ("position", "momentum", "width", "position_bohr", "momentum_au", "width_bohr", "state", "basis",
+                  "temperature", "bath_center")
 #: Old keys with the unit in the name → (new key, unit to write): still read, with a FutureWarning.
 DEPRECATED_KEYS = {"initial.temperature_kelvin": ("initial.temperature", "K"),
                    "initial.position_bohr": ("initial.position", "bohr"),
@@ -245,6 +250,19 @@ def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: s
             raise ConfigError("molecule", "is not used with electronic.backend = \"model\" (the model defines the coordinates)")
         name = sec.choice("model", MODEL_NAMES, required=True)
         params = sec.raw("parameters", {})
+        from mapdyn.study.model_input import BATH_MODELS, parse_bath_model
+
+        if name in BATH_MODELS:
+            parsed, F = parse_bath_model(name, params)
+            states = sec.integer("states", F, what="an integer")
+            if states != F:
+                raise ConfigError("electronic.states", f"= {states}: this {name} model has {F} states")
+            if sec.raw("engine", "batched") != "batched":
+                raise ConfigError("electronic.engine", f"= {show_value(sec.raw('engine'))}: model \"{name}\" runs on the "
+                                  "batched engine only (its initial state is diabatic); use \"batched\"")
+            engine = "batched"
+            return ElectronicConfig("model", states, model=name, model_parameters=parsed, engine=engine,
+                                    level_of_theory=f"model {name}")
         if not isinstance(params, Mapping):
             raise ConfigError("electronic.parameters", "must be a table of model parameters, e.g. {A = 0.01, B = 1.6}")
         from mapdyn.models.tully import tully_model
@@ -378,6 +396,24 @@ def _parse_initial(sec: Section, elec: ElectronicConfig, deprecated: list | None
         state = sec.integer("state", 0, minimum=0, what=f"an electronic state index 0..{F - 1}")
         if state >= F:
             raise ConfigError("initial.state", f"= {state}: only states 0..{F - 1} are computed (electronic.states = {F})")
+        from mapdyn.study.model_input import BATH_MODELS
+
+        if elec.model in BATH_MODELS:
+            for k in ("position", "momentum", "width", "position_bohr", "momentum_au", "width_bohr"):
+                if sec.has(k):
+                    raise ConfigError(sec.key(k), f"is not used with model \"{elec.model}\" (its bath starts thermal: "
+                                      "give initial.temperature and initial.bath_center)")
+            if sec.raw("basis", "diabatic") != "diabatic":
+                raise ConfigError("initial.basis", f"= {show_value(sec.raw('basis'))}: model \"{elec.model}\" starts in a "
+                                  "diabatic state; only \"diabatic\" is allowed")
+            temp = parse_quantity(sec.raw("temperature", "0 K"), "initial.temperature", "temperature")
+            if temp < 0:
+                raise ConfigError("initial.temperature", f"= {show_value(sec.raw('temperature'))}: must be >= 0 K")
+            return InitialConfig(state=state, temperature_kelvin=temp, basis="diabatic",
+                                 bath_center=sec.choice("bath_center", ("zero", "donor"), "zero"))
+        for k in ("temperature", "bath_center"):
+            if sec.has(k):
+                raise ConfigError(sec.key(k), f"is used with the harmonic-bath models ({', '.join(BATH_MODELS)}) only")
         return InitialConfig(state=state,
                              position_bohr=_quantities(sec, "position", "position_bohr", "length", 1, deprecated,
                                                        what="the wavepacket centre"),
@@ -386,14 +422,23 @@ def _parse_initial(sec: Section, elec: ElectronicConfig, deprecated: list | None
                              width_bohr=_quantities(sec, "width", "width_bohr", "length", 1, deprecated, positive=True,
                                                     what="the position width σ_R"),
                              basis=sec.choice("basis", ("adiabatic", "diabatic"), "adiabatic"))
-    excitation = sec.choice("excitation", ("fixed", "brightest"), "fixed")
+    excitation = sec.choice("excitation", ("fixed", "brightest", "energy_range"), "fixed")
+    energy_range = None
+    if excitation == "energy_range":
+        energy_range = _energy_window(sec)
+    elif sec.has("energy_range"):
+        raise ConfigError("initial.energy_range", f"is used with excitation = \"energy_range\" only (here \"{excitation}\")")
+    fwhm = parse_quantity(sec.raw("spectrum_fwhm", "0.15 eV"), "initial.spectrum_fwhm", "energy")
+    if not fwhm > 0:
+        raise ConfigError("initial.spectrum_fwhm", f"= {show_value(sec.raw('spectrum_fwhm'))}: must be a positive width, "
+                          "e.g. \"0.15 eV\"")
     if excitation == "fixed":
         state = sec.integer("state", required=True, minimum=0, what=f"the initial adiabatic state 0..{F - 1} (1 = first excited)")
         if state >= F:
             raise ConfigError("initial.state", f"= {state}: only states 0..{F - 1} are computed (electronic.states = {F})")
     else:
         if sec.has("state"):
-            raise ConfigError("initial.state", "is not used with excitation = \"brightest\" (the state is chosen per geometry)")
+            raise ConfigError("initial.state", f"is not used with excitation = \"{excitation}\" (the state is chosen per geometry)")
         state = None
     default_modes = "dynamics" if elec.backend == "callback" else "scf"
     modes = sec.choice("normal_modes_from", ("scf", "dynamics"), default_modes)
@@ -412,7 +457,22 @@ def _parse_initial(sec: Section, elec: ElectronicConfig, deprecated: list | None
         if temp < 0:
             raise ConfigError("initial.temperature", f"= {show_value(sec.raw('temperature'))}: must be >= 0 K")
     return InitialConfig(state=state, optimize=sec.boolean("optimize", True), normal_modes_from=modes,
-                         temperature_kelvin=temp, excitation=excitation)
+                         temperature_kelvin=temp, excitation=excitation, energy_range_hartree=energy_range,
+                         spectrum_fwhm_hartree=fwhm)
+
+
+def _energy_window(sec: Section) -> tuple[float, float]:
+    """``initial.energy_range = ["<low>", "<high>"]``: excitation-energy window (Eh), low < high, low >= 0."""
+    v = sec.raw("energy_range")
+    if v is None:
+        raise ConfigError("initial.energy_range", "is missing; excitation = \"energy_range\" needs a window, "
+                          "e.g. [\"8 eV\", \"10 eV\"]")
+    if not isinstance(v, list) or len(v) != 2:
+        raise ConfigError("initial.energy_range", f"= {show_value(v)}: give [low, high] with units, e.g. [\"8 eV\", \"10 eV\"]")
+    lo, hi = (parse_quantity(x, "initial.energy_range", "energy") for x in v)
+    if not 0 <= lo < hi:
+        raise ConfigError("initial.energy_range", f"= {show_value(v)}: needs 0 <= low < high")
+    return (lo, hi)
 
 
 #: methods a study can run (the neighbouring methods of docs/theory.md#neighbouring-methods are model-engine only)

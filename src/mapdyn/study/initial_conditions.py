@@ -16,9 +16,13 @@ from mapdyn.study.checkpoint import (
     read_h5,
     write_h5,
 )
-from mapdyn.study.config import StudyConfig
+from mapdyn.study.config import ConfigError, StudyConfig
 from mapdyn.study.folder import INITIAL_CONDITIONS, Study, StudyError
 from mapdyn.study.objects import decode_object, encode_object
+
+#: oscillator strengths at or below this are dark for excitation = "energy_range" (numerical zeros
+#: of symmetry-forbidden transitions come out around 1e-30; dimensionless)
+DARK_OSCILLATOR_STRENGTH = 1e-8
 
 
 # ----------------------------------------------------------------------------------------------
@@ -40,25 +44,65 @@ def _sample_rows(config: StudyConfig, modes, indices) -> dict:
     return {"positions_bohr": np.array(pos), "momenta_au": np.array(mom), "rng_states": rng_states}
 
 
-def _choose_states(config: StudyConfig, backend, positions, guess) -> tuple[np.ndarray, dict]:
+def _choose_states(config: StudyConfig, backend, positions, guess, *, first: int = 0,
+                   excitations: bool = False) -> tuple[np.ndarray, dict]:
+    """Initial states of rows ``first`` … ``first + n − 1``; with ``excitations`` (or a rule that needs
+    them) also the excitation energies (Eh) and oscillator strengths of every row (the spectrum).
+
+    "energy_range": row i draws state k among the states inside the window with probability
+    f_ik / Σ f_ik (f ≤ :data:`DARK_OSCILLATOR_STRENGTH` counts as dark) from its own stream
+    (:func:`mapdyn.initial.excitation.state_choice_rng` of trajectory i); ``initial_weights`` keeps
+    Σ_{k in window} f_ik of each row (the geometry weight of the f-weighted ensemble,
+    docs/theory.md#excitation-and-absorption-spectrum).  A row with no bright state in the window is refused."""
     init = config.initial
     n = positions.shape[0]
-    if init.excitation == "fixed":
+    if init.excitation == "fixed" and not excitations:
         return np.full(n, int(init.state)), {}
     from mapdyn.initial.excitation import choose_initial_states, excitation_properties
 
-    props = excitation_properties(backend, positions, guess=guess, progress=True)
-    choice = choose_initial_states(props.excitation_energies_hartree, props.oscillator_strengths, "brightest")
-    states = np.zeros(n, dtype=int)
-    states[choice.sample_index] = choice.state
-    return states, {"excitation_energies_hartree": props.excitation_energies_hartree,
-                    "oscillator_strengths": props.oscillator_strengths}
+    try:
+        props = excitation_properties(backend, positions, guess=guess, progress=True)
+    except ValueError as err:
+        if init.excitation != "fixed":
+            raise StudyError(f"initial.excitation = \"{init.excitation}\" needs oscillator strengths: {err}") from None
+        return np.full(n, int(init.state)), {}  # e.g. a callback without transition dipoles: no spectrum
+    exc, f = props.excitation_energies_hartree, props.oscillator_strengths
+    extra = {"excitation_energies_hartree": exc, "oscillator_strengths": f}
+    if init.excitation == "fixed":
+        return np.full(n, int(init.state)), extra
+    if init.excitation == "brightest":
+        choice = choose_initial_states(exc, f, "brightest")
+        states = np.zeros(n, dtype=int)
+        states[choice.sample_index] = choice.state
+        return states, extra
+    from mapdyn.initial.excitation import state_choice_rng
+    from mapdyn.units import HARTREE_IN_EV
+
+    lo, hi = init.energy_range_hartree
+    fw = np.where((exc >= lo) & (exc <= hi) & (f > DARK_OSCILLATOR_STRENGTH), f, 0.0)
+    per_row = fw.sum(axis=1)
+    empty = np.nonzero(per_row <= 0)[0]
+    if empty.size:
+        raise ConfigError("initial.energy_range", f"= [{lo * HARTREE_IN_EV:.4g}, {hi * HARTREE_IN_EV:.4g}] eV holds no "
+                          f"bright excitation at {empty.size} of {n} sampled geometries (e.g. trajectory {first + empty[0]}; "
+                          f"excitations span {exc.min() * HARTREE_IN_EV:.3f}..{exc.max() * HARTREE_IN_EV:.3f} eV); "
+                          "widen the window")
+    states = np.empty(n, dtype=int)
+    for j in range(n):
+        u = state_choice_rng(config.ensemble.seed, first + j + 1, first + j).random()
+        cdf = np.cumsum(fw[j]) / per_row[j]
+        states[j] = int(min(np.searchsorted(cdf, u, side="right"), fw.shape[1] - 1)) + 1
+    extra["initial_weights"] = per_row
+    return states, extra
 
 
-def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda s: None) -> str:
+def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda s: None, *,
+                               excitations: bool = False) -> str:
     """Optimise, compute the Hessian and normal modes, Wigner-sample every trajectory (molecules).
 
     Idempotent: existing rows are kept; rows for trajectories added by ``extend`` are appended.
+    ``excitations``: also compute the excitation energies and oscillator strengths of every row
+    (``mapdyn prepare``: the absorption spectrum); a file holding them keeps them for appended rows.
     Writes ``initial_conditions.h5`` atomically and returns its path.
     """
     import warnings
@@ -75,6 +119,15 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
     if os.path.exists(path):
         arrays, meta = read_h5(path)
         have = int(meta["trajectories"])
+        if excitations and "oscillator_strengths" not in arrays:
+            # prepared by a run before: the spectrum is added, every row and its state stay as they are
+            backend = make_backend(config)
+            guess = decode_object(arrays, "reference_guess") if "reference_guess.tree" in arrays else None
+            log(f"excitation energies of the {have} sampled geometries")
+            _, extra = _choose_states(config, backend, arrays["positions_bohr"], guess, excitations=True)
+            extra.pop("initial_weights", None)
+            arrays.update(extra)
+            write_h5(path, arrays, meta)
         if have >= n:
             return path
         modes = decode_object(arrays, "modes")
@@ -82,7 +135,8 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
         log(f"sampling initial conditions for trajectories {have}..{n - 1}")
         rows = _sample_rows(config, modes, range(have, n))
         guess = decode_object(arrays, "reference_guess") if "reference_guess.tree" in arrays else None
-        states, extra = _choose_states(config, backend, rows["positions_bohr"], guess)
+        states, extra = _choose_states(config, backend, rows["positions_bohr"], guess, first=have,
+                                       excitations="oscillator_strengths" in arrays)
         arrays["positions_bohr"] = np.concatenate([arrays["positions_bohr"], rows["positions_bohr"]])
         arrays["momenta_au"] = np.concatenate([arrays["momenta_au"], rows["momenta_au"]])
         arrays["initial_states"] = np.concatenate([arrays["initial_states"], states])
@@ -121,7 +175,7 @@ def prepare_initial_conditions(study: Study, log: Callable[[str], None] = lambda
         f"sampling {n} Wigner geometries at {config.initial.temperature_kelvin:g} K")
     rows = _sample_rows(config, modes, range(n))
     ref = backend.compute(x, guess=None, need_gradients=False)
-    states, extra = _choose_states(config, backend, rows["positions_bohr"], ref.guess)
+    states, extra = _choose_states(config, backend, rows["positions_bohr"], ref.guess, excitations=excitations)
     arrays = {"reference_positions_bohr": x, "hessian": hess.hessian, "frequencies_cm": modes.frequencies_cm,
               "positions_bohr": rows["positions_bohr"],
               "momenta_au": rows["momenta_au"], "initial_states": states,
@@ -153,3 +207,22 @@ def initial_row(study: Study, index: int) -> tuple[np.ndarray, np.ndarray, int, 
     rng_state = json.loads(arrays["rng_states_json"].decode())[index]
     return (arrays["positions_bohr"][index], arrays["momenta_au"][index], int(arrays["initial_states"][index]),
             rng_state, np.asarray(modes.masses_me))
+
+
+def sampling_description(config: StudyConfig, meta: dict, frequencies_cm: np.ndarray) -> str:
+    """One sentence: where the normal modes of the Wigner sampling come from and their frequency range
+    (cm⁻¹), e.g. for an SA-CASSCF study the RHF closed-shell ground state, not the dynamics' method."""
+    level = str(meta.get("level_of_theory", "?"))
+    how = {"analytic": "analytic Hessian", "finite_difference": "finite-difference Hessian"}.get(
+        str(meta.get("hessian_method")), f"{meta.get('hessian_method')} Hessian")
+    w = np.asarray(frequencies_cm, dtype=float)
+    dyn = config.electronic.level_of_theory
+    if config.initial.normal_modes_from == "scf":
+        source = f"the closed-shell singlet ground state at {level}"
+        if level != dyn:
+            source += f" (not the dynamics' {dyn})"
+    else:
+        source = f"the ground state of the dynamics' method, {level}"
+    opt = "optimised geometry" if meta.get("optimized") else "input geometry (not optimised)"
+    return (f"Wigner sampling at {float(meta.get('temperature_kelvin', 0.0)):g} K from {w.size} normal mode{'s' if w.size != 1 else ''} of "
+            f"{source}, {how} at the {opt}; frequencies {w.min():.0f}–{w.max():.0f} cm⁻¹")

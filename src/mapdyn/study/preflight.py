@@ -429,15 +429,11 @@ def molecular_preflight(backend: Any, positions_bohr: np.ndarray, *, n_steps: in
 def _batched_model_cost(config: Any, probe_steps: int = 50) -> tuple[float, int]:
     """Seconds per trajectory-step of the batched diabatic engine, timed on one task-sized batch."""
     from mapdyn.core.propagators import DiabaticIntegrator
-    from mapdyn.core.sampling import gaussian_wavepacket_ensemble
-    from mapdyn.study.backend_factory import make_model
+    from mapdyn.study.backend_factory import make_model, model_initial_ensemble
 
     model = make_model(config)
     n = int(min(config.ensemble.batch, config.ensemble.trajectories))
-    init = config.initial
-    state = gaussian_wavepacket_ensemble(model, n, config.ensemble.seed, position=init.position_bohr,
-                                         momentum=init.momentum_au, position_width=init.width_bohr,
-                                         initial_state=init.state, options=config.options, basis=init.basis)
+    state = model_initial_ensemble(config, model, n)
     integ = DiabaticIntegrator(model, config.options, config.dynamics.time_step_au)
     integ.step(state)  # first call outside the timing (allocation, caches)
     t0 = time.perf_counter()
@@ -494,8 +490,12 @@ def preflight(study_config: Any, *, n_coordinates: int = 3,
     workers = int(cfg.ensemble.workers)
     backend = make_backend(cfg)
     if cfg.is_model:
-        pos = (backend.positions_from_model(np.asarray(cfg.initial.position_bohr, dtype=float))
-               if positions_bohr is None else np.asarray(positions_bohr, dtype=float))
+        if cfg.initial.bath_center:  # harmonic-bath model: the centre of its thermal sample
+            model = backend.model
+            centre = model.diabatic_minimum(cfg.initial.state) if cfg.initial.bath_center == "donor" else np.zeros(model.ndof)
+        else:
+            centre = np.asarray(cfg.initial.position_bohr, dtype=float)
+        pos = backend.positions_from_model(centre) if positions_bohr is None else np.asarray(positions_bohr, dtype=float)
         check = check_backend(backend, pos, n_coordinates=n_coordinates)
         lines = [dataclasses.replace(l, message=f"[R = {_model_point(backend, pos)}] {l.message}") for l in check.lines]
         if check.passed and positions_bohr is None:

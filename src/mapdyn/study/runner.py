@@ -37,7 +37,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from mapdyn.files import write_json
-from mapdyn.study.backend_factory import make_backend, make_model
+from mapdyn.study.backend_factory import make_backend, make_model, model_initial_ensemble
 from mapdyn.study.checkpoint import TrajectoryStore, write_h5
 from mapdyn.study.cluster import dask_worker_leaving
 from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings, record_warnings
@@ -295,7 +295,7 @@ def _state_meta(study: Study, dyn) -> dict:
 def chunk_task(study_dir: str, chunk: int) -> TaskResult:
     """Run (or continue to the study's end time) chunk ``chunk`` of a batched model study."""
     from mapdyn.core.propagators import run_diabatic
-    from mapdyn.core.sampling import EnsembleState, gaussian_wavepacket_ensemble
+    from mapdyn.core.sampling import EnsembleState
 
     t0 = time.perf_counter()
     study = _open(study_dir)
@@ -318,7 +318,6 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
         if os.path.exists(failure):
             os.unlink(failure)
         model = make_model(cfg)
-        init = cfg.initial
         if segs:
             from mapdyn.study.checkpoint import read_h5
 
@@ -327,9 +326,7 @@ def chunk_task(study_dir: str, chunk: int) -> TaskResult:
                                   last["final_gamma"] if "final_gamma" in last else None,
                                   float(last["final_time"]), np.arange(first, first + count))
         else:
-            state = gaussian_wavepacket_ensemble(model, count, cfg.ensemble.seed, np.array(init.position_bohr),
-                                                 np.array(init.momentum_au), np.array(init.width_bohr), init.state,
-                                                 cfg.options, basis=init.basis, first_index=first)
+            state = model_initial_ensemble(cfg, model, count, first)
         import warnings
 
         with warnings.catch_warnings(record=True) as caught_chunk:

@@ -12,6 +12,7 @@ from mapdyn.core.options import MethodOptions
 from mapdyn.study.input_values import (
     ConfigError,
 )
+from mapdyn.units import HARTREE_IN_EV
 
 
 # ----------------------------------------------------------------------------------------------
@@ -58,10 +59,15 @@ class InitialConfig:
 
     Molecules: optimize (bool), normal_modes_from ("scf" RHF/RKS in the same basis with an
     analytic Hessian | "dynamics": the dynamics backend's ground state with a finite-difference
-    Hessian), temperature_kelvin (K), excitation ("fixed" | "brightest"), state (adiabatic index,
-    0 = ground state; "fixed" only).
+    Hessian), temperature_kelvin (K), excitation ("fixed" | "brightest" | "energy_range"), state
+    (adiabatic index, 0 = ground state; "fixed" only), energy_range_hartree ((low, high) in Eh;
+    "energy_range" only: the state of each geometry is drawn with probability ∝ f_0k among the
+    states inside the window, see mapdyn.initial.excitation), spectrum_fwhm_hartree (Eh, the
+    Gaussian line width of the absorption spectrum written by ``mapdyn prepare`` and the report).
     Models: position_bohr, momentum_au, width_bohr (Gaussian wavepacket centre, mean momentum,
-    position width σ_R; σ_P = 1/(2σ_R)), state, basis ("adiabatic" | "diabatic").
+    position width σ_R; σ_P = 1/(2σ_R)), state, basis ("adiabatic" | "diabatic"); harmonic-bath
+    models (vibronic, spin_boson) instead: temperature_kelvin (K, thermal Wigner bath) and
+    bath_center ("zero" | "donor", see mapdyn.models.spin_boson.thermal_bath_ensemble).
     """
 
     state: int | None = None
@@ -73,6 +79,9 @@ class InitialConfig:
     momentum_au: tuple = ()
     width_bohr: tuple = ()
     basis: str = "adiabatic"
+    energy_range_hartree: tuple | None = None
+    spectrum_fwhm_hartree: float = 0.15 / HARTREE_IN_EV
+    bath_center: str = ""
 
 
 @dataclasses.dataclass(frozen=True)
