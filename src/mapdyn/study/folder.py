@@ -508,6 +508,8 @@ class Study:
                 status = "running"
             elif problems:
                 status = "damaged"
+            elif meta and meta.get("stopped") and meta.get("end_event"):  # ended in a channel: an outcome
+                status, reason = "finished", meta.get("stop_reason") or "ended"
             elif meta and meta.get("stopped"):
                 status, reason = "failed", meta.get("stop_reason") or "stopped"
             elif meta and step >= target:
