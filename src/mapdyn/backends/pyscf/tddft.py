@@ -73,6 +73,10 @@ DEFAULT_SEAM_GAP = 0.1 / HARTREE_IN_EV
 #: counts as having left the computed window (docs/theory.md#root-buffer).
 ROOT_WINDOW_WEIGHT_MIN = 0.5
 
+#: A previous S1 that vanished from the computed roots counts as having entered the S1/S0 region when
+#: the previous S1−S0 gap was below this multiple of ``seam_gap`` (docs/theory.md#s1s0-region).
+SEAM_WATCH_FACTOR = 5.0
+
 #: Tolerance on |C'ᵀ S C' − 1| for a warm-start orbital set after Löwdin orthonormalisation
 #: (docs/theory.md#pyscf-pitfalls: unorthonormalised warm starts converge to wrong energies).
 WARM_START_ORTHO_TOL = 1e-10
@@ -224,6 +228,7 @@ class TDDFTGuess:
     x_amplitudes : (F−1, nocc, nvir) excited-state amplitudes, normalised 2ΣX² = 1, with the signs
         aligned to the previous step (the phase convention the next overlap refers to).
     fingerprint : (symbols, basis, charge) the guess belongs to.
+    gap_Eh : S1 − S0 energy gap at that geometry (Eh), None with one state.
     """
 
     positions_bohr: np.ndarray
@@ -231,6 +236,7 @@ class TDDFTGuess:
     nocc: int
     x_amplitudes: np.ndarray
     fingerprint: tuple
+    gap_Eh: float | None = None
 
 
 class _ResponseCPHF:
@@ -497,6 +503,26 @@ class TDDFTBackend:
                                  "positions_bohr": np.asarray(r, dtype=float).tolist()})
         return exc_real
 
+    def _check_window(self, diagnostics: dict, guess: TDDFTGuess, attempts: list[dict]) -> None:
+        """A propagated state of the previous step that is not among the computed roots any more
+        (``root_window_weight`` < :data:`ROOT_WINDOW_WEIGHT_MIN`) makes the surfaces discontinuous.
+        If it is S1 and the previous S1−S0 gap was below :data:`SEAM_WATCH_FACTOR` × ``seam_gap``, S1
+        went down into the S1/S0 region within the step: :class:`RegionReached`.  Otherwise a
+        ``BackendError`` names the state (docs/theory.md#root-buffer)."""
+        weight = diagnostics["root_window_weight"]
+        left = [k for k in range(len(weight)) if weight[k] < ROOT_WINDOW_WEIGHT_MIN]
+        if not left:
+            return
+        gap = guess.gap_Eh
+        if (left == [1] and self.seam_gap is not None and gap is not None
+                and gap < SEAM_WATCH_FACTOR * self.seam_gap):
+            raise RegionReached("S1/S0 region", f"S1 of the previous step (S1-S0 gap {gap * HARTREE_IN_EV:.3f} eV) "
+                                f"is not among the computed roots any more (weight {weight[1]:.2f})",
+                                {"gap_Eh": gap, "seam_gap_Eh": self.seam_gap, "window_weight": float(weight[1])})
+        raise BackendError("electronic structure discontinuous: state(s) " + ", ".join(map(str, left))
+                           + " of the previous step are not among the computed roots (weights "
+                           + ", ".join(f"{weight[k]:.2f}" for k in left) + ")", attempts)
+
     def _run_td(self, mf, attempts: list[dict]):
         nexc = self.nstates - 1
         maxroots = self._nocc * self._nvir
@@ -508,6 +534,10 @@ class TDDFTBackend:
             else:
                 td = mf.TDDFT() if self.xc is not None else mf.TDHF()
             td.nstates = nroots
+            if self.method == "tda":
+                # PySCF silently drops roots below 1e-3 Eh (positive_eig_threshold); keep them so the
+                # S1/S0-region rule sees a collapsing or negative S1 (docs/theory.md#pyscf-pitfalls)
+                td.positive_eig_threshold = -np.inf
             td.conv_tol = self.td_conv_tol
             td.max_cycle = max_cycle
             td.verbose = 0
@@ -616,6 +646,7 @@ class TDDFTBackend:
             raw = raw_all[:, :self.nstates]
             diagnostics["overlap_raw"] = raw
             diagnostics.update(root_window_diagnostics(raw_all, self.nstates))
+            self._check_window(diagnostics, guess, attempts)
             match = match_states(raw)
             signs = match.signs
             overlap_aligned = match.overlap
@@ -688,7 +719,8 @@ class TDDFTBackend:
             "overlap_convention": "X-only, 2ΣX²=1" if self.method == "tddft" else "CIS-like X, 2ΣX²=1",
         })
         new_guess = TDDFTGuess(positions_bohr=r.copy(), mo_coeff=c_new.copy(), nocc=nocc,
-                               x_amplitudes=x_norm.copy(), fingerprint=self.fingerprint)
+                               x_amplitudes=x_norm.copy(), fingerprint=self.fingerprint,
+                               gap_Eh=float(energies[1] - energies[0]) if nexc > 0 else None)
         result = ElectronicResult(
             energies=energies, gradients=gradients, couplings=None, overlap_prev=overlap_aligned,
             transition_dipoles=dip, spin_squared=np.zeros(self.nstates), guess=new_guess,

@@ -80,7 +80,7 @@ def solve_zvector(apply_response: Callable[[np.ndarray], np.ndarray], diagonal: 
     attempts: list = []
     solver = ""
     best_res = residual(best_z)
-    restart = int(min(n, 40))
+    restart = int(max(1, min(n, 40, max_products)))
 
     def take(z, name):
         nonlocal best_z, best_res, solver
