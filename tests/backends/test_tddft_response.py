@@ -146,26 +146,63 @@ def test_gradients_at_the_stall_geometry_match_finite_differences(stall_results)
 # S1/S0-region rule
 # ---------------------------------------------------------------------------------------------
 
-def test_seam_rule_triggers_on_a_scan_that_crosses_the_threshold():
-    # Twisting ethylene closes the CIS S1-S0 gap (11.1 eV planar -> 2.2 eV at 89°, STO-3G).  With a
-    # 3 eV threshold the rule must let the first geometries through and end at the first one below.
-    free = TDDFTBackend(ETHYLENE, basis="sto-3g", nstates=2, seam_gap=None)
-    ruled = TDDFTBackend(ETHYLENE, basis="sto-3g", nstates=2, seam_gap=3.0 / HARTREE_IN_EV)
+# Two consecutive geometries (Bohr) of an ethylene CIS/STO-3G trajectory 0.5 fs apart (steps 26, 27
+# of a first run of the example study at that level): S1 runs into S0 between them.
+SEAM_A = np.array([[-0.103947, 0.226900, -0.830879], [0.004396, -0.148834, 3.377559],
+                   [2.112088, 0.038214, -1.134860], [-1.272373, -1.592440, -1.214110],
+                   [1.938868, -0.498480, 3.645779], [-1.524101, 1.256400, 3.548182]])
+SEAM_B = np.array([[-0.112276, 0.243453, -0.865316], [-0.001627, -0.154436, 3.413115],
+                   [2.099920, -0.030632, -1.145444], [-1.160684, -1.674134, -1.223529],
+                   [2.021478, -0.539347, 3.637860], [-1.532562, 1.322667, 3.570405]])
+
+
+def test_seam_rule_triggers_on_a_scan_that_crosses_it():
+    # Linear scan SEAM_A -> SEAM_B: the CIS S1-S0 gap falls from 0.139 eV through 0.1 eV to about
+    # -0.001 eV (measured).  The rule (default 0.1 eV) lets the first points through and ends at the
+    # first one below; with the threshold at 0 only the negative S1 ends it.  PySCF by itself drops
+    # TDA roots below 1e-3 Eh (0.027 eV), which would have hidden S1 at the last two points.
+    free = TDDFTBackend(ETHYLENE, basis="sto-3g", nstates=2, seam_gap=0.0)
+    ruled = TDDFTBackend(ETHYLENE, basis="sto-3g", nstates=2)
     gaps, ended = [], []
-    for twist in (0.0, 45.0, 70.0, 80.0, 89.0):
-        r = ethylene(twist)
-        gap = float(np.diff(free.compute(r, need_gradients=False).energies[:2])[0])
-        gaps.append(gap * HARTREE_IN_EV)
+    for lam in np.linspace(0.0, 1.0, 6):
+        r = (1.0 - lam) * SEAM_A + lam * SEAM_B
+        try:
+            gaps.append(float(np.diff(free.compute(r, need_gradients=False).energies[:2])[0]) * HARTREE_IN_EV)
+        except RegionReached as exc:
+            gaps.append(exc.values["gap_Eh"] * HARTREE_IN_EV)
+            assert lam == 1.0 and exc.values["gap_Eh"] < 0.0
         try:
             ruled.compute(r, need_gradients=False)
             ended.append(False)
         except RegionReached as exc:
             ended.append(True)
             assert exc.channel == "S1/S0 region"
-            assert exc.values["gap_Eh"] == pytest.approx(gap, abs=1e-8)
+            assert exc.values["gap_Eh"] * HARTREE_IN_EV == pytest.approx(gaps[-1], abs=1e-6)
             np.testing.assert_allclose(exc.values["positions_bohr"], r)
-    assert np.all(np.diff(gaps) < 0)
-    assert ended == [g < 3.0 for g in gaps] and ended[0] is False and ended[-1] is True
+    assert np.all(np.diff(gaps) < 0) and gaps[0] > 0.1 and gaps[-1] < 0.0
+    assert 0.0 < gaps[-2] < 1e-3 * HARTREE_IN_EV                 # kept although below PySCF's cut
+    assert ended == [g < 0.1 for g in gaps] and ended[:2] == [False, False]
+
+
+def test_s1_vanishing_from_the_roots_after_a_small_gap_ends_in_the_channel():
+    # Previous step at SEAM_A (gap 0.139 eV < 5 x 0.1 eV).  A backend with a 0-eV threshold run
+    # to SEAM_B sees S1 negative; with the PySCF default cut restored the S1 root disappears and
+    # the window check must still end the trajectory in the channel, not carry on with the jump.
+    backend = TDDFTBackend(ETHYLENE, basis="sto-3g", nstates=2, extra_roots=2, seam_gap=0.0)
+    first = backend.compute(SEAM_A, need_gradients=False)
+    backend.seam_gap = tddft.DEFAULT_SEAM_GAP
+    original = backend._run_td
+
+    def pyscf_cut(mf, attempts):                  # PySCF's own behaviour: roots < 1e-3 Eh dropped
+        td = original(mf, attempts)
+        keep = np.asarray(td.e) > 1e-3
+        td.e = np.asarray(td.e)[keep]
+        td.xy = [xy for xy, k in zip(td.xy, keep) if k]
+        return td
+
+    backend._run_td = pyscf_cut
+    with pytest.raises(RegionReached, match="not among the computed roots"):
+        backend.compute(SEAM_B, guess=first.guess, need_gradients=False)
 
 
 def test_seam_rule_negative_and_complex_excitations():

@@ -73,9 +73,9 @@ DEFAULT_SEAM_GAP = 0.1 / HARTREE_IN_EV
 #: counts as having left the computed window (docs/theory.md#root-buffer).
 ROOT_WINDOW_WEIGHT_MIN = 0.5
 
-#: A previous S1 that vanished from the computed roots counts as having entered the S1/S0 region when
-#: the previous S1−S0 gap was below this multiple of ``seam_gap`` (docs/theory.md#s1s0-region).
-SEAM_WATCH_FACTOR = 5.0
+#: Default S1−S0 gap (Eh) of the previous step below which a vanished S1 or a changed reference
+#: determinant counts as having entered the S1/S0 region: 1 eV (docs/theory.md#s1s0-region).
+DEFAULT_SEAM_WATCH_GAP = 1.0 / HARTREE_IN_EV
 
 #: Tolerance on |C'ᵀ S C' − 1| for a warm-start orbital set after Löwdin orthonormalisation
 #: (docs/theory.md#pyscf-pitfalls: unorthonormalised warm starts converge to wrong energies).
@@ -325,6 +325,9 @@ class TDDFTBackend:
         (:class:`~mapdyn.backends.contract.RegionReached`, docs/theory.md#s1s0-region); a negative or
         complex excitation energy ends it too.  None switches the rule off (a non-positive excitation
         energy is then a ``BackendError``).  Default :data:`DEFAULT_SEAM_GAP` (0.1 eV).
+    seam_watch_gap : previous-step S1−S0 gap in Eh below which S0 or S1 vanishing from the computed
+        roots (SCF solution jump, S1 root lost) also ends the trajectory in the S1/S0 region
+        (default 1 eV); elsewhere such a jump is a ``BackendError``.
     Accuracy note: PySCF's TD-DFT gradients omit the DFT grid-weight response; against finite
     differences this costs ~6e-6 Eh/Bohr at grid level 3 and ~2e-6 at level 4 (water/STO-3G, PBE0).
     grids_level : PySCF DFT grid level (0–9), ignored for HF.
@@ -344,7 +347,7 @@ class TDDFTBackend:
                  scf_max_cycle: int = 100, td_max_cycle: int = 200,
                  singular_tol: float = DEFAULT_SINGULAR_TOL, threads: int = 1,
                  zvector_solver: str = "krylov", zvector_tol: float = DEFAULT_ZVECTOR_TOL,
-                 seam_gap: float | None = DEFAULT_SEAM_GAP):
+                 seam_gap: float | None = DEFAULT_SEAM_GAP, seam_watch_gap: float = DEFAULT_SEAM_WATCH_GAP):
         from pyscf import gto
 
         self.symbols = [str(s) for s in symbols]
@@ -389,6 +392,9 @@ class TDDFTBackend:
         if seam_gap is not None and not (np.isfinite(seam_gap) and seam_gap >= 0):
             raise ValueError(f"seam_gap must be None or a non-negative energy in Eh, got {seam_gap}")
         self.seam_gap = None if seam_gap is None else float(seam_gap)
+        if not (np.isfinite(seam_watch_gap) and seam_watch_gap >= 0):
+            raise ValueError(f"seam_watch_gap must be a non-negative energy in Eh, got {seam_watch_gap}")
+        self.seam_watch_gap = float(seam_watch_gap)
         self.singular_tol = float(singular_tol)
         if not 0 <= int(grids_level) <= 9:
             raise ValueError(f"grids_level must be 0..9, got {grids_level}")
@@ -506,19 +512,24 @@ class TDDFTBackend:
     def _check_window(self, diagnostics: dict, guess: TDDFTGuess, attempts: list[dict]) -> None:
         """A propagated state of the previous step that is not among the computed roots any more
         (``root_window_weight`` < :data:`ROOT_WINDOW_WEIGHT_MIN`) makes the surfaces discontinuous.
-        If it is S1 and the previous S1−S0 gap was below :data:`SEAM_WATCH_FACTOR` × ``seam_gap``, S1
-        went down into the S1/S0 region within the step: :class:`RegionReached`.  Otherwise a
-        ``BackendError`` names the state (docs/theory.md#root-buffer)."""
+        If it is S0 (the reference determinant changed: another SCF solution) or S1, and the previous
+        S1−S0 gap was below ``seam_watch_gap``, the single reference broke down within the step: the
+        trajectory entered the S1/S0 region (:class:`RegionReached`).  Otherwise a ``BackendError``
+        names the state (docs/theory.md#root-buffer)."""
         weight = diagnostics["root_window_weight"]
         left = [k for k in range(len(weight)) if weight[k] < ROOT_WINDOW_WEIGHT_MIN]
         if not left:
             return
         gap = guess.gap_Eh
-        if (left == [1] and self.seam_gap is not None and gap is not None
-                and gap < SEAM_WATCH_FACTOR * self.seam_gap):
-            raise RegionReached("S1/S0 region", f"S1 of the previous step (S1-S0 gap {gap * HARTREE_IN_EV:.3f} eV) "
-                                f"is not among the computed roots any more (weight {weight[1]:.2f})",
-                                {"gap_Eh": gap, "seam_gap_Eh": self.seam_gap, "window_weight": float(weight[1])})
+        if ((0 in left or 1 in left) and self.seam_gap is not None and gap is not None
+                and gap < self.seam_watch_gap):
+            what = ("the reference determinant changed (another SCF solution)" if 0 in left else
+                    "S1 of the previous step is not among the computed roots any more")
+            raise RegionReached("S1/S0 region", f"{what} after an S1-S0 gap of {gap * HARTREE_IN_EV:.3f} eV "
+                                f"(weights of the previous states among the new roots: "
+                                + ", ".join(f"{w:.2f}" for w in weight) + ")",
+                                {"gap_Eh": gap, "seam_gap_Eh": self.seam_gap,
+                                 "window_weight": [float(w) for w in weight]})
         raise BackendError("electronic structure discontinuous: state(s) " + ", ".join(map(str, left))
                            + " of the previous step are not among the computed roots (weights "
                            + ", ".join(f"{weight[k]:.2f}" for k in left) + ")", attempts)
