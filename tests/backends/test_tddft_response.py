@@ -295,3 +295,15 @@ def test_root_buffer_on_the_near_degenerate_planar_pair():
     assert np.max(np.abs(pair.T @ pair - np.eye(2))) < 0.01
     assert np.all(np.diag(s) > 0.8)                             # sign-aligned, no swap at this push
     assert d["overlap_raw"].shape == (3, 3)
+
+
+def test_window_check_reference_jump_after_a_small_gap_is_the_channel_else_an_error():
+    backend = TDDFTBackend(["H", "H"], basis="6-31g", nstates=3)
+    guess = tddft.TDDFTGuess(np.zeros((2, 3)), np.eye(2), 1, np.zeros((2, 1, 1)), backend.fingerprint, gap_Eh=0.5 / HARTREE_IN_EV)
+    jump = {"root_window_weight": np.array([0.08, 0.9, 0.04])}       # new SCF solution: S0 gone
+    with pytest.raises(RegionReached, match="reference determinant changed"):
+        backend._check_window(jump, guess, [])
+    guess.gap_Eh = 3.0 / HARTREE_IN_EV                                 # far from S0: a plain failure
+    with pytest.raises(BackendError, match="discontinuous: state"):
+        backend._check_window(jump, guess, [])
+    backend._check_window({"root_window_weight": np.array([1.0, 0.99, 0.97])}, guess, [])  # inside: nothing

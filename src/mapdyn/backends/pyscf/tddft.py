@@ -26,8 +26,12 @@ State convention (used for overlaps and dipoles): a singlet root is
 X (Σ X² = 1/2) as is.  For full TDDFT the overlaps use the **X-only** convention: X̃ = X rescaled to
 2 Σ X̃² = 1 (Y is dropped; its weight is small away from instabilities).  Caveat for users: linear
 response from a single reference describes S1/S0 crossings (conical intersections with the ground
-state) qualitatively wrongly; near them excitation energies can go to zero or negative, which this
-backend reports as a ``BackendError``.
+state) qualitatively wrongly; near them excitation energies go to zero or negative.  This backend
+raises ``RegionReached`` there (S1−S0 gap below ``seam_gap``, a negative/complex S1, or the
+reference/S1 vanishing from the computed roots after a small gap) and the driver ends the
+trajectory as the outcome "S1/S0 region" (docs/theory.md#s1s0-region).  Gradients use mapdyn's
+Krylov Z-vector solve (docs/theory.md#z-vector-solve); ``extra_roots`` buffer roots track the
+propagated states (docs/theory.md#root-buffer).
 """
 
 from __future__ import annotations
