@@ -190,6 +190,9 @@ class StudyStatus:
                 if e.status == "failed":
                     lines.append(f"  failed  {e.kind} {e.index}: {e.reason}")
             for e in self.entries:
+                if e.status == "finished" and e.reason:  # ended in a channel (an outcome, counted as finished)
+                    lines.append(f"  ended   {e.kind} {e.index}: {e.reason}")
+            for e in self.entries:
                 if e.status == "running":
                     lines.append(f"  running {e.kind} {e.index}: step {e.step}/{e.target}")
             for e in drift:
