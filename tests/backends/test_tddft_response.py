@@ -295,6 +295,11 @@ def test_root_buffer_on_the_near_degenerate_planar_pair():
     assert np.max(np.abs(pair.T @ pair - np.eye(2))) < 0.01
     assert np.all(np.diag(s) > 0.8)                             # sign-aligned, no swap at this push
     assert d["overlap_raw"].shape == (3, 3)
+    from mapdyn.driver.observers import backend_frame_diagnostics
+    frame = backend_frame_diagnostics(d)
+    assert frame["root_window_min"] == pytest.approx(float(np.min(d["root_window_weight"])))
+    assert frame["root_buffer_entry"] == 0.0
+    assert backend_frame_diagnostics({"root_tracking": "entered buffer: state 2 -> root 3"})["root_buffer_entry"] == 1.0
 
 
 def test_window_check_reference_jump_after_a_small_gap_is_the_channel_else_an_error():
