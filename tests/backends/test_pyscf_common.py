@@ -82,7 +82,7 @@ def test_version_guard(version, allowed, monkeypatch):
 
 
 def test_untested_pyscf_gives_the_same_tddft_gradients(monkeypatch):
-    """Faked out-of-range version: no CPHF swap, no residual recorded, same gradients."""
+    """Faked out-of-range version: no CPHF swap, no residual recorded, the same gradients."""
     from mapdyn.backends.pyscf.tddft import TDDFTBackend
 
     r = np.array([[0.0, 0.0, 0.0], [0.1, 0.0, 3.0]])
@@ -91,7 +91,8 @@ def test_untested_pyscf_gives_the_same_tddft_gradients(monkeypatch):
     monkeypatch.setattr(common, "pyscf_version", lambda: "9.0.0")
     with pytest.warns(RuntimeWarning, match="outside the tested range"):
         fallback = TDDFTBackend(["Li", "H"], basis="sto-3g", nstates=3).compute(r)
-    np.testing.assert_array_equal(fallback.gradients, normal.gradients)
+    # plain path: PySCF's own Z-vector solve (converges here), intercepted path: mapdyn's Krylov ladder
+    np.testing.assert_allclose(fallback.gradients, normal.gradients, rtol=0, atol=1e-10)
     assert np.all(np.isfinite(normal.diagnostics["cphf_residuals"]))
     assert np.all(np.isnan(fallback.diagnostics["cphf_residuals"]))
 

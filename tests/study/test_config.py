@@ -29,6 +29,22 @@ seed = 1
 """
 
 
+TDDFT = MOLECULE.replace(H2_SECTIONS, H2_SECTIONS.split("[electronic]")[0] + '[electronic]\nbackend = "tddft"\nbasis = "6-31g"\nstates = 2\n'
+                         + "[initial]" + H2_SECTIONS.split("[initial]")[1])
+
+
+def test_tddft_seam_gap_and_root_buffer_are_read(tmp_path):
+    path = tmp_path / "t.toml"
+    path.write_text(TDDFT.replace('states = 2', 'states = 2\nseam_gap = "0.2 eV"\nroot_buffer = 3'))
+    opts = load_study_config(str(path)).electronic.options
+    from ase import units
+    assert opts["seam_gap"] == pytest.approx(0.2 / units.Hartree, rel=1e-12)   # reference: ase.units
+    assert opts["extra_roots"] == 3
+    path.write_text(TDDFT.replace('states = 2', 'states = 2\nseam_gap = "off"'))
+    opts = load_study_config(str(path)).electronic.options
+    assert opts["seam_gap"] is None and opts["extra_roots"] == 2
+
+
 def edit(base: str, section: str, key: str, value: str | None) -> str:
     """Set (or with value None delete) ``key`` in ``[section]`` of a TOML text."""
     lines = base.strip().splitlines()
@@ -110,6 +126,8 @@ CASES = [
     ("substeps on batched engine", edit(MODEL, "dynamics", "substeps", "10"), "dynamics.substeps is not used by the batched model engine"),
     ("stop_on_drift not boolean", MOLECULE.replace('duration = "5 fs"', 'duration = "5 fs"\nstop_on_drift = "yes"'), "dynamics.stop_on_drift = \"yes\": must be true or false"),
     ("analysis unknown key", MODEL + "\n[analysis]\nconfidence = 0.9\n", "analysis.confidence is not a known key"),
+    ("seam_gap not an energy", TDDFT.replace('states = 2', 'states = 2\nseam_gap = "close"'), "electronic.seam_gap = \"close\""),
+    ("negative root_buffer", TDDFT.replace('states = 2', 'states = 2\nroot_buffer = -1'), "electronic.root_buffer = -1"),
 ]
 
 

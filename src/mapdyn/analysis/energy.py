@@ -7,6 +7,7 @@ import dataclasses
 import numpy as np
 
 from mapdyn.analysis.trajectories import TrajectorySet
+from mapdyn.backends.contract import ended_channel
 
 
 # ----------------------------------------------------------------------------------------------
@@ -83,7 +84,7 @@ def flagged_trajectories(tset: TrajectorySet, energy: EnergyReport | None = None
     out = []
     last = tset.last_frame
     for j in range(tset.ntraj):
-        reasons = [r for r in [tset.reasons[j]] if r]
+        reasons = [r for r in [tset.reasons[j]] if r and not ended_channel(r)]  # an ended channel is an outcome
         if energy is not None and energy.flagged[j]:
             reasons.append(f"energy deviation {energy.max_deviation[j]:.3g} Eh > tolerance {energy.tolerance:.3g} Eh")
         if tset.status[j] == "failed" and not reasons:

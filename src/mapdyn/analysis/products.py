@@ -9,6 +9,7 @@ import numpy as np
 
 from mapdyn.analysis.statistics import bootstrap_ratio, widen_to_binomial
 from mapdyn.analysis.trajectories import TrajectorySet
+from mapdyn.backends.contract import ended_channel
 from mapdyn.units import BOHR_IN_ANGSTROM
 
 
@@ -128,6 +129,10 @@ def classify_products(tset: TrajectorySet, classifier: Callable[[Any], str] | Ma
                 st in ("running", "pending") and not include_unfinished):
             labels_per.append("")
             excluded.append((int(tset.indices[j]), st if last[j] >= 0 else "no frames"))
+            continue
+        channel = ended_channel(tset.reasons[j]) if tset.reasons is not None else None
+        if channel:  # ended where the electronic structure is not valid: that region is its product
+            labels_per.append(channel)
             continue
         if tset.positions is not None:
             from ase import Atoms

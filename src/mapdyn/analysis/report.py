@@ -28,6 +28,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 
 from mapdyn.analysis import AnalysisResults, TrajectorySet, analyze, plots
+from mapdyn.analysis.trajectories import STATUSES
 from mapdyn.units import AU_TIME_IN_FS, HARTREE_IN_EV
 
 __all__ = ["Report", "write_report", "write_csv", "read_csv", "summarise_warnings"]
@@ -233,6 +234,14 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
         fig("energy_drift", plots.plot_energy_drift, en,
             note="histogram of total-energy drift E(end) − E(0) per trajectory (meV) with the flag tolerance")
 
+    # outcomes: ran to the end time, ended in a channel, failed ---------------------------------------
+    outcome = ts.outcomes()
+    if any(o not in STATUSES for o in outcome):
+        last = ts.last_frame
+        tab("outcomes", ["trajectory", "outcome", "last_frame_time_au", "last_frame_time_fs", "reason"],
+            [ts.indices, list(outcome), [ts.times[k] if k >= 0 else np.nan for k in last],
+             [ts.times_fs[k] if k >= 0 else np.nan for k in last], list(ts.reasons)])
+
     # products ---------------------------------------------------------------------------------
     br = results.branching
     if br is not None and len(br.labels):
@@ -302,6 +311,16 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
     L.append("## Counts")
     sc = ts.status_counts()
     L.append("- status: " + ", ".join(f"{k} {v}" for k, v in sc.items()))
+    outcome = ts.outcomes()
+    channels = sorted({o for o in outcome if o not in STATUSES})
+    for ch in channels:
+        rows = [j for j, o in enumerate(outcome) if o == ch]
+        t_end = np.array([ts.times_fs[ts.last_frame[j]] for j in rows if ts.last_frame[j] >= 0])
+        L.append(f"- ended in the channel \"{ch}\" (counted as finished, an outcome): {len(rows)}"
+                 + (f", last frames at {t_end.min():.4g}–{t_end.max():.4g} fs (median {np.median(t_end):.4g} fs)"
+                    if t_end.size else ""))
+    if channels:
+        L.append(f"- ran to the end time: {sum(1 for o in outcome if o == 'finished')}")
     pops = res.populations
     L.append(f"- estimator: {pops.estimator}")
     if ts.options.method == "sqc":

@@ -138,6 +138,14 @@ class TrajectorySet:
     def status_counts(self) -> dict[str, int]:
         return {s: int(sum(1 for x in self.status if x == s)) for s in STATUSES}
 
+    def outcomes(self) -> tuple[str, ...]:
+        """Per trajectory: the channel it ended in (e.g. "S1/S0 region", read from its stop reason,
+        see :func:`mapdyn.backends.contract.ended_channel`), else its status ("finished" = ran to
+        the end time)."""
+        from mapdyn.backends.contract import ended_channel
+
+        return tuple(ended_channel(r) or s for s, r in zip(self.status, self.reasons))
+
 
 def from_diabatic_run(run: Any, initial_states: Sequence[int] | int | None = None,
                       masses: np.ndarray | None = None, metadata: dict | None = None) -> TrajectorySet:

@@ -43,6 +43,8 @@ __all__ = [
     "ElectronicResult",
     "Backend",
     "BackendError",
+    "RegionReached",
+    "ended_channel",
     "StateMatch",
     "match_states",
     "apply_state_signs",
@@ -69,6 +71,34 @@ class BackendError(RuntimeError):
         self.attempts = list(attempts or [])
         detail = "; ".join(f"{a.get('what')}: {a.get('outcome')}" for a in self.attempts)
         super().__init__(reason + (f" (attempts: {detail})" if detail else ""))
+
+
+class RegionReached(Exception):
+    """The geometry lies where the electronic-structure method stops being valid, and reaching it is a
+    result: the trajectory ends there as an outcome of its own (a channel), not as a failure.
+
+    ``channel`` : short label counted by the analysis (e.g. "S1/S0 region").
+    ``reason`` : one line with the numbers that triggered the rule.
+    ``values`` : those numbers (atomic units; keys name them, e.g. ``gap_Eh``).
+    The driver turns it into a stop with reason ``"ended: <channel>; <reason>"`` (:func:`ended_channel`).
+    """
+
+    def __init__(self, channel: str, reason: str, values: dict | None = None):
+        self.channel = str(channel)
+        self.reason = str(reason)
+        self.values = dict(values or {})
+        super().__init__(f"{self.channel}: {self.reason}")
+
+
+#: Prefix of the stop reason of a trajectory that ended in a channel (see :class:`RegionReached`).
+ENDED_PREFIX = "ended: "
+
+
+def ended_channel(stop_reason: str | None) -> str | None:
+    """The channel of a trajectory whose stop reason reads ``"ended: <channel>; …"``, else None."""
+    if not stop_reason or not stop_reason.startswith(ENDED_PREFIX):
+        return None
+    return stop_reason[len(ENDED_PREFIX):].split(";", 1)[0].strip() or None
 
 
 @dataclasses.dataclass

@@ -45,7 +45,7 @@ from ase import Atoms, units
 from ase.calculators.singlepoint import SinglePointCalculator
 from ase.md.md import MolecularDynamics
 
-from mapdyn.backends.contract import BackendError, ElectronicResult, offers_force
+from mapdyn.backends.contract import ENDED_PREFIX, BackendError, ElectronicResult, RegionReached, offers_force
 from mapdyn.core.adiabatic import (
     GAP_COUPLING_FLOOR,
     GAP_PHASE_LIMIT,
@@ -75,7 +75,7 @@ from mapdyn.driver.observers import (
     write_frames_extxyz,
 )
 from mapdyn.driver.state import DriverState
-from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU
+from mapdyn.units import AMU_IN_ME, ASE_MOMENTUM_IN_AU, AU_TIME_IN_FS
 
 __all__ = ["MappingDynamics", "DriverState", "remove_total_momentum",
            "PROJECTION_WARNING", "GAP_WARNING", "GAP_PHASE_LIMIT", "GAP_COUPLING_FLOOR",
@@ -372,6 +372,9 @@ class MappingDynamics(MolecularDynamics):
         trajectory."""
         try:
             new = self._call_backend(R, st.result.guess, not self.two_phase)
+        except RegionReached as exc:
+            self._end_in_channel(st, R, exc)
+            return None
         except BackendError as exc:
             if self.on_backend_error == "raise":
                 raise
@@ -386,6 +389,17 @@ class MappingDynamics(MolecularDynamics):
             st.stopped, st.stop_reason = True, f"{jump} at step {st.step + 1}; stopped before it"
             return None
         return new
+
+    def _end_in_channel(self, st: DriverState, R: np.ndarray, exc: RegionReached) -> None:
+        """Stop ``st`` as an outcome: the next geometry R (Bohr) lies in the region of ``exc`` (the step
+        to it is not taken; time and geometry of the would-be step are recorded in ``end_event``)."""
+        t = (st.step + 1) * self.dt_au
+        st.stopped = True
+        st.stop_reason = (f"{ENDED_PREFIX}{exc.channel}; {exc.reason} at step {st.step + 1} "
+                          f"(t = {t * AU_TIME_IN_FS:.2f} fs)")
+        values = {k: v for k, v in exc.values.items() if k != "positions_bohr"}
+        st.end_event = {"channel": exc.channel, "step": st.step + 1, "time_au": float(t),
+                        "positions_bohr": np.asarray(R, dtype=float).tolist(), "values": values}
 
     def _step_kicks(self, st: DriverState, new: ElectronicResult, x, p, t: float,
                     history: list) -> tuple[np.ndarray, np.ndarray | None] | None:
@@ -525,7 +539,8 @@ class MappingDynamics(MolecularDynamics):
                                     else "projected_overlaps"),
                 "force_source": "backend (two-phase)" if self.two_phase else "driver contraction",
                 "warnings": list(st.warnings), "drift_flag": copy.deepcopy(st.drift_flag),
-                "stopped": st.stopped, "stop_reason": st.stop_reason, "steps": st.step}
+                "stopped": st.stopped, "stop_reason": st.stop_reason, "end_event": copy.deepcopy(st.end_event),
+                "steps": st.step}
 
     @property
     def frames(self) -> list[dict]:

@@ -41,7 +41,9 @@ def backend_frame_diagnostics(diagnostics: dict) -> dict:
     ``active_overlap_min_singular`` (smallest singular value of the active-orbital overlap),
     ``overlap_retries`` (extra CASSCF solutions tried because the state overlap was low),
     ``response_residual`` (largest TDDFT Z-vector residual), ``response_converged`` 1/0 (CASSCF
-    gradient and coupling response equations)."""
+    gradient and coupling response equations), ``root_window_min`` (smallest summed squared overlap
+    of a previous propagated state with all computed roots, TDDFT root buffer) and
+    ``root_buffer_entry`` 1/0 (a propagated state now matches a buffer root best)."""
     d = diagnostics or {}
     nan = float("nan")
 
@@ -50,6 +52,8 @@ def backend_frame_diagnostics(diagnostics: dict) -> dict:
 
     retry = d.get("overlap_retry")
     res = d.get("cphf_residuals")
+    weight = d.get("root_window_weight")
+    tracking = d.get("root_tracking")
     conv = None
     if "gradients_converged" in d or "couplings_converged" in d:
         conv = bool(d.get("gradients_converged", True)) and bool(d.get("couplings_converged", True))
@@ -57,7 +61,9 @@ def backend_frame_diagnostics(diagnostics: dict) -> dict:
             "active_overlap_min_singular": float(d.get("active_overlap_min_singular", nan)),
             "overlap_retries": float(max(len(retry.get("candidates", [])) - 1, 0)) if isinstance(retry, dict) else 0.0,
             "response_residual": float(np.nanmax(res)) if res is not None and len(res) else nan,
-            "response_converged": flag(conv)}
+            "response_converged": flag(conv),
+            "root_window_min": float(np.min(weight)) if weight is not None and len(weight) else nan,
+            "root_buffer_entry": nan if tracking is None else float("entered buffer" in tracking)}
 
 
 @dataclasses.dataclass

@@ -23,7 +23,9 @@ class DriverState:
     (time a.u., σ (F, F) 1/a.u. time, velocity (N, 3) Bohr/a.u. time) mid-step entries;
     energy_reference : Eh at step 0; force_open : (N, 3) Eh/Bohr, the opening-kick force of the
     next step with force averaging (None: computed from ``result`` when needed); drift_flag : None or {step, time_au, drift_Eh}; stopped,
-    stop_reason; rng_state : the trajectory generator's state after the initial draws (or None);
+    stop_reason; end_event : None or, for a trajectory that ended in a channel (backend
+    ``RegionReached``), {channel, step, time_au, positions_bohr (N, 3 list, Bohr), values};
+    rng_state : the trajectory generator's state after the initial draws (or None);
     warnings : messages issued once per run; settings : what the state was made with (checked on
     restore).
     """
@@ -46,6 +48,7 @@ class DriverState:
     warnings: list = dataclasses.field(default_factory=list)
     settings: dict = dataclasses.field(default_factory=dict)
     force_open: np.ndarray | None = None
+    end_event: dict | None = None
 
     def copy(self) -> "DriverState":
         return copy.deepcopy(self)

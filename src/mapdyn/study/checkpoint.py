@@ -261,7 +261,8 @@ class TrajectoryStore:
         full_meta = dict(meta)
         full_meta.update({"chunks": chunks_before + 1, "chunk_sha256": digests, "step": int(state.step),
                           "time_au": float(state.time), "stopped": bool(state.stopped),
-                          "stop_reason": state.stop_reason, "drift_flag": _jsonable(state.drift_flag)})
+                          "stop_reason": state.stop_reason, "drift_flag": _jsonable(state.drift_flag),
+                          "end_event": _jsonable(getattr(state, "end_event", None))})
         arrays = {"step": np.int64(state.step), "time_au": np.float64(state.time),
                   "positions_bohr": state.positions, "momenta_au": state.momenta, "x": state.x, "p": state.p}
         arrays.update(encode_object(state, "driver_state"))

@@ -27,7 +27,8 @@ Sections and keys (names are our own; see ``mapdyn run --help`` and the files in
                  casscf:   basis, active_orbitals, active_electrons, cas_orbitals (0-based
                            RHF orbital indices, 0 = lowest), density_fitting, coupling_form,
                            spin_purity
-                 tddft:    basis, functional, response, grid_level, gradient_residual_limit
+                 tddft:    basis, functional, response, grid_level, gradient_residual_limit,
+                           seam_gap ("0.1 eV" default, "off"), root_buffer (2)
                  model:    model, parameters, engine (vibronic / spin_boson parameters:
                            see mapdyn.study.model_input)
                  callback: function
@@ -94,7 +95,7 @@ _ELEC_COMMON = ("backend", "states")
 _ELEC_BY_BACKEND = {
     "casscf": ("basis", "active_orbitals", "active_electrons", "cas_orbitals", "density_fitting", "coupling_form",
                "spin_purity"),
-    "tddft": ("basis", "functional", "response", "grid_level", "gradient_residual_limit"),
+    "tddft": ("basis", "functional", "response", "grid_level", "gradient_residual_limit", "seam_gap", "root_buffer"),
     "model": ("model", "parameters", "engine"),
     "callback": ("function",),
 }
@@ -338,13 +339,19 @@ def _parse_electronic(sec: Section, molecule: MoleculeConfig | None, base_dir: s
     grid = sec.integer("grid_level", 3, minimum=0, what="a DFT grid level 0..9")
     if grid > 9:
         raise ConfigError("electronic.grid_level", f"= {grid}: must be 0..9")
-    residual = sec.number("gradient_residual_limit", 1e-4,
+    residual = sec.number("gradient_residual_limit", 1e-6,
                           what="the largest relative Z-vector (CPHF) residual accepted for a gradient, e.g. 1e-4")
     if not 0 < residual < 1:
         raise ConfigError("electronic.gradient_residual_limit", f"= {residual}: must lie between 0 and 1")
+    # S1/S0-region rule (docs/theory.md#s1s0-region) and the root buffer (docs/theory.md#root-buffer)
+    seam_text = sec.raw("seam_gap", "0.1 eV")
+    seam_gap = None if isinstance(seam_text, str) and seam_text.strip().lower() == "off" else \
+        parse_energy(seam_text, "electronic.seam_gap")
+    buffer = sec.integer("root_buffer", 2, minimum=0, what="the number of extra roots computed above the propagated ones")
     options = {"basis": basis, "xc": None if functional.lower() in ("hf", "rhf") else functional,
                "method": "tda" if response == "tda" else "tddft", "nstates": states,
-               "charge": molecule.charge, "grids_level": grid, "cphf_residual_tol": residual}
+               "charge": molecule.charge, "grids_level": grid, "cphf_residual_tol": residual,
+               "seam_gap": seam_gap, "extra_roots": buffer}
     name = ("CIS" if response == "tda" else "TDHF") if options["xc"] is None else \
         (f"TDA-{functional}" if response == "tda" else f"TD-{functional}")
     return ElectronicConfig("tddft", states, basis, options, level_of_theory=f"{name}/{basis}")

@@ -190,6 +190,9 @@ class StudyStatus:
                 if e.status == "failed":
                     lines.append(f"  failed  {e.kind} {e.index}: {e.reason}")
             for e in self.entries:
+                if e.status == "finished" and e.reason:  # ended in a channel (an outcome, counted as finished)
+                    lines.append(f"  ended   {e.kind} {e.index}: {e.reason}")
+            for e in self.entries:
                 if e.status == "running":
                     lines.append(f"  running {e.kind} {e.index}: step {e.step}/{e.target}")
             for e in drift:
@@ -508,6 +511,8 @@ class Study:
                 status = "running"
             elif problems:
                 status = "damaged"
+            elif meta and meta.get("stopped") and meta.get("end_event"):  # ended in a channel: an outcome
+                status, reason = "finished", meta.get("stop_reason") or "ended"
             elif meta and meta.get("stopped"):
                 status, reason = "failed", meta.get("stop_reason") or "stopped"
             elif meta and step >= target:

@@ -133,11 +133,17 @@ def decode_object(arrays: dict[str, Any], prefix: str) -> Any:
         if "$c" in n:
             cls = _class(n["$c"])
             obj: Any = object.__new__(cls)
-            names = {f.name for f in dataclasses.fields(cls)}
-            if set(n["f"]) != names:
+            fields = dataclasses.fields(cls)
+            names = {f.name for f in fields}
+            # a field added later with a default may be missing from an older file: it gets its default
+            later = {f.name: f for f in fields if f.name not in n["f"] and (
+                f.default is not dataclasses.MISSING or f.default_factory is not dataclasses.MISSING)}
+            if set(n["f"]) | set(later) != names:
                 raise ObjectFormatError(f"stored object {prefix!r}: fields of {n['$c']} differ from this mapdyn version")
             for k, v in n["f"].items():
                 object.__setattr__(obj, k, dec(v))
+            for k, f in later.items():
+                object.__setattr__(obj, k, f.default if f.default is not dataclasses.MISSING else f.default_factory())
             return obj
         raise ObjectFormatError(f"stored object {prefix!r}: unknown node {sorted(n)}")
 

@@ -230,7 +230,8 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         point = store.restart_point()
         meta = point.meta
         if point.state is not None and (point.state.stopped or point.state.step >= target):
-            return TaskResult("trajectory", index, "failed" if point.state.stopped else "skipped",
+            failed = point.state.stopped and not point.state.end_event
+            return TaskResult("trajectory", index, "failed" if failed else "skipped",
                               reason=point.state.stop_reason or "")
         write_marker(marker)
         if os.path.exists(failure):
@@ -263,8 +264,10 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
             step_now = dyn.state.step
             flush_warnings()
         st = dyn.state
-        if st.stopped:
+        if st.stopped and not st.end_event:
             return TaskResult("trajectory", index, "failed", steps_done, time.perf_counter() - t0, st.stop_reason or "")
+        if st.stopped:  # ended in a channel (e.g. reached the S1/S0 region): an outcome, not a failure
+            return TaskResult("trajectory", index, "finished", steps_done, time.perf_counter() - t0, st.stop_reason or "")
         return TaskResult("trajectory", index, "finished", steps_done, time.perf_counter() - t0)
     except Exception as err:  # isolate failures: record and report, never take the ensemble down
         if is_environment_fault(err):  # not the trajectory's fault: stop the run, resume later

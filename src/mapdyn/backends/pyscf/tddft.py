@@ -26,8 +26,12 @@ State convention (used for overlaps and dipoles): a singlet root is
 X (Σ X² = 1/2) as is.  For full TDDFT the overlaps use the **X-only** convention: X̃ = X rescaled to
 2 Σ X̃² = 1 (Y is dropped; its weight is small away from instabilities).  Caveat for users: linear
 response from a single reference describes S1/S0 crossings (conical intersections with the ground
-state) qualitatively wrongly; near them excitation energies can go to zero or negative, which this
-backend reports as a ``BackendError``.
+state) qualitatively wrongly; near them excitation energies go to zero or negative.  This backend
+raises ``RegionReached`` there (S1−S0 gap below ``seam_gap``, a negative/complex S1, or the
+reference/S1 vanishing from the computed roots after a small gap) and the driver ends the
+trajectory as the outcome "S1/S0 region" (docs/theory.md#s1s0-region).  Gradients use mapdyn's
+Krylov Z-vector solve (docs/theory.md#z-vector-solve); ``extra_roots`` buffer roots track the
+propagated states (docs/theory.md#root-buffer).
 """
 
 from __future__ import annotations
@@ -42,10 +46,13 @@ import numpy as np
 from mapdyn.backends.contract import (
     BackendError,
     ElectronicResult,
+    RegionReached,
     apply_state_signs,
     match_states,
 )
 from mapdyn.backends.pyscf.common import response_interception_allowed, swapped
+from mapdyn.backends.pyscf.zvector import DEFAULT_ZVECTOR_TOL, solve_zvector
+from mapdyn.units import HARTREE_IN_EV
 
 __all__ = [
     "TDDFTBackend",
@@ -53,12 +60,26 @@ __all__ = [
     "determinant_state_overlaps",
     "time_derivative_couplings",
     "normalise_cis_amplitudes",
+    "root_window_diagnostics",
+    "DEFAULT_SEAM_GAP",
 ]
 
 #: Smallest singular value of the occupied–occupied MO overlap block below which state overlaps
 #: are refused (the occupied space changed too much within one step for the expansion to be
 #: trusted numerically).
 DEFAULT_SINGULAR_TOL = 1e-3
+
+#: Default S1−S0 gap (Eh) below which a trajectory ends as "reached the S1/S0 region": 0.1 eV
+#: (docs/theory.md#s1s0-region).
+DEFAULT_SEAM_GAP = 0.1 / HARTREE_IN_EV
+
+#: Summed squared overlap (dimensionless) of a propagated state with all computed roots below which it
+#: counts as having left the computed window (docs/theory.md#root-buffer).
+ROOT_WINDOW_WEIGHT_MIN = 0.5
+
+#: Default S1−S0 gap (Eh) of the previous step below which a vanished S1 or a changed reference
+#: determinant counts as having entered the S1/S0 region: 1 eV (docs/theory.md#s1s0-region).
+DEFAULT_SEAM_WATCH_GAP = 1.0 / HARTREE_IN_EV
 
 #: Tolerance on |C'ᵀ S C' − 1| for a warm-start orbital set after Löwdin orthonormalisation
 #: (docs/theory.md#pyscf-pitfalls: unorthonormalised warm starts converge to wrong energies).
@@ -170,6 +191,33 @@ def time_derivative_couplings(overlap_aligned: np.ndarray, dt: float) -> np.ndar
     return (s - s.T) / (2.0 * dt)
 
 
+def root_window_diagnostics(overlap_all: np.ndarray, nstates: int,
+                            weight_min: float = ROOT_WINDOW_WEIGHT_MIN) -> dict:
+    """Where the propagated states of the previous step went among all computed roots.
+
+    overlap_all : (F, 1 + n_roots) <Ψ_k(prev)|Ψ_l(new)> with the F propagated previous states as rows
+        (index 0 the reference) and every computed root, buffer included, as columns (dimensionless).
+    Returns ``root_window_weight`` (F,) Σ_l |S_kl|² over all computed states (≈ 1 when state k is still
+    inside the computed window), ``root_best_match`` (F,) column of the largest |S_kl|, and
+    ``root_tracking``: "" (all matched inside the propagated set), "entered buffer: …" (a propagated
+    state now matches best a buffer root, i.e. a higher state came down below it) or "left window: …"
+    (its weight dropped below ``weight_min``: it is not among the computed roots any more).
+    See docs/theory.md#root-buffer.
+    """
+    s = np.asarray(overlap_all, dtype=float)
+    weight = np.sum(s * s, axis=1)
+    best = np.argmax(np.abs(s), axis=1)
+    notes = []
+    left = [k for k in range(s.shape[0]) if weight[k] < weight_min]
+    if left:
+        notes.append("left window: state " + ", ".join(f"{k} (weight {weight[k]:.2f})" for k in left))
+    moved = [k for k in range(s.shape[0]) if best[k] >= nstates and k not in left]
+    if moved:
+        notes.append("entered buffer: state " + ", ".join(f"{k} -> root {best[k]}" for k in moved))
+    return {"root_window_weight": weight, "root_best_match": best.astype(int), "root_tracking": "; ".join(notes),
+            "buffer_roots": int(s.shape[1] - nstates)}
+
+
 # ---------------------------------------------------------------------------------------------
 # Backend
 # ---------------------------------------------------------------------------------------------
@@ -184,6 +232,7 @@ class TDDFTGuess:
     x_amplitudes : (F−1, nocc, nvir) excited-state amplitudes, normalised 2ΣX² = 1, with the signs
         aligned to the previous step (the phase convention the next overlap refers to).
     fingerprint : (symbols, basis, charge) the guess belongs to.
+    gap_Eh : S1 − S0 energy gap at that geometry (Eh), None with one state.
     """
 
     positions_bohr: np.ndarray
@@ -191,49 +240,68 @@ class TDDFTGuess:
     nocc: int
     x_amplitudes: np.ndarray
     fingerprint: tuple
+    gap_Eh: float | None = None
 
 
-class _CheckedCPHF:
-    """Stand-in for ``pyscf.scf.cphf`` inside the TD gradient modules that records the residual.
+class _ResponseCPHF:
+    """Stand-in for ``pyscf.scf.cphf`` inside the TD gradient modules (docs/theory.md#z-vector-solve).
 
-    PySCF's Z-vector (CPHF) solver never reports non-convergence; we recompute the residual of
-    (ε_a − ε_i) z + fvind(z) = −w (the equation ``cphf.solve_nos1`` solves) after the solve.
+    ``solver="krylov"``: the field-independent Z-vector equation (ε_a − ε_i) z + fvind(z) = −w that
+    ``cphf.solve`` would hand to PySCF's Krylov routine is solved by :func:`solve_zvector` instead
+    (GMRES → MINRES → dense, to ``tol``).  ``solver="pyscf"``: PySCF's own solve.  Either way the
+    true relative residual is recomputed afterwards and recorded in ``residuals`` (PySCF's solver
+    never reports non-convergence).  Calls with an overlap derivative ``s1`` go to PySCF unchanged.
     """
 
-    def __init__(self, real_module):
+    def __init__(self, real_module, solver: str = "krylov", tol: float = DEFAULT_ZVECTOR_TOL):
         self._real = real_module
+        self._solver = solver
+        self._tol = tol
         self.residuals: list[float] = []
+        self.solvers: list[str] = []
+        self.products: list[int] = []
+        self.solutions: list[np.ndarray] = []
 
     def solve(self, fvind, mo_energy, mo_occ, h1, s1=None, **kwargs):
-        out = self._real.solve(fvind, mo_energy, mo_occ, h1, s1, **kwargs)
-        if s1 is None:
-            z = np.asarray(out[0])
-            e_a = mo_energy[mo_occ == 0]
-            e_i = mo_energy[mo_occ > 0]
-            lhs = z.reshape(len(e_a), len(e_i)) * (e_a[:, None] - e_i[None, :])
-            lhs = lhs + np.asarray(fvind(z)).reshape(lhs.shape)
-            rhs = -np.asarray(h1).reshape(lhs.shape)
-            self.residuals.append(float(np.linalg.norm(lhs - rhs) / max(np.linalg.norm(rhs), 1e-300)))
-        return out
+        if s1 is not None:
+            return self._real.solve(fvind, mo_energy, mo_occ, h1, s1, **kwargs)
+        e_a = mo_energy[mo_occ == 0]
+        e_i = mo_energy[mo_occ > 0]
+        shape = (len(e_a), len(e_i))
+        diag = (e_a[:, None] - e_i[None, :]).ravel()
+        rhs = -np.asarray(h1, dtype=float).ravel()
+        if self._solver == "krylov":
+            sol = solve_zvector(lambda z: np.asarray(fvind(z.reshape(shape))).ravel(), diag, rhs, tol=self._tol)
+            z, res = sol.z, sol.residual
+            self.solvers.append(sol.solver)
+            self.products.append(sol.products)
+        else:
+            z = np.asarray(self._real.solve(fvind, mo_energy, mo_occ, h1, None, **kwargs)[0]).ravel()
+            lhs = diag * z + np.asarray(fvind(z.reshape(shape))).ravel()
+            res = float(np.linalg.norm(lhs - rhs) / max(np.linalg.norm(rhs), 1e-300))
+            self.solvers.append("pyscf krylov")
+        self.residuals.append(float(res))
+        self.solutions.append(z.copy())
+        return z.reshape(np.shape(h1)), None
 
     def __getattr__(self, name):
         return getattr(self._real, name)
 
 
 @contextlib.contextmanager
-def _checked_cphf():
-    """Record the Z-vector residual of PySCF's TD gradients (swap under the PySCF patch lock,
-    restored on any exit).  On an untested PySCF release nothing is swapped and no residual is
-    recorded (``checker.residuals`` stays empty)."""
+def _response_cphf(solver: str = "krylov", tol: float = DEFAULT_ZVECTOR_TOL):
+    """Swap :class:`_ResponseCPHF` into PySCF's TD gradient modules (under the PySCF patch lock,
+    restored on any exit).  On an untested PySCF release nothing is swapped: PySCF's own solve
+    runs and no residual is recorded (``.residuals`` stays empty)."""
     from pyscf.grad import tdrhf, tdrks
     from pyscf.scf import cphf
 
-    checker = _CheckedCPHF(cphf)
+    stand_in = _ResponseCPHF(cphf, solver, tol)
     if not response_interception_allowed():
-        yield checker
+        yield stand_in
         return
-    with swapped((tdrhf, "cphf", checker), (tdrks, "cphf", checker)):
-        yield checker
+    with swapped((tdrhf, "cphf", stand_in), (tdrks, "cphf", stand_in)):
+        yield stand_in
 
 
 class TDDFTBackend:
@@ -250,14 +318,27 @@ class TDDFTBackend:
     method : "tda" (default) or "tddft" (full linear response, X and Y).
     nstates : number of states F **including** the ground state (F ≥ 1).
     scf_conv_tol : SCF energy tolerance (Eh); scf_conv_tol_grad : orbital-gradient tolerance.
-    td_conv_tol : Davidson residual tolerance (Eh); cphf_conv_tol : Z-vector tolerance.
-    cphf_residual_tol : relative Z-vector residual above which a gradient counts as unconverged
-        (PySCF's Krylov solver stops near a relative residual ~1e-5 whatever ``cphf_conv_tol``
-        says, because of its linear-dependence cut-off; measured gradient error then ~2e-7 Eh/Bohr).
+    td_conv_tol : Davidson residual tolerance (Eh); cphf_conv_tol : tolerance handed to PySCF's own
+        Z-vector solve (``zvector_solver="pyscf"`` and the last fallback).
+    cphf_residual_tol : relative Z-vector residual above which a gradient counts as unconverged.
+    zvector_solver : "krylov" (default; :func:`mapdyn.backends.pyscf.zvector.solve_zvector`, GMRES →
+        MINRES → dense, docs/theory.md#z-vector-solve) or "pyscf" (PySCF's Krylov routine, which
+        stalls near a relative residual 1e-5..1e-3 at some geometries whatever its tolerance says).
+    zvector_tol : relative residual the Krylov ladder aims for.
+    seam_gap : S1−S0 gap in Eh below which the trajectory ends as "reached the S1/S0 region"
+        (:class:`~mapdyn.backends.contract.RegionReached`, docs/theory.md#s1s0-region); a negative or
+        complex excitation energy ends it too.  None switches the rule off (a non-positive excitation
+        energy is then a ``BackendError``).  Default :data:`DEFAULT_SEAM_GAP` (0.1 eV).
+    seam_watch_gap : previous-step S1−S0 gap in Eh below which S0 or S1 vanishing from the computed
+        roots (SCF solution jump, S1 root lost) also ends the trajectory in the S1/S0 region
+        (default 1 eV); elsewhere such a jump is a ``BackendError``.
     Accuracy note: PySCF's TD-DFT gradients omit the DFT grid-weight response; against finite
     differences this costs ~6e-6 Eh/Bohr at grid level 3 and ~2e-6 at level 4 (water/STO-3G, PBE0).
     grids_level : PySCF DFT grid level (0–9), ignored for HF.
-    extra_roots : additional Davidson roots solved for robustness (not returned).
+    extra_roots : buffer of additional roots solved above the propagated ones (not returned): they
+        stabilise the Davidson solve near degeneracies and let the state matching see whether a
+        propagated state moved out of the propagated set (diagnostics ``root_window_weight``,
+        ``root_tracking``; docs/theory.md#root-buffer).
     singular_tol : smallest allowed singular value of the occupied–occupied MO overlap.
     threads : OpenMP threads handed to ``pyscf.lib.num_threads`` during ``compute``.
     """
@@ -266,9 +347,11 @@ class TDDFTBackend:
                  basis: str = "6-31g", xc: str | None = None, method: str = "tda",
                  nstates: int = 3, scf_conv_tol: float = 1e-11, scf_conv_tol_grad: float = 1e-7,
                  td_conv_tol: float = 1e-7, cphf_conv_tol: float = 1e-9,
-                 cphf_residual_tol: float = 1e-4, grids_level: int = 3, extra_roots: int = 2,
+                 cphf_residual_tol: float = 1e-6, grids_level: int = 3, extra_roots: int = 2,
                  scf_max_cycle: int = 100, td_max_cycle: int = 200,
-                 singular_tol: float = DEFAULT_SINGULAR_TOL, threads: int = 1):
+                 singular_tol: float = DEFAULT_SINGULAR_TOL, threads: int = 1,
+                 zvector_solver: str = "krylov", zvector_tol: float = DEFAULT_ZVECTOR_TOL,
+                 seam_gap: float | None = DEFAULT_SEAM_GAP, seam_watch_gap: float = DEFAULT_SEAM_WATCH_GAP):
         from pyscf import gto
 
         self.symbols = [str(s) for s in symbols]
@@ -304,6 +387,18 @@ class TDDFTBackend:
         self.td_conv_tol = float(td_conv_tol)
         self.cphf_conv_tol = float(cphf_conv_tol)
         self.cphf_residual_tol = float(cphf_residual_tol)
+        self.zvector_solver = str(zvector_solver).lower()
+        if self.zvector_solver not in ("krylov", "pyscf"):
+            raise ValueError(f"zvector_solver must be 'krylov' or 'pyscf', got {zvector_solver!r}")
+        if not (np.isfinite(zvector_tol) and zvector_tol > 0):
+            raise ValueError(f"zvector_tol must be a positive number, got {zvector_tol}")
+        self.zvector_tol = float(zvector_tol)
+        if seam_gap is not None and not (np.isfinite(seam_gap) and seam_gap >= 0):
+            raise ValueError(f"seam_gap must be None or a non-negative energy in Eh, got {seam_gap}")
+        self.seam_gap = None if seam_gap is None else float(seam_gap)
+        if not (np.isfinite(seam_watch_gap) and seam_watch_gap >= 0):
+            raise ValueError(f"seam_watch_gap must be a non-negative energy in Eh, got {seam_watch_gap}")
+        self.seam_watch_gap = float(seam_watch_gap)
         self.singular_tol = float(singular_tol)
         if not 0 <= int(grids_level) <= 9:
             raise ValueError(f"grids_level must be 0..9, got {grids_level}")
@@ -396,6 +491,53 @@ class TDDFTBackend:
                 return mf
         raise BackendError("SCF did not converge", attempts)
 
+    def _check_seam(self, exc: np.ndarray, r: np.ndarray, attempts: list[dict]) -> np.ndarray:
+        """Excitation energies (Eh, real) after the S1/S0-region rule (docs/theory.md#s1s0-region):
+        raise :class:`RegionReached` when the lowest excitation is complex, non-positive or below
+        ``seam_gap``; with the rule off a non-positive or complex one is a ``BackendError``."""
+        exc = np.asarray(exc)
+        complex_root = bool(np.iscomplexobj(exc) and np.any(np.abs(exc.imag) > 1e-10 * np.maximum(1.0, np.abs(exc.real))))
+        exc_real = np.asarray(exc.real, dtype=float)
+        gap = float(exc_real[0])
+        if self.seam_gap is None:
+            if complex_root or np.any(exc_real <= 0.0):
+                raise BackendError(
+                    f"non-positive or complex excitation energy {exc_real.min():.3e} Eh: the reference is "
+                    f"unstable (linear response is unreliable near S1/S0 crossings)", attempts)
+            return exc_real
+        if complex_root or not np.all(np.isfinite(exc_real)) or gap < self.seam_gap:
+            why = ("a complex excitation energy" if complex_root else
+                   f"S1-S0 gap {gap * HARTREE_IN_EV:.3f} eV < {self.seam_gap * HARTREE_IN_EV:.3f} eV")
+            raise RegionReached("S1/S0 region", f"{why} (linear response from one reference is not valid there)",
+                                {"gap_Eh": gap, "seam_gap_Eh": self.seam_gap, "complex": complex_root,
+                                 "positions_bohr": np.asarray(r, dtype=float).tolist()})
+        return exc_real
+
+    def _check_window(self, diagnostics: dict, guess: TDDFTGuess, attempts: list[dict]) -> None:
+        """A propagated state of the previous step that is not among the computed roots any more
+        (``root_window_weight`` < :data:`ROOT_WINDOW_WEIGHT_MIN`) makes the surfaces discontinuous.
+        If it is S0 (the reference determinant changed: another SCF solution) or S1, and the previous
+        S1−S0 gap was below ``seam_watch_gap``, the single reference broke down within the step: the
+        trajectory entered the S1/S0 region (:class:`RegionReached`).  Otherwise a ``BackendError``
+        names the state (docs/theory.md#root-buffer)."""
+        weight = diagnostics["root_window_weight"]
+        left = [k for k in range(len(weight)) if weight[k] < ROOT_WINDOW_WEIGHT_MIN]
+        if not left:
+            return
+        gap = guess.gap_Eh
+        if ((0 in left or 1 in left) and self.seam_gap is not None and gap is not None
+                and gap < self.seam_watch_gap):
+            what = ("the reference determinant changed (another SCF solution)" if 0 in left else
+                    "S1 of the previous step is not among the computed roots any more")
+            raise RegionReached("S1/S0 region", f"{what} after an S1-S0 gap of {gap * HARTREE_IN_EV:.3f} eV "
+                                f"(weights of the previous states among the new roots: "
+                                + ", ".join(f"{w:.2f}" for w in weight) + ")",
+                                {"gap_Eh": gap, "seam_gap_Eh": self.seam_gap,
+                                 "window_weight": [float(w) for w in weight]})
+        raise BackendError("electronic structure discontinuous: state(s) " + ", ".join(map(str, left))
+                           + " of the previous step are not among the computed roots (weights "
+                           + ", ".join(f"{weight[k]:.2f}" for k in left) + ")", attempts)
+
     def _run_td(self, mf, attempts: list[dict]):
         nexc = self.nstates - 1
         maxroots = self._nocc * self._nvir
@@ -407,6 +549,10 @@ class TDDFTBackend:
             else:
                 td = mf.TDDFT() if self.xc is not None else mf.TDHF()
             td.nstates = nroots
+            if self.method == "tda":
+                # PySCF silently drops roots below 1e-3 Eh (positive_eig_threshold); keep them so the
+                # S1/S0-region rule sees a collapsing or negative S1 (docs/theory.md#pyscf-pitfalls)
+                td.positive_eig_threshold = -np.inf
             td.conv_tol = self.td_conv_tol
             td.max_cycle = max_cycle
             td.verbose = 0
@@ -467,16 +613,15 @@ class TDDFTBackend:
             t0 = time.perf_counter()
             td = self._run_td(mf, attempts)
             timings["td"] = time.perf_counter() - t0
-            exc = np.asarray(td.e[:nexc], dtype=float)
-            if np.any(exc <= 0.0):
-                raise BackendError(
-                    f"non-positive excitation energy {exc.min():.3e} Eh: the reference is unstable "
-                    f"(linear response is unreliable near S1/S0 crossings)", attempts)
+            exc = self._check_seam(np.asarray(td.e[:nexc]), r, attempts)
             energies = np.concatenate([energies, mf.e_tot + exc])
-            xs = np.array([np.asarray(td.xy[k][0]) for k in range(nexc)])
+            nroots = len(td.e)
+            xs_all = np.array([np.asarray(td.xy[k][0]) for k in range(nroots)])
+            xs = xs_all[:nexc]
             ys = [td.xy[k][1] for k in range(nexc)]
             ys = np.array([np.zeros_like(xs[0]) if isinstance(y, (int, float)) else np.asarray(y) for y in ys])
-            x_norm = normalise_cis_amplitudes(xs)
+            x_all = normalise_cis_amplitudes(xs_all)
+            x_norm = x_all[:nexc]
             # linear-response transition density X+Y (PySCF normalisation Σ(X²−Y²) = 1/2)
             xpy = xs + ys
 
@@ -511,9 +656,12 @@ class TDDFTBackend:
             s_mo = np.asarray(guess.mo_coeff).T @ s_ao @ c_new
             if guess.nocc != nocc:
                 raise BackendError(f"occupied count changed between steps ({guess.nocc} -> {nocc})", attempts)
-            raw, sigma_min = determinant_state_overlaps(s_mo, nocc, guess.x_amplitudes, x_norm,
-                                                        self.singular_tol)
+            raw_all, sigma_min = determinant_state_overlaps(s_mo, nocc, guess.x_amplitudes,
+                                                            x_all if nexc > 0 else x_norm, self.singular_tol)
+            raw = raw_all[:, :self.nstates]
             diagnostics["overlap_raw"] = raw
+            diagnostics.update(root_window_diagnostics(raw_all, self.nstates))
+            self._check_window(diagnostics, guess, attempts)
             match = match_states(raw)
             signs = match.signs
             overlap_aligned = match.overlap
@@ -543,23 +691,35 @@ class TDDFTBackend:
                 tdg = td.nuc_grad_method()
                 tdg.verbose = 0
                 tdg.cphf_conv_tol = self.cphf_conv_tol
-                residuals = []
+                residuals, solvers, products = [], [], []
+                plans = [("krylov", 50)] if self.zvector_solver == "krylov" else []
+                plans += [("pyscf", 50), ("pyscf", 200)]
                 for k in range(nexc):
-                    for cycles in (50, 200):
+                    best: tuple | None = None
+                    for solver, cycles in plans:
                         tdg.cphf_max_cycle = cycles
-                        with _checked_cphf() as checker:
+                        with _response_cphf(solver, self.zvector_tol) as stand_in:
                             g = np.asarray(tdg.kernel(state=k + 1))
-                        res = max(checker.residuals) if checker.residuals else float("nan")
-                        ok = np.all(np.isfinite(g)) and not res > self.cphf_residual_tol  # NaN: not recorded
-                        attempts.append({"what": f"state {k + 1} gradient, cphf_max_cycle={cycles}",
-                                         "outcome": f"{'converged' if ok else 'not converged'} (Z-vector residual {res:.1e})"})
+                        res = max(stand_in.residuals) if stand_in.residuals else float("nan")
+                        ok = bool(np.all(np.isfinite(g))) and not res > self.cphf_residual_tol  # NaN: not recorded
+                        name = stand_in.solvers[-1] if stand_in.solvers else "pyscf (not intercepted)"
+                        what = f"state {k + 1} gradient, Z-vector by {name}" + (
+                            f", cphf_max_cycle={cycles}" if solver == "pyscf" else f", {sum(stand_in.products)} products")
+                        attempts.append({"what": what, "outcome": f"{'converged' if ok else 'not converged'} "
+                                                                  f"(Z-vector residual {res:.1e})"})
+                        if best is None or (np.isfinite(res) and not res >= best[1]):
+                            best = (g, res, name, sum(stand_in.products))
                         if ok:
                             break
                     else:
                         raise BackendError(f"gradient of state {k + 1} did not converge", attempts)
                     gradients[k + 1] = g
                     residuals.append(res)
+                    solvers.append(name)
+                    products.append(sum(stand_in.products))
                 diagnostics["cphf_residuals"] = residuals
+                diagnostics["zvector_solvers"] = solvers
+                diagnostics["zvector_products"] = products
             timings["gradients"] = time.perf_counter() - t0
 
         diagnostics.update({
@@ -574,7 +734,8 @@ class TDDFTBackend:
             "overlap_convention": "X-only, 2ΣX²=1" if self.method == "tddft" else "CIS-like X, 2ΣX²=1",
         })
         new_guess = TDDFTGuess(positions_bohr=r.copy(), mo_coeff=c_new.copy(), nocc=nocc,
-                               x_amplitudes=x_norm.copy(), fingerprint=self.fingerprint)
+                               x_amplitudes=x_norm.copy(), fingerprint=self.fingerprint,
+                               gap_Eh=float(energies[1] - energies[0]) if nexc > 0 else None)
         result = ElectronicResult(
             energies=energies, gradients=gradients, couplings=None, overlap_prev=overlap_aligned,
             transition_dipoles=dip, spin_squared=np.zeros(self.nstates), guess=new_guess,
