@@ -220,8 +220,9 @@ def plot_trajectory_view(view: TrajectoryView, path: str | os.PathLike, *, drift
             for k in range(F):
                 ax.plot(t, V[:, k], color=colour[k % len(colour)], lw=1.1, label=f"state {k}")
             if view.method == "sqc":
-                occ = np.where(view.states >= 0, V[np.arange(t.size), np.maximum(view.states, 0)], np.nan)
-                ax.plot(t, occ, color="#222222", lw=3.2, alpha=0.35, label="occupied window")
+                for k in range(F):  # one piece per state: no connector where the window changes
+                    ax.plot(t, np.where(view.states == k, V[:, k], np.nan), color="#222222", lw=3.2, alpha=0.35,
+                            label="occupied window" if k == 0 else None)
             else:
                 ax.plot(t, np.sum(view.fractions * V, axis=1), color="#222222", ls="--", lw=1.2,
                         label="Σ P_k E_k (mean field)")
@@ -365,8 +366,7 @@ def _plot_sheet(tset: TrajectorySet, rows: list, ov: dict, path: str, min_dwell:
     ncols = 6 if len(rows) > 24 else 4 if len(rows) > 8 else max(1, min(len(rows), 4))
     nrows = -(-len(rows) // ncols)
     t_end = float(tset.times[-1] * AU_TIME_IN_FS)
-    tu = "fs" if tset.is_molecular else "a.u."
-    scale = AU_TIME_IN_FS if tu == "fs" else 1.0
+    tu, scale = "fs", AU_TIME_IN_FS
     with plots.new_figure(nrows, ncols, figsize=(2.3 * ncols, 1.45 * nrows + 0.9), sharex=True, sharey=True) \
             as (fig, axes):
         flat = axes.ravel()
@@ -389,7 +389,7 @@ def _plot_sheet(tset: TrajectorySet, rows: list, ov: dict, path: str, min_dwell:
             ax.grid(False)
         for ax in flat[len(rows):]:
             ax.set_visible(False)
-        flat[0].set_xlim(0, t_end if tu == "fs" else float(tset.times[-1]))
+        flat[0].set_xlim(0, t_end)
         if gmax > 0 and tset.state_energies is not None:
             flat[0].set_ylim(0, 1.05 * gmax)
         ylabel = "E1 − E0 / eV" if tset.state_energies is not None and tset.nstates > 1 else "state"
@@ -398,7 +398,7 @@ def _plot_sheet(tset: TrajectorySet, rows: list, ov: dict, path: str, min_dwell:
         for c in range(ncols):
             axes[-1, c].set_xlabel(f"time / {tu}", fontsize=7.5)
         what = "SQC window" if tset.options.method == "sqc" else "state with population > 1/2"
-        fig.suptitle(f"{len(rows)} trajectories ({page}): line E1 − E0, shading = occupied {what} "
-                     f"(" + ", ".join(f"state {k}" for k in range(tset.nstates)) + " in the state colours), "
-                     "dash-dot = transfer; red title = flagged, wN = N warning records", fontsize=8.5)
+        fig.suptitle(f"{len(rows)} trajectories ({page}); line: E1 − E0; shading: occupied {what} "
+                     "(state colours: " + ", ".join(f"{k}" for k in range(tset.nstates)) + ")\n"
+                     "dash-dot: counted transfer; red title with '!': flagged; wN: N warning records", fontsize=8.5)
         return plots.save_figure(fig, path, dpi=100)
