@@ -106,7 +106,7 @@ def trajectory_notes(tset: TrajectorySet, row: int, view: TrajectoryView, energy
     """Lines describing one trajectory: status, frames, states, transfers, energy flags, warnings."""
     from mapdyn.analysis.report import summarise_warnings
 
-    L = [f"trajectory {view.index}: {view.status}" + (f" ({view.reason})" if view.reason else "")
+    L = [f"trajectory {view.index}: {view.status}" + (f" ({view.reason})" if view.reason and view.status != "failed" else "")
          + f"; {view.times.size} frames, t = {view.times_fs[0]:.4g} … {view.times_fs[-1]:.4g} fs"
          if view.times.size else f"trajectory {view.index}: {view.status}; no frames"]
     if view.times.size:
