@@ -356,7 +356,8 @@ def _transfer_summary(tr: Any) -> list[str]:
         L += ["No transfer counted.", ""]
         return L
     ntr = len(set(tb.trajectory.tolist()))
-    L.append(f"- {tb.count} transfers in {ntr} trajectories; transfer times (fs): median "
+    L.append(f"- {tb.count} transfer{'s' if tb.count != 1 else ''} in {ntr} trajector{'ies' if ntr != 1 else 'y'}; "
+             "transfer times (fs): median "
              f"{np.median(tb.time_fs):.4g}, 10–90 % {np.quantile(tb.time_fs, 0.1):.4g}–{np.quantile(tb.time_fs, 0.9):.4g}")
     kinds = sorted({(int(a), int(b)) for a, b in zip(tb.from_state, tb.to_state)})
     for a, b in kinds:

@@ -248,8 +248,16 @@ def plot_trajectory_view(view: TrajectoryView, path: str | os.PathLike, *, drift
         ax = axes[2, 0]
         g = view.gap
         if g is not None:
-            ax.plot(t, g * HARTREE_IN_EV, color=colour[5])
-            ax.set_ylabel("E1 − E0 / eV")
+            ax.plot(t, g * HARTREE_IN_EV, color=colour[5], label="E1 − E0")
+            if F > 2:  # the occupied state and the one below it
+                k = view.states
+                ok = k >= 1
+                below = np.full(t.size, np.nan)
+                rows = np.nonzero(ok)[0]
+                below[rows] = view.state_energies[rows, k[ok]] - view.state_energies[rows, k[ok] - 1]
+                ax.plot(t, below * HARTREE_IN_EV, color=colour[1], ls="--", lw=1.2, label="E_occ − E_occ−1")
+                ax.legend(loc="best", fontsize=7.5)
+            ax.set_ylabel("gap / eV")
             if np.isfinite(g).any():
                 ax.set_ylim(bottom=0)
         else:
