@@ -345,20 +345,22 @@ def plot_spectrum(spectrum: Any, path: str | os.PathLike, *, title: str | None =
         return save_figure(fig, path)
 
 
-def transfer_time_edges(times: np.ndarray, bins: int = 20) -> np.ndarray:
+def transfer_time_edges(times: np.ndarray, end: float = float("nan"), bins: int = 24) -> np.ndarray:
     """Bin edges for a histogram of transfer times (unit of ``times``): ``bins`` equal bins from 0
-    to just above the latest time."""
-    top = float(np.nanmax(times)) if np.size(times) and np.isfinite(times).any() else 1.0
-    return np.linspace(0.0, max(top, 1e-12) * 1.0000001, int(bins) + 1)
+    to ``end`` (the end of the run) or, when larger or ``end`` is NaN, to just above the latest time."""
+    top = float(np.nanmax(times)) * 1.0000001 if np.size(times) and np.isfinite(times).any() else 1.0
+    if np.isfinite(end) and end > 0:
+        top = max(top, float(end))
+    return np.linspace(0.0, max(top, 1e-12), int(bins) + 1)
 
 
-def plot_transfer_times(table: Any, path: str | os.PathLike, *, time_unit: str = "fs", bins: int = 20,
+def plot_transfer_times(table: Any, path: str | os.PathLike, *, time_unit: str = "fs", bins: int = 24,
                         title: str | None = None) -> str:
     """Stacked histogram of transfer times, one colour per kind of transfer (from → to)."""
     from mapdyn.units import AU_TIME_IN_FS
 
     t, xlabel = _time(table.time, time_unit)
-    edges = transfer_time_edges(t, bins)
+    edges = transfer_time_edges(t, float(_time(np.array([table.end_time]), time_unit)[0][0]), bins)
     with new_figure() as (fig, ax):
         ax = ax[0, 0]
         kinds = sorted({(int(a), int(b)) for a, b in zip(table.from_state, table.to_state)})

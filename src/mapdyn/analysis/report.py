@@ -301,7 +301,7 @@ def _write_transfers(tr: Any, folder: str, tab, fig, tu: str) -> None:
         data.append(tb.values[:, q])
     tab("transfers", cols, data)
     t_plot = tb.time_fs if tu == "fs" else tb.time
-    edges = plots.transfer_time_edges(t_plot)
+    edges = plots.transfer_time_edges(t_plot, tb.end_time * (AU_TIME_IN_FS if tu == "fs" else 1.0))
     kinds = sorted({(int(a), int(b)) for a, b in zip(tb.from_state, tb.to_state)})
     u = "fs" if tu == "fs" else "au"
     hcols = [f"bin_low_{u}", f"bin_high_{u}"] + [f"count_{a}_to_{b}" for a, b in kinds]

@@ -154,7 +154,7 @@ class TransferTable:
     coupling_norm (m,) |d_from,to| at the entry frame, 1/Bohr (NaN when not recorded);
     values (m, k) internal coordinates at the entry frame (Å or degrees; see ``names``/``units``);
     circular (k,) torsions (periodic, degrees); positions (m, N, 3) Bohr or None;
-    min_dwell a.u.; criterion: the rule in words.
+    min_dwell a.u.; criterion: the rule in words; end_time : last time of the set, a.u.
     """
 
     trajectory: np.ndarray
@@ -172,6 +172,7 @@ class TransferTable:
     positions: np.ndarray | None
     min_dwell: float
     criterion: str
+    end_time: float = float("nan")
 
     @property
     def count(self) -> int:
@@ -226,11 +227,10 @@ def find_transfers(tset: TrajectorySet, min_dwell: float, observables: Sequence[
     values = np.zeros((m, len(obs)))
     for q, o in enumerate(obs):
         values[:, q] = o.values(pos) if m else np.zeros(0)
-    how = "SQC window" if tset.options.method == "sqc" else "population > 1/2"
-    criterion = f"{TRANSFER_RULE}; occupied state: {how}; min_dwell = {min_dwell * AU_TIME_IN_FS:.4g} fs"
+    criterion = f"{TRANSFER_RULE}; min_dwell = {min_dwell * AU_TIME_IN_FS:.4g} fs"
     return TransferTable(arr["trajectory"].astype(int), rows, frames, arr["time"].astype(float), a, b, gap, cn,
                          tuple(o.name for o in obs), tuple(o.unit for o in obs), tuple(o.kind for o in obs), values,
-                         pos, float(min_dwell), criterion)
+                         pos, float(min_dwell), criterion, float(tset.times[-1]))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -343,6 +343,8 @@ def transfer_families(values: np.ndarray, kinds: Sequence[str], *, distance: flo
             else:
                 means[f, q] = float(np.mean(col))
                 spreads[f, q] = float(np.std(col, ddof=1)) if col.size > 1 else 0.0
+            if col.size == 1:
+                spreads[f, q] = 0.0  # (the circular std of one angle is rounding noise)
     return TransferFamilies(labels, sizes, means, spreads, reps, rule)
 
 
