@@ -384,7 +384,7 @@ def _plot_sheet(tset: TrajectorySet, rows: list, ov: dict, path: str, min_dwell:
             _state_spans(ax, t, v.states, alpha=0.35)
             g = v.gap
             if g is not None:
-                ax.plot(t, g * HARTREE_IN_EV, color="#222222", lw=0.9)
+                ax.plot(t, g * HARTREE_IN_EV, color="#222222", lw=0.9, marker="o" if t.size < 3 else None, ms=3)
             else:
                 ax.step(t, v.states, where="mid", color="#222222", lw=0.9)
             for x in v.transfers[3]:
