@@ -325,3 +325,65 @@ def test_prepare_is_a_command_with_an_example(capsys):
     with pytest.raises(SystemExit):
         main(["prepare", "--help"])
     assert "absorption_spectrum.png" in capsys.readouterr().out
+
+
+def test_show_one_trajectory_and_contact_sheet(tmp_path, capsys):
+    """`mapdyn show`: files in report/show/, transfers and warnings printed; the min_dwell key of
+    [analysis] round-trips through the study folder and reaches the report."""
+    from mapdyn.study.analysis_settings import settings_from_table
+    from mapdyn.study.diagnostics import record_warnings
+    from mapdyn.units import AU_TIME_IN_FS
+
+    text = tully1_study(trajectories=12, batch=6, workers=1) + 'min_dwell = "50 au"\ntransfer_families = 2\n'
+    mapdyn("run", write(tmp_path, "m.toml", text), cwd=tmp_path)
+    folder = tmp_path / "runs" / "tully1_test"
+    study = Study(folder)
+    assert study.config.analysis["min_dwell"] == "50 au"
+    assert settings_from_table(study.config.analysis)["min_dwell"] == pytest.approx(50.0)
+    assert "min_dwell = 1.209 fs" in (folder / "report" / "summary.md").read_text()
+    assert (folder / "report" / "transfers.csv").is_file() and (folder / "report" / "transfer_times.png").is_file()
+
+    class Caught:  # a warning as the worker would have caught it
+        category = UserWarning
+        message = "time step does not resolve the electronic gap (test record)"
+
+    record_warnings(folder / "chunks" / "chunk_0000.warnings.json", 3, 40, [Caught()])
+    assert main(["show", str(folder), "--trajectory", "3"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("trajectory 3: finished; 101 frames")
+    assert f"transfers (min_dwell {50 * AU_TIME_IN_FS:.3g} fs)" in out
+    assert "warning: 1× UserWarning: time step does not resolve the electronic gap (test record)" in out
+    show = folder / "report" / "show"
+    assert (show / "trajectory_000003.png").stat().st_size > 10_000
+    from mapdyn.analysis.report import read_csv
+
+    rows = read_csv(show / "trajectory_000003.csv")
+    assert rows["time_au"].size == 101 and np.all(rows["gap_E1_E0_ev"] > 0)
+    assert main(["show", str(folder), "--all"]) == 0
+    out = capsys.readouterr().out
+    assert "12 trajectories with frames (finished 12)" in out
+    assert (show / "contact_sheet_01.png").is_file()
+    sheet = read_csv(show / "contact_sheet.csv")
+    assert sheet["trajectory"].tolist() == list(range(12)) and sheet["warnings"][3] == 1
+    assert main(["show", str(folder), "--trajectory", "12"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--trajectory 12: the study has trajectories 0..11" in err
+
+
+@pytest.mark.parametrize("line,fragment", [
+    ("min_dwell = 2", "analysis.min_dwell = 2: give a duration with a unit"),
+    ('min_dwell = "-1 fs"', "analysis.min_dwell = \"-1 fs\": must be a duration >= 0"),
+    ('min_dwell = "2 m"', "analysis.min_dwell = \"2 m\": unknown time unit"),
+    ("transfer_families = 0", "analysis.transfer_families = 0: must be a number of families >= 1"),
+    ("transfer_family_distance = -1.0", "analysis.transfer_family_distance = -1.0: must be a number > 0"),
+    ("transfer_families = 2\ntransfer_family_distance = 1.0", "are alternatives; give one of them"),
+])
+def test_transfer_keys_refused_in_one_line(tmp_path, monkeypatch, capsys, line, fragment):
+    path = tmp_path / "s.toml"
+    path.write_text(tully1_study(trajectories=4, workers=1) + line + "\n")
+    monkeypatch.chdir(tmp_path)
+    assert main(["run", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert fragment in err, err
+    assert err.count("\n") == 1 and err.startswith("mapdyn: error: ")
+    assert sorted(os.listdir(tmp_path)) == ["s.toml"]  # nothing written

@@ -34,6 +34,8 @@ examples:
   mapdyn resume runs/model_tully1            continue after Ctrl-C, a crash or a reboot
   mapdyn extend runs/model_tully1 --trajectories 400 --duration "3000 au"
   mapdyn analyze runs/model_tully1           (re)write the report folder
+  mapdyn show runs/model_tully1 --trajectory 7   one trajectory: energies, states, gap, drift, warnings
+  mapdyn show runs/model_tully1 --all        contact sheet of every trajectory (spot outliers)
   mapdyn check inputs/methaniminium_demo.toml  preflight: finite-difference checks and core-hours
   mapdyn validate --quick                    the method's accuracy on built-in exact benchmarks
 
@@ -122,6 +124,17 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("folder", metavar="DIR", help="study folder")
     a.add_argument("--allow-incomplete", action="store_true",
                    help="exit 0 even when trajectories are missing or damaged (they are listed in the report)")
+
+    sh = sub.add_parser("show", help="inspect one trajectory, or a contact sheet of all (figure + CSV)",
+                        description="Draw one trajectory of a study (state energies with the occupied window or "
+                                    "populations, S1-S0 gap, energy drift, the [analysis] observables, transfers) "
+                                    "and print its flags and warnings; or, with --all, one small panel per "
+                                    "trajectory. Files go to DIR/report/show/ (or --output); works on running studies.")
+    sh.add_argument("folder", metavar="DIR", help="study folder")
+    which = sh.add_mutually_exclusive_group(required=True)
+    which.add_argument("--trajectory", type=int, metavar="N", help="study index of the trajectory")
+    which.add_argument("--all", action="store_true", help="contact sheet of the whole ensemble")
+    sh.add_argument("--output", metavar="OUT", help="folder for the files (default DIR/report/show)")
 
     x = sub.add_parser("export", help="write open formats: extended XYZ per trajectory, CSV, HDF5",
                        description="Write DIR/export/: <index>.xyz per trajectory (ase.io.read(path, index=':') "
@@ -450,6 +463,19 @@ def _cmd_export(args) -> int:
     return 0
 
 
+def _cmd_show(args) -> int:
+    from mapdyn.study.show import show_ensemble, show_trajectory
+
+    study = _open_study(args.folder)
+    if args.all:
+        paths, lines = show_ensemble(study, args.output)
+    else:
+        paths, lines = show_trajectory(study, args.trajectory, args.output)
+    print("\n".join(lines))
+    print("wrote " + ", ".join(paths))
+    return 0
+
+
 def _cmd_check(args) -> int:
     from mapdyn.study.config import ConfigError, load_study_config
     from mapdyn.study.feasibility import check_analysis, check_electronic
@@ -500,8 +526,8 @@ def _main(argv: Sequence[str] | None) -> int:
     if args.command is None:
         parser.print_help()
         return 2
-    handler = {"run": _cmd_run, "prepare": _cmd_prepare, "resume": _cmd_resume, "status": _cmd_status, "extend": _cmd_extend,
-               "analyze": _cmd_analyze, "export": _cmd_export, "check": _cmd_check,
+    handler = {"run": _cmd_run, "prepare": _cmd_prepare, "resume": _cmd_resume, "status": _cmd_status,
+               "extend": _cmd_extend, "analyze": _cmd_analyze, "show": _cmd_show, "export": _cmd_export, "check": _cmd_check,
                "validate": _cmd_validate}[args.command]
     configure_console()  # --quiet only drops the progress bar; messages and warnings stay
     warnings.formatwarning = lambda message, category, *a, **k: f"mapdyn: {category.__name__}: {message}\n"

@@ -375,13 +375,15 @@ def test_report_files_exist_and_csvs_equal_memory(tmp_path):
                     n_resamples=199, lifetime_resamples=20)
     rep = R.write_report(res, tmp_path / "report")
     expected = {"populations", "initial_population", "observable_distance_0_2", "observable_angle_1_0_2",
-                "first_entry_state0_distance_0_2", "energy_drift", "branching", "vibrational_H2", "spectrum"}
+                "first_entry_state0_distance_0_2", "energy_drift", "branching", "vibrational_H2", "spectrum",
+                "transfer_times", "transfer_geometries"}
     assert set(rep.figures) == expected
     for name, path in rep.figures.items():
         with open(path, "rb") as fh:
             assert fh.read(8) == b"\x89PNG\r\n\x1a\n", name
         assert os.path.getsize(path) > 5000
-    assert set(rep.tables) == expected | {"vibrational_H2_continuous"}
+    assert set(rep.tables) == (expected - {"transfer_geometries"}) | {"vibrational_H2_continuous", "transfers",
+                                                                        "transfer_families"}
     assert not [f for f in os.listdir(rep.folder) if f.endswith(".tmp")]
 
     def same(a, b):

@@ -11,6 +11,8 @@ Estimators, stated once (details in ``docs/theory.md#populations``):
   trajectories, percentile above).
 * Lifetimes: weighted least-squares single/bi-exponential fits, uncertainties from
   trajectory-bootstrap refits, reported only under :data:`LIFETIME_RULE`.
+* Transfers: changes of the occupied state held for at least ``min_dwell``, and families of the
+  geometries at transfer (:mod:`mapdyn.analysis.transfers`, docs/theory.md#transfers-and-their-geometries).
 """
 
 from mapdyn.analysis.energy import (
@@ -52,6 +54,12 @@ from mapdyn.analysis.trajectories import (
                                          from_diabatic_run,
                                          from_trajectories,
 )
+from mapdyn.analysis.transfers import (
+                                         TransferAnalysis,
+                                         TransferTable,
+                                         analyze_transfers,
+                                         find_transfers,
+)
 
 __all__ = [
     "TrajectorySet", "STATUSES", "from_diabatic_run", "from_trajectories", "frames_to_record",
@@ -60,5 +68,5 @@ __all__ = [
     "GeometricObservable", "ObservableSeries", "observable_series", "FirstEntry",
     "values_at_first_entry", "distance_rule_classifier", "ProductBranching", "classify_products",
     "EnergyReport", "energy_report", "TrajectoryFlag", "flagged_trajectories",
-    "AnalysisResults", "analyze",
+    "AnalysisResults", "analyze", "TransferAnalysis", "TransferTable", "analyze_transfers", "find_transfers",
 ]

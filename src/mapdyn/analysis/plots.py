@@ -28,6 +28,9 @@ __all__ = [
     "plot_branching",
     "plot_vibrational_distribution",
     "plot_spectrum",
+    "transfer_time_edges",
+    "plot_transfer_times",
+    "plot_transfer_geometries",
 ]
 
 #: Our state palette: ink blue, ember, moss, plum, ochre, slate, rose, teal.
@@ -339,4 +342,77 @@ def plot_spectrum(spectrum: Any, path: str | os.PathLike, *, title: str | None =
         ax.legend(loc="upper right")
         ax.set_title(title or f"Absorption spectrum ({spectrum.n_geometries} geometries, {spectrum.line_shape} "
                               f"FWHM {spectrum.fwhm_ev:g} eV)")
+        return save_figure(fig, path)
+
+
+def transfer_time_edges(times: np.ndarray, end: float = float("nan"), bins: int = 24) -> np.ndarray:
+    """Bin edges for a histogram of transfer times (unit of ``times``): ``bins`` equal bins from 0
+    to ``end`` (the end of the run) or, when larger or ``end`` is NaN, to just above the latest time."""
+    top = float(np.nanmax(times)) * 1.0000001 if np.size(times) and np.isfinite(times).any() else 1.0
+    if np.isfinite(end) and end > 0:
+        top = max(top, float(end))
+    return np.linspace(0.0, max(top, 1e-12), int(bins) + 1)
+
+
+def plot_transfer_times(table: Any, path: str | os.PathLike, *, time_unit: str = "fs", bins: int = 24,
+                        title: str | None = None) -> str:
+    """Stacked histogram of transfer times, one colour per kind of transfer (from → to)."""
+    from mapdyn.units import AU_TIME_IN_FS
+
+    t, xlabel = _time(table.time, time_unit)
+    edges = transfer_time_edges(t, float(_time(np.array([table.end_time]), time_unit)[0][0]), bins)
+    with new_figure() as (fig, ax):
+        ax = ax[0, 0]
+        kinds = sorted({(int(a), int(b)) for a, b in zip(table.from_state, table.to_state)})
+        if kinds:
+            data = [t[(table.from_state == a) & (table.to_state == b)] for a, b in kinds]
+            ax.hist(data, bins=edges, stacked=True, edgecolor="white",
+                    color=[STATE_COLOURS[b % len(STATE_COLOURS)] for _, b in kinds],
+                    label=[f"{a} → {b} ({d.size})" for (a, b), d in zip(kinds, data)])
+            ax.legend(loc="best", title="transfer (count)")
+        else:
+            ax.text(0.5, 0.5, "no transfer counted", transform=ax.transAxes, ha="center")
+        ax.set_xlabel("transfer " + xlabel)
+        ax.set_ylabel("transfers")
+        _integer_counts(ax)
+        dwell = table.min_dwell * (1.0 if time_unit == "a.u." else AU_TIME_IN_FS)
+        ax.set_title(title or f"Transfer times ({table.count} transfers, min dwell {dwell:.3g} {time_unit})")
+        return save_figure(fig, path)
+
+
+def plot_transfer_geometries(table: Any, families: Any, path: str | os.PathLike, *, bins: int = 24,
+                             title: str | None = None) -> str:
+    """One histogram per internal coordinate at transfer, stacked by family of transfer geometries."""
+    k = len(table.names)
+    ncols = min(max(k, 1), 2)
+    nrows = max(1, (k + 1) // 2)
+    with new_figure(nrows, ncols, figsize=(6.4 if ncols == 1 else 9.0, 2.9 * nrows)) as (fig, axes):
+        flat = axes.ravel()
+        K = families.sizes.size
+        for q in range(k):
+            ax = flat[q]
+            v = table.values[:, q]
+            circ = table.kinds[q] == "dihedral"
+            edges = np.linspace(-180.0, 180.0, bins + 1) if circ else bins
+            if K:
+                data = [v[families.labels == f] for f in range(K)]
+                labels = [f"family {f + 1} ({families.sizes[f]})" for f in range(K)]
+                ax.hist(data, bins=edges, stacked=True, edgecolor="white", label=labels,
+                        color=[STATE_COLOURS[f % len(STATE_COLOURS)] for f in range(K)])
+            elif v.size:
+                ax.hist(v[np.isfinite(v)], bins=edges, color=STATE_COLOURS[0], edgecolor="white", label="all")
+            if circ:
+                ax.set_xlim(-180, 180)
+                ax.set_xticks([-180, -90, 0, 90, 180])
+            ax.set_xlabel(f"{table.names[q]} / {table.units[q]}" + (" (folded into (−180, 180])" if circ else ""))
+            ax.set_ylabel("transfers")
+            _integer_counts(ax)
+            if q == 0 and (K or v.size):
+                ax.legend(loc="best", fontsize=7.5)
+        for ax in flat[k:]:
+            ax.set_visible(False)
+        if k == 0:
+            flat[0].set_visible(True)
+            flat[0].text(0.5, 0.5, "no internal coordinates", transform=flat[0].transAxes, ha="center")
+        flat[0].set_title(title or f"Geometries at transfer ({table.count}; {K} families)")
         return save_figure(fig, path)

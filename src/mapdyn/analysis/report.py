@@ -11,6 +11,10 @@
     branching.png / branching.csv                 product branching ratios
     vibrational_<fragment>.png / .csv (+ _continuous.csv)   vibrational level populations
     spectrum.png / spectrum.csv                   absorption spectrum, when supplied
+    transfers.csv                                 every counted transfer (time, states, gap, coordinates, family)
+    transfer_times.png / .csv                     histogram of transfer times per kind of transfer
+    transfer_geometries.png, transfer_families.csv, transfer_families/family_NN.xyz
+                                                  families of transfer geometries and their representatives
     summary.md                                    inputs, counts, lifetimes, products, flags
 
 CSV files: a header line of column names (units in the names), numbers written with 17
@@ -281,9 +285,121 @@ def write_report(results: AnalysisResults | TrajectorySet, folder: str | os.Path
              np.concatenate([sc.transmission_low, sc.reflection_low]),
              np.concatenate([sc.transmission_high, sc.reflection_high])])
 
+    tr = getattr(results, "transfers", None)
+    if tr is not None:
+        _write_transfers(tr, folder, tab, fig, tu)
+
     summary = _summary(results, figs, tabs, notes, title, tu)
     spath = plots.atomic_write_text(os.path.join(folder, "summary.md"), summary)
     return Report(folder, figs, tabs, spath)
+
+
+def _coordinate_column(name: str, unit: str) -> str:
+    return f"{_slug(name)}_{'angstrom' if unit == 'Å' else _slug(unit)}"
+
+
+def _write_transfers(tr: Any, folder: str, tab, fig, tu: str) -> None:
+    """transfers.csv, transfer_times.csv/.png and, with families, transfer_geometries.png,
+    transfer_families.csv and transfer_families/family_NN.xyz (stale family files removed)."""
+    tb, fam = tr.table, tr.families
+    cols = ["trajectory", "time_au", "time_fs", "from_state", "to_state", "gap_ev", "coupling_norm_per_bohr", "family"]
+    data: list = [tb.trajectory, tb.time, tb.time_fs, tb.from_state, tb.to_state, tb.gap * HARTREE_IN_EV,
+                  tb.coupling_norm, fam.labels + np.where(fam.labels >= 0, 1, 0)]
+    for q, (name, unit) in enumerate(zip(tb.names, tb.units)):
+        cols.append(_coordinate_column(name, unit))
+        data.append(tb.values[:, q])
+    tab("transfers", cols, data)
+    t_plot = tb.time_fs if tu == "fs" else tb.time
+    edges = plots.transfer_time_edges(t_plot, tb.end_time * (AU_TIME_IN_FS if tu == "fs" else 1.0))
+    kinds = sorted({(int(a), int(b)) for a, b in zip(tb.from_state, tb.to_state)})
+    u = "fs" if tu == "fs" else "au"
+    hcols = [f"bin_low_{u}", f"bin_high_{u}"] + [f"count_{a}_to_{b}" for a, b in kinds]
+    hdata = [edges[:-1], edges[1:]] + [np.histogram(t_plot[(tb.from_state == a) & (tb.to_state == b)], edges)[0]
+                                       for a, b in kinds]
+    tab("transfer_times", hcols, hdata)
+    fig("transfer_times", plots.plot_transfer_times, tb, time_unit=tu,
+        note=f"histogram of transfer times by kind of transfer; rule: {tb.criterion}")
+    if not tb.names:
+        return
+    fig("transfer_geometries", plots.plot_transfer_geometries, tb, fam,
+        note="internal coordinates at each transfer, stacked by family of transfer geometries")
+    K = fam.sizes.size
+    fcols = ["family", "size", "representative_trajectory", "representative_time_fs"]
+    fdata: list = [np.arange(1, K + 1), fam.sizes, tb.trajectory[fam.representatives], tb.time_fs[fam.representatives]]
+    for q, (name, unit) in enumerate(zip(tb.names, tb.units)):
+        c = _coordinate_column(name, unit)
+        circ = tb.kinds[q] == "dihedral"
+        fcols += [("circmean_" if circ else "mean_") + c, ("circstd_" if circ else "std_") + c]
+        fdata += [fam.means[:, q], fam.spreads[:, q]]
+    tab("transfer_families", fcols, fdata)
+    xyz_dir = os.path.join(folder, "transfer_families")
+    if tb.positions is not None and tr.symbols is not None:
+        os.makedirs(xyz_dir, exist_ok=True)
+        for f in range(K):
+            r = int(fam.representatives[f])
+            _write_xyz(os.path.join(xyz_dir, f"family_{f + 1:02d}.xyz"), tr.symbols, tb.positions[r],
+                       f"family {f + 1} of {K}: {fam.sizes[f]} transfers; representative: trajectory "
+                       f"{tb.trajectory[r]} at t = {tb.time_fs[r]:.4f} fs, {tb.from_state[r]} -> {tb.to_state[r]}; "
+                       "positions in Angstrom")
+    if os.path.isdir(xyz_dir):
+        for name in os.listdir(xyz_dir):
+            m = re.fullmatch(r"family_(\d+)\.xyz", name)
+            if m and int(m.group(1)) > K:
+                os.remove(os.path.join(xyz_dir, name))
+
+
+def _write_xyz(path: str, symbols: Sequence[str], positions_bohr: np.ndarray, comment: str) -> str:
+    """Plain XYZ (Å) of one structure, written atomically."""
+    from mapdyn.units import BOHR_IN_ANGSTROM
+
+    pos = np.asarray(positions_bohr, dtype=float) * BOHR_IN_ANGSTROM
+    lines = [str(len(symbols)), comment.replace("\n", " ")]
+    lines += [f"{s:<2s} {x:16.10f} {y:16.10f} {z:16.10f}" for s, (x, y, z) in zip(symbols, pos)]
+    return plots.atomic_write_text(path, "\n".join(lines) + "\n")
+
+
+def _transfer_summary(tr: Any) -> list[str]:
+    tb, fam = tr.table, tr.families
+    L = ["## Transfers between states", f"Rule: {tb.criterion}.", ""]
+    if tb.count == 0:
+        L += ["No transfer counted.", ""]
+        return L
+    ntr = len(set(tb.trajectory.tolist()))
+    L.append(f"- {tb.count} transfer{'s' if tb.count != 1 else ''} in {ntr} trajector{'ies' if ntr != 1 else 'y'}; "
+             "transfer times (fs): median "
+             f"{np.median(tb.time_fs):.4g}, 10–90 % {np.quantile(tb.time_fs, 0.1):.4g}–{np.quantile(tb.time_fs, 0.9):.4g}")
+    kinds = sorted({(int(a), int(b)) for a, b in zip(tb.from_state, tb.to_state)})
+    for a, b in kinds:
+        sel = (tb.from_state == a) & (tb.to_state == b)
+        gap = tb.gap[sel] * HARTREE_IN_EV
+        g = f", gap at transfer {np.nanmedian(gap):.3g} eV (median)" if np.isfinite(gap).any() else ""
+        L.append(f"- {a} → {b}: {int(sel.sum())}, first at {np.min(tb.time_fs[sel]):.4g} fs{g}")
+    for q, (name, unit) in enumerate(zip(tb.names, tb.units)):
+        v = tb.values[:, q]
+        if not np.isfinite(v).any():
+            continue
+        if tb.kinds[q] == "dihedral":
+            L.append(f"- {name} at transfer: {_circ_pm(v, unit)}")
+        else:
+            L.append(f"- {name} at transfer: {np.nanmean(v):.4g} ± {np.nanstd(v):.2g} {unit} (mean ± std)")
+    L.append("")
+    if fam.skipped:
+        L += [f"Families of transfer geometries: not formed ({fam.skipped}).", ""]
+        return L
+    L.append(f"Families of transfer geometries ({fam.rule}); representatives in `transfer_families/`:")
+    L.append("")
+    heads = [f"{n} / {u}" for n, u in zip(tb.names, tb.units)]
+    L.append("| family | size | " + " | ".join(heads) + " | representative |")
+    L.append("|---" * (len(heads) + 3) + "|")
+    for f in range(fam.sizes.size):
+        r = int(fam.representatives[f])
+        cells = [f"{fam.means[f, q]:.4g} ± {fam.spreads[f, q]:.2g}" for q in range(len(heads))]
+        L.append(f"| {f + 1} | {fam.sizes[f]} | " + " | ".join(cells) +
+                 f" | trajectory {tb.trajectory[r]}, {tb.time_fs[r]:.4g} fs |")
+    L.append("")
+    L.append("Torsions: circular mean ± circular std (degrees); other coordinates: mean ± std.")
+    L.append("")
+    return L
 
 
 def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: str | None, tu: str) -> str:
@@ -412,6 +528,8 @@ def _summary(res: AnalysisResults, figs: dict, tabs: dict, notes: dict, title: s
             else:
                 L.append(f"- first entry into state {e.state}: no trajectory entered")
         L.append("")
+    if getattr(res, "transfers", None) is not None:
+        L.extend(_transfer_summary(res.transfers))
     br = res.branching
     if br is not None:
         L.append("## Products")

@@ -38,13 +38,15 @@ class AnalysisResults:
     spectrum: Any = None
     settings: dict = dataclasses.field(default_factory=dict)
     scattering: Any = None
+    transfers: Any = None
 
 
 def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry: Sequence[tuple] = (),
             classifier: Callable | Mapping | None = None, vibrational: Sequence[Any] = (),
             spectrum: Any = None, confidence_level: float = 0.95, n_resamples: int = 999, seed: int = 0,
             energy_tolerance: float = 1e-3, lifetime_delay: bool = True, lifetime_asymptote: bool = True,
-            lifetime_resamples: int = 100, scattering: tuple | None = None) -> AnalysisResults:
+            lifetime_resamples: int = 100, scattering: tuple | None = None, min_dwell: float | None = None,
+            transfer_family_distance: float | None = None, transfer_families: int | None = None) -> AnalysisResults:
     """Run every estimator on ``tset``.
 
     observables : specs for :class:`GeometricObservable`; first_entry : (state, observable-spec or
@@ -54,6 +56,10 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
     lifetime_resamples : trajectory-bootstrap refits for the lifetime uncertainties (0 = covariance);
     scattering : ((a, b) interaction region in Bohr, transmitted side 1 = +x / 0 = −x) for 1D
     scattering studies: transmission/reflection per channel are reported instead of a lifetime.
+    min_dwell : a.u. of time a new state must be held before a transfer counts (default
+    :data:`mapdyn.analysis.transfers.DEFAULT_MIN_DWELL_FS` fs); transfer_family_distance (dimensionless)
+    or transfer_families (a count) cut the clustering of transfer geometries in the ``observables``
+    (:func:`mapdyn.analysis.transfers.analyze_transfers`; SQC, Ehrenfest and spin mapping only).
     """
     kw = dict(confidence_level=confidence_level, n_resamples=n_resamples, seed=seed)
     pops = populations(tset, **kw)
@@ -84,7 +90,18 @@ def analyze(tset: TrajectorySet, *, observables: Sequence[Any] = (), first_entry
 
         region, side = scattering
         scat = scattering_channels(tset, region, side, confidence_level)
+    transfers = None
+    if tset.options.method in ("sqc", "ehrenfest", "spin"):
+        from mapdyn.analysis.transfers import DEFAULT_FAMILY_DISTANCE, DEFAULT_MIN_DWELL_FS, analyze_transfers
+        from mapdyn.units import AU_TIME_IN_FS
+
+        dwell = DEFAULT_MIN_DWELL_FS / AU_TIME_IN_FS if min_dwell is None else float(min_dwell)
+        transfers = analyze_transfers(tset, min_dwell=dwell, observables=observables,
+                                      family_distance=(DEFAULT_FAMILY_DISTANCE if transfer_family_distance is None
+                                                       else float(transfer_family_distance)),
+                                      families=transfer_families)
+        settings["min_dwell_au"] = dwell
     return AnalysisResults(tset, pops, init, life, obs, entries, branching, energy, flags, vib, spectrum, settings,
-                           scat)
+                           scat, transfers)
 
 

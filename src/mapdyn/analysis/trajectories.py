@@ -40,6 +40,9 @@ class TrajectorySet:
     metadata : free-form description of the inputs (study name, method, dt, seed, …).
     warnings : warning records raised while the trajectories ran (dicts with index, category,
         message, first_step, last_step, count; see :mod:`mapdyn.study.diagnostics`).
+    state_energies : (n, T, F) adiabatic potential energies, Eh, or None (NaN where no frame).
+    coupling_norms : (n, T, F, F) |d_kl| of the nonadiabatic coupling vectors, 1/Bohr, or None
+        (NaN where not recorded, e.g. overlap-only backends).
     """
 
     times: np.ndarray
@@ -58,6 +61,8 @@ class TrajectorySet:
     indices: np.ndarray | None = None
     metadata: dict = dataclasses.field(default_factory=dict)
     warnings: list = dataclasses.field(default_factory=list)
+    state_energies: np.ndarray | None = None
+    coupling_norms: np.ndarray | None = None
 
     def __post_init__(self):
         self.times = np.asarray(self.times, dtype=float)
@@ -81,6 +86,13 @@ class TrajectorySet:
             if arr.shape[:2] != (n, T) or (trailing == () and arr.ndim != 2):
                 raise ValueError(f"{name} must have leading shape (n={n}, T={T}), got {arr.shape}")
             setattr(self, name, arr)
+        for name, shape in (("state_energies", (n, T, F)), ("coupling_norms", (n, T, F, F))):
+            arr = getattr(self, name)
+            if arr is not None:
+                arr = np.asarray(arr, dtype=float)
+                if arr.shape != shape:
+                    raise ValueError(f"{name} must have shape {shape}, got {arr.shape}")
+                setattr(self, name, arr)
         for name in ("positions", "momenta"):
             arr = getattr(self, name)
             if arr is not None and (arr.ndim != 4 or arr.shape[3] != 3):
@@ -145,6 +157,25 @@ class TrajectorySet:
         from mapdyn.backends.contract import ended_channel
 
         return tuple(ended_channel(r) or s for s, r in zip(self.status, self.reasons))
+
+    def select(self, rows: Sequence[int] | np.ndarray) -> "TrajectorySet":
+        """The trajectories at positions ``rows`` (not study indices) as a new set; warnings kept
+        only for those trajectories."""
+        rows = np.asarray(rows, dtype=int).reshape(-1)
+        keep = {int(i) for i in np.asarray(self.indices)[rows]}
+
+        def take(arr):
+            return None if arr is None else arr[rows]
+
+        status = self.status or ()
+        reasons = self.reasons or ()
+        return dataclasses.replace(
+            self, actions=self.actions[rows], initial_states=self.initial_states[rows], energies=take(self.energies),
+            positions=take(self.positions), momenta=take(self.momenta), coordinates=take(self.coordinates),
+            coordinate_momenta=take(self.coordinate_momenta), status=tuple(status[r] for r in rows),
+            reasons=tuple(reasons[r] for r in rows), indices=np.asarray(self.indices)[rows],
+            metadata=dict(self.metadata), warnings=[w for w in self.warnings if int(w.get("index", -1)) in keep],
+            state_energies=take(self.state_energies), coupling_norms=take(self.coupling_norms))
 
 
 def from_diabatic_run(run: Any, initial_states: Sequence[int] | int | None = None,

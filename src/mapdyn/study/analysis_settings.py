@@ -13,7 +13,8 @@ from mapdyn.analysis.products import distance_rule_classifier
 # settings from a study input table
 # ----------------------------------------------------------------------------------------------
 ANALYSIS_KEYS = ("observables", "first_entry", "products", "fragments", "confidence_level", "n_resamples",
-                  "seed", "energy_tolerance_hartree", "lifetime_delay", "lifetime_asymptote", "lifetime_resamples")
+                  "seed", "energy_tolerance_hartree", "lifetime_delay", "lifetime_asymptote", "lifetime_resamples",
+                  "min_dwell", "transfer_family_distance", "transfer_families")
 _FRAGMENT_KEYS = ("atoms", "name", "bin_half_width", "include_unfinished", "potential", "product")
 _POTENTIAL_KEYS = ("curve", "morse", "scan")
 
@@ -97,6 +98,9 @@ def settings_from_table(table: Mapping[str, Any] | None, *, folder: str | None =
         fragments = [{atoms = [0, 1], potential.morse = {D = 0.17, a = 1.0, r_e = 1.4}}]
         confidence_level = 0.95, n_resamples = 999, seed = 0, energy_tolerance_hartree = 1e-3,
         lifetime_delay = true, lifetime_asymptote = true, lifetime_resamples = 100
+        min_dwell = "2 fs"                 # a new state counts as a transfer only when held this long
+        transfer_family_distance = 1.0     # cut of the transfer-geometry clustering (dimensionless), or
+        transfer_families = 3              # a number of families instead
     """
     table = dict(table or {})
     for k in table:
@@ -123,6 +127,38 @@ def settings_from_table(table: Mapping[str, Any] | None, *, folder: str | None =
             kw[key] = conv(table[key])
     if "energy_tolerance_hartree" in table:
         kw["energy_tolerance"] = float(table["energy_tolerance_hartree"])
+    kw.update(_transfer_settings(table))
+    return kw
+
+
+def _transfer_settings(table: Mapping[str, Any]) -> dict:
+    """min_dwell (a time with a unit, >= 0) → a.u.; transfer_family_distance (> 0) or
+    transfer_families (integer >= 1), not both.  One-line ConfigError naming the key."""
+    import math
+
+    from mapdyn.study.input_values import ConfigError, parse_quantity, show_value
+
+    kw: dict = {}
+    if "min_dwell" in table:
+        au = parse_quantity(table["min_dwell"], "analysis.min_dwell", "time")
+        if not (math.isfinite(au) and au >= 0):
+            raise ConfigError("analysis.min_dwell", f"= {show_value(table['min_dwell'])}: must be a duration >= 0, "
+                              'e.g. "2 fs"')
+        kw["min_dwell"] = au
+    if "transfer_family_distance" in table and "transfer_families" in table:
+        raise ConfigError("analysis.transfer_families", "and analysis.transfer_family_distance are alternatives; "
+                          "give one of them")
+    if "transfer_family_distance" in table:
+        v = table["transfer_family_distance"]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not (math.isfinite(v) and v > 0):
+            raise ConfigError("analysis.transfer_family_distance", f"= {show_value(v)}: must be a number > 0 "
+                              "(dimensionless; 1 ≈ a torsion difference of 60°)")
+        kw["transfer_family_distance"] = float(v)
+    if "transfer_families" in table:
+        v = table["transfer_families"]
+        if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+            raise ConfigError("analysis.transfer_families", f"= {show_value(v)}: must be a number of families >= 1")
+        kw["transfer_families"] = int(v)
     return kw
 
 

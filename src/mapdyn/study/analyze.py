@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -117,11 +117,14 @@ def analyze_study(folder: Any, **overrides) -> AnalysisResults:
 # ----------------------------------------------------------------------------------------------
 # results
 # ----------------------------------------------------------------------------------------------
-def load_trajectory_set(study: Study):
+def load_trajectory_set(study: Study, only: Sequence[int] | None = None):
     """All recorded results of a (finished or partial) study as a :class:`mapdyn.analysis.TrajectorySet`.
 
     Time grid: every ``record_every`` steps up to the study's end; trajectories without a frame
-    at a time carry NaN there.  Pending trajectories with no frames are left out.
+    at a time carry NaN there.  Pending trajectories with no frames are left out.  ``only``: study
+    indices to read (default all).  Adiabatic state energies (Eh) come from the frames (on the fly)
+    or from the model at the recorded coordinates (batched model studies); coupling norms
+    (1/Bohr) from the frames when the backend gave coupling vectors.
     """
     from mapdyn.analysis import TrajectorySet
 
@@ -167,12 +170,19 @@ def load_trajectory_set(study: Study):
             raise StudyError(f"{study.folder}: no results yet")
         model = make_model(cfg)
         init_state = cfg.initial.state
-        return TrajectorySet(times=times, actions=np.concatenate(acts), options=cfg.options,
+        R_all = np.concatenate(Rs)
+        rows = np.arange(len(idx)) if only is None else np.nonzero(np.isin(idx, list(only)))[0]
+        if rows.size == 0:
+            raise StudyError(f"{study.folder}: no recorded frames of trajectory {', '.join(map(str, only or []))}")
+        tset = TrajectorySet(times=times, actions=np.concatenate(acts), options=cfg.options,
                              initial_states=np.full(len(idx), init_state), energies=np.concatenate(ens),
-                             coordinates=np.concatenate(Rs), coordinate_momenta=np.concatenate(Ps),
+                             coordinates=R_all, coordinate_momenta=np.concatenate(Ps),
                              masses=np.asarray(model.masses), status=tuple(stat), indices=np.array(idx),
                              metadata={**meta, "initial_basis": cfg.initial.basis, "population_basis": basis},
                              warnings=study_warnings(study))
+        tset = tset.select(rows) if only is not None else tset
+        tset.state_energies = _model_state_energies(model, tset.coordinates)
+        return tset
     rows_a, rows_e, rows_R, rows_P, idx, stat, reasons, init_states = [], [], [], [], [], [], [], []
     symbols = None
     masses = None
@@ -186,7 +196,9 @@ def load_trajectory_set(study: Study):
         meta["initial conditions"] = sampling_description(cfg, ic_meta, arrays["frequencies_cm"])
         masses = np.asarray(decode_object(arrays, "modes").masses_me)
         symbols = cfg.molecule.symbols
-    for i in range(study.ntraj):
+    rows_V: list = []
+    rows_C: list = []
+    for i in range(study.ntraj) if only is None else sorted(int(k) for k in only if 0 <= int(k) < study.ntraj):
         store = TrajectoryStore(study.trajectory_folder(i))
         point_chunks = store.restart_point().chunks
         if point_chunks == 0:
@@ -209,13 +221,21 @@ def load_trajectory_set(study: Study):
         rows_e.append(e)
         rows_R.append(R)
         rows_P.append(P)
+        V = np.full((T, F), np.nan)
+        V[pos[ok]] = fr["energies_Eh"][ok]
+        rows_V.append(V)
+        C = np.full((T, F, F), np.nan)
+        if "coupling_norms" in fr:
+            C[pos[ok]] = fr["coupling_norms"][ok]
+        rows_C.append(C)
         idx.append(i)
         entry = status_map[i]
         stat.append(entry.status if entry.status in ("finished", "failed") else "running")  # damaged: partial
         reasons.append(entry.reason)
         init_states.append(int(initial_states[i]) if initial_states is not None else int(cfg.initial.state))
     if not rows_a:
-        raise StudyError(f"{study.folder}: no recorded frames yet")
+        raise StudyError(f"{study.folder}: no recorded frames yet" if only is None else
+                         f"{study.folder}: no recorded frames of trajectory {', '.join(map(str, only))}")
     kw: dict = {}
     if cfg.is_model:
         model = make_model(cfg)
@@ -227,7 +247,22 @@ def load_trajectory_set(study: Study):
         kw = dict(positions=np.array(rows_R), momenta=np.array(rows_P), symbols=symbols, masses=masses)
     return TrajectorySet(times=times, actions=np.array(rows_a), options=cfg.options,
                          initial_states=np.array(init_states), energies=np.array(rows_e), status=tuple(stat),
-                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta, warnings=study_warnings(study), **kw)
+                         reasons=tuple(reasons), indices=np.array(idx), metadata=meta,
+                         warnings=[w for w in study_warnings(study) if only is None or int(w.get("index", -1)) in idx],
+                         state_energies=np.array(rows_V),
+                         coupling_norms=np.array(rows_C) if np.isfinite(rows_C).any() else None, **kw)
+
+
+def _model_state_energies(model: Any, coordinates: np.ndarray) -> np.ndarray:
+    """Adiabatic energies (n, T, F) in Eh of a model at recorded coordinates (n, T, D) Bohr (NaN
+    where a frame is missing)."""
+    n, T, D = coordinates.shape
+    flat = coordinates.reshape(n * T, D)
+    ok = np.all(np.isfinite(flat), axis=1)
+    out = np.full((n * T, model.nstates), np.nan)
+    if ok.any():
+        out[ok] = model.adiabatic(flat[ok])[0]
+    return out.reshape(n, T, model.nstates)
 
 
 def write_study_report(study: Study, log: Callable[[str], None] = lambda s: None) -> str | None:

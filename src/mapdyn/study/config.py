@@ -564,6 +564,8 @@ def _parse_analysis(table: Any) -> dict:
                               f"allowed: {', '.join(ANALYSIS_KEYS)}")
     try:
         settings_from_table({k: v for k, v in table.items() if k != "fragments"})
+    except ConfigError:
+        raise
     except (ValueError, TypeError, KeyError) as err:
         raise ConfigError("analysis", str(err).splitlines()[0] if str(err) else type(err).__name__) from None
     return dict(table)
