@@ -73,8 +73,8 @@ def show_ensemble(folder: Any, output: str | None = None) -> tuple[list[str], li
     flagged = [int(i) for i, f in zip(ov["trajectory"], ov["flagged"]) if f]
     counts = tset.status_counts()
     lines = [f"{tset.ntraj} trajectories with frames (" + ", ".join(f"{k} {v}" for k, v in counts.items() if v) + ")",
-             f"transfers per trajectory (min_dwell {dwell * AU_TIME_IN_FS:.3g} fs): "
-             + ", ".join(f"{int(k)}: {int(c)}" for k, c in zip(*np.unique(ov["transfers"], return_counts=True))),
+             f"trajectories by number of transfers (min_dwell {dwell * AU_TIME_IN_FS:.3g} fs): "
+             + ", ".join(f"{int(c)} with {int(k)}" for k, c in zip(*np.unique(ov["transfers"], return_counts=True))),
              "flagged: " + (", ".join(map(str, flagged)) if flagged else "none")
              + "; inspect one with: mapdyn show " + study.folder + " --trajectory N"]
     if tset.ntraj > PANELS_PER_SHEET * MAX_SHEETS:
