@@ -111,8 +111,12 @@ def _log(tmp_path: Path, text: str) -> None:
 # ------------------------------------------------------------------------------------------------
 
 #: on-the-fly Tully-1 model study (scenario of our own): one task per trajectory, checkpoint every 20 steps.
-OTF = tully1_study(name=None, trajectories=4, seed=7, time_step="4 au", duration="3000 au", record_every=10,
-                   checkpoint_every=20, workers=2, batch=None, engine="on_the_fly", analysis=False)
+# 10 000 steps per trajectory (about 14 s each here): after a job is cancelled the remaining worker
+# must still be busy when Dask drops the lost worker (lost-worker-timeout 15 s) and a replacement
+# job is submitted; with 750 steps an idle machine finished the ensemble first (measured: 3.9 s).
+OTF_STEPS = 10_000
+OTF = tully1_study(name=None, trajectories=4, seed=7, time_step="4 au", duration=f"{4 * OTF_STEPS} au", record_every=50,
+                   checkpoint_every=500, workers=2, batch=None, engine="on_the_fly", analysis=False)
 
 
 def _wait(what: str, cond, proc: subprocess.Popen, timeout: float = 180):
@@ -166,7 +170,7 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
                     meta = TrajectoryStore(str(tf)).read_meta()
                 except (OSError, ValueError):
                     continue
-                if job in jobs and meta and 0 < meta["step"] < 750:
+                if job in jobs and meta and 0 < meta["step"] < OTF_STEPS:
                     return i, job, int(meta["step"])
             return None
 
@@ -180,7 +184,7 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
         assert any(line.split()[:2] == ["job", job] and "trajectories" in line and str(victim) in line.split("trajectories")[1]
                    for line in status.splitlines()), status
         subprocess.run(["scancel", job], env=env, check=True, timeout=30)
-        _log(tmp_path, f"scancel {job} (trajectory {victim} at step {step_at_cancel}/750) "
+        _log(tmp_path, f"scancel {job} (trajectory {victim} at step {step_at_cancel}/{OTF_STEPS}) "
                        f"{time.time() - t0:.1f} s into the run")
 
         def replaced():
@@ -201,7 +205,7 @@ def test_model_study_with_cancelled_job_matches_local_processes(slurm, tmp_path)
     assert len(final["batch_jobs"]["jobs"]) == 3                       # two first jobs and the replacement
     left = dict(slurm.squeue())
     assert not any(j["job"] in left for j in final["batch_jobs"]["jobs"]), left  # jobs end with the run
-    _log(tmp_path, f"model study (4 x 750 steps): local processes {t_local:.1f} s, SLURM {t_slurm:.1f} s; "
+    _log(tmp_path, f"model study (4 x {OTF_STEPS} steps): local processes {t_local:.1f} s, SLURM {t_slurm:.1f} s; "
                    f"bitwise equal; jobs {[j['job'] for j in final['batch_jobs']['jobs']]}")
 
 
