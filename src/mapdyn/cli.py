@@ -303,20 +303,14 @@ def _append_missing(report_folder: str, missing: list) -> None:
 
 
 def _cmd_run(args) -> int:
-    import os
-
     from mapdyn.study.config import load_study_config
-    from mapdyn.study.feasibility import validate_study
     from mapdyn.study.folder import Study
     from mapdyn.study.integrity import StudyLock
 
     cfg = load_study_config(args.study)
     if args.workers is not None and args.workers < 1:
         return _error(f"--workers = {args.workers}: must be >= 1")
-    validate_study(cfg, force=args.force)
-    folder = os.path.abspath(args.output or cfg.folder)
-    _check_writable(folder)
-    os.makedirs(folder, exist_ok=True)
+    folder = _study_folder(cfg, args)
     with StudyLock(folder, "mapdyn run"):
         study = Study.create(cfg, folder)
         _clean(study)
@@ -325,7 +319,6 @@ def _cmd_run(args) -> int:
 
 def _cmd_prepare(args) -> int:
     from mapdyn.study.config import load_study_config
-    from mapdyn.study.feasibility import validate_study
     from mapdyn.study.folder import Study, StudyError
     from mapdyn.study.integrity import StudyLock
     from mapdyn.study.prepare import prepare_study
@@ -334,10 +327,7 @@ def _cmd_prepare(args) -> int:
     if cfg.is_model:
         raise StudyError("prepare applies to molecular studies; a model study samples its initial conditions inside "
                          "each task (nothing to prepare): use 'mapdyn run'")
-    validate_study(cfg, force=args.force)
-    folder = os.path.abspath(args.output or cfg.folder)
-    _check_writable(folder)
-    os.makedirs(folder, exist_ok=True)
+    folder = _study_folder(cfg, args)
     with StudyLock(folder, "mapdyn prepare"):
         study = Study.create(cfg, folder)
         _clean(study)
@@ -346,6 +336,18 @@ def _cmd_prepare(args) -> int:
         prep = prepare_study(study, log=_log)
     print("\n".join(prep.lines))
     return 0
+
+
+def _study_folder(cfg, args) -> str:
+    """The study's folder (``--output`` or the input's), created after the input passed the size
+    limits and the folder was found writable."""
+    from mapdyn.study.feasibility import validate_study
+
+    validate_study(cfg, force=args.force)
+    folder = os.path.abspath(args.output or cfg.folder)
+    _check_writable(folder)
+    os.makedirs(folder, exist_ok=True)
+    return folder
 
 
 def _check_writable(folder: str) -> None:
