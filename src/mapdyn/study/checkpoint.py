@@ -411,12 +411,14 @@ class TrajectoryStore:
             parts.append(p)
         return [p for p in parts if p], counts
 
-    def consolidate(self) -> bool:
+    def consolidate(self, point: RestartPoint | None = None) -> bool:
         """Merge the frame chunks of a finished trajectory into ``frames.h5`` (module docstring, crash-safe
         order), then delete the chunks.  Idempotent: also completes an interrupted consolidation and
-        removes its leftovers.  Returns True when the folder ends consolidated."""
+        removes its leftovers.  ``point``: the folder's restart point if already found (saves a
+        verification).  Returns True when the folder ends consolidated; merged chunks' digests stay
+        in ``chunk_sha256`` but are no longer checked."""
         for _ in range(3):  # at most two rounds (frames.h5 → frames_merged.h5 → frames.h5) plus the check
-            point = self.restart_point()
+            point = point if point is not None else self.restart_point()
             if point.state is None:
                 return False
             meta = point.meta
@@ -445,6 +447,7 @@ class TrajectoryStore:
             new_meta.update({"consolidated_chunks": n, "frames_file": target, "frames_sha256": file_digest(tpath)})
             self._write_final_state(point.source or self.state_path, new_meta)
             self.remove_leftovers()
+            point = None
         return False
 
     def _write_final_state(self, source: str, meta: dict) -> None:

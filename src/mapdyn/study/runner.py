@@ -231,7 +231,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         meta = point.meta
         if point.state is not None and (point.state.stopped or point.state.step >= target):
             failed = point.state.stopped and not point.state.end_event
-            store.consolidate()  # completes a consolidation a kill interrupted (no-op when done)
+            store.consolidate(point)  # completes a consolidation a kill interrupted (no-op when done)
             return TaskResult("trajectory", index, "failed" if failed else "skipped",
                               reason=point.state.stop_reason or "")
         write_marker(marker)
