@@ -129,6 +129,12 @@ def test_kill_and_resume_batched_model_is_bitwise(tmp_path):
     assert_equal_dicts(chunk_arrays(folder), chunk_arrays(ref))
 
 
+def consolidated(folder) -> bool:
+    """True once a finished trajectory's chunks are merged into frames.h5 and deleted."""
+    names = os.listdir(folder)
+    return "frames.h5" in names and not any(n.startswith("frames_") for n in names)
+
+
 def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
     toml = write(tmp_path, "o.toml", model_toml(trajectories=3, duration="600 au", engine="on_the_fly",
                                                 checkpoint_every=20, workers=1, record_every=1))
@@ -140,7 +146,7 @@ def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
 
     def progressed():
         m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()
-        return m0 is not None and m0["step"] == 300 and m1 is not None and m1["step"] >= 40
+        return m0 is not None and m0["step"] == 300 and consolidated(t0) and m1 is not None and m1["step"] >= 40
 
     proc = subprocess.Popen([sys.executable, "-m", "mapdyn", "run", toml, "--output", str(folder), "--no-analysis"],
                             cwd=tmp_path, env=ENV, start_new_session=True, stdout=subprocess.DEVNULL,
@@ -149,15 +155,18 @@ def test_kill_and_resume_on_the_fly_is_bitwise(tmp_path):
     m1 = TrajectoryStore(t1).read_meta()
     done_steps = 300 + m1["step"]
     finished_files = [str(t0 / f) for f in os.listdir(t0)]
-    partial_chunks = [str(TrajectoryStore(t1).chunk_path(c)) for c in range(m1["chunks"])]
-    ids = file_ids(finished_files + partial_chunks)
+    partial = TrajectoryStore(t1).read_frames(m1["chunks"])
+    ids = file_ids(finished_files)
     st = {e.index: e.status for e in Study(folder).status().entries}
     assert st == {0: "finished", 1: "pending", 2: "pending"}
     res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
     steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
     assert steps == 3 * 300 - done_steps  # nothing already checkpointed was recomputed
     print(f"on the fly: killed at traj0 300/300, traj1 {m1['step']}/300, traj2 0/300; resume computed {steps} steps")
-    assert file_ids(finished_files + partial_chunks) == ids
+    assert file_ids(finished_files) == ids  # the finished trajectory's files untouched
+    # trajectory 1's chunks were merged into frames.h5 when it finished: its checkpointed frames are a prefix
+    resumed = TrajectoryStore(t1).read_frames()
+    assert all(np.array_equal(resumed[k][:len(partial["step"])], partial[k], equal_nan=True) for k in partial)
     assert_equal_dicts(traj_frames(folder), traj_frames(ref))
     for i in range(3):
         a = TrajectoryStore(Study(folder).trajectory_folder(i)).restart_point().state
@@ -198,6 +207,10 @@ def test_extend_trajectories_and_duration(tmp_path):
     c, d = str(tmp_path / "c"), str(tmp_path / "d")
     assert main(["run", s2, "--output", c, "--no-analysis", "--quiet", "--workers", "1"]) == 0
     assert main(["extend", c, "--duration", "400 au", "--no-analysis", "--quiet", "--workers", "1"]) == 0
+    for i in range(2):  # consolidated again when the extension finished: no chunk left
+        names = set(os.listdir(Study(c).trajectory_folder(i)))
+        assert {"frames.h5", "state.h5", "state_previous.h5"} <= names <= {"frames.h5", "state.h5", "state_previous.h5",
+                                                                            "warnings.json"}, names
     assert main(["run", l2, "--output", d, "--no-analysis", "--quiet", "--workers", "1"]) == 0
     assert_equal_dicts(traj_frames(c), traj_frames(d))
     # refusals: fewer trajectories, an earlier end time
@@ -299,20 +312,23 @@ def test_kill_and_resume_molecular_is_bitwise(tmp_path):
 
     def progressed():
         m0, m1 = TrajectoryStore(t0).read_meta(), TrajectoryStore(t1).read_meta()
-        return m0 is not None and m0["step"] == 16 and m1 is not None and m1["step"] >= 4
+        return m0 is not None and m0["step"] == 16 and consolidated(t0) and m1 is not None and m1["step"] >= 4
 
     proc = subprocess.Popen([sys.executable, "-m", "mapdyn", "run", toml, "--output", str(folder), "--no-analysis"],
                             cwd=tmp_path, env=ENV, start_new_session=True, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     assert _kill_when(proc, progressed), "the run ended before it could be killed"
     m1 = TrajectoryStore(t1).read_meta()
-    kept = [str(t0 / f) for f in os.listdir(t0)] + [TrajectoryStore(t1).chunk_path(c) for c in range(m1["chunks"])]
+    kept = [str(t0 / f) for f in os.listdir(t0)]
+    partial = TrajectoryStore(t1).read_frames(m1["chunks"])
     ids = file_ids(kept)
     res = mapdyn("resume", str(folder), "--no-analysis", cwd=tmp_path)
     steps = int(res.stderr.split("(")[-1].split(" steps computed")[0])
     assert steps == 16 - m1["step"]
     print(f"SA-CASSCF: killed at traj0 16/16, traj1 {m1['step']}/16; resume computed {steps} steps")
-    assert file_ids(kept) == ids
+    assert file_ids(kept) == ids  # the finished trajectory's files untouched
+    resumed = TrajectoryStore(t1).read_frames()  # trajectory 1's chunks now merged: its checkpointed frames a prefix
+    assert all(np.array_equal(resumed[k][:len(partial["step"])], partial[k], equal_nan=True) for k in partial)
     assert_equal_dicts(traj_frames(str(folder)), traj_frames(ref))
 
 

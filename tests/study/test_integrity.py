@@ -29,7 +29,8 @@ QUIET = ["--quiet", "--workers", "1"]
 
 @pytest.fixture(scope="module")
 def refs(tmp_path_factory):
-    """Undamaged finished studies: on-the-fly (3 trajectories, 6 frame chunks each) and batched
+    """Undamaged finished studies: on-the-fly (3 trajectories, 7 frame chunks each, consolidated into
+    frames.h5 when each finished) and batched
     (40 trajectories in 4 chunks)."""
     base = tmp_path_factory.mktemp("refs")
     otf = write(base, "o.toml", tully1_study(trajectories=3, engine="on_the_fly", duration="120 au",
@@ -107,21 +108,23 @@ def one_line_error(capsys, code, expected_code=2):
 # ----------------------------------------------------------------------------------------------
 # damaged trajectory files: detected by status, repaired bitwise by resume
 # ----------------------------------------------------------------------------------------------
-@pytest.mark.parametrize("fault", ["flip_middle_chunk", "delete_middle_chunk", "truncate_last_chunk",
+@pytest.mark.parametrize("fault", ["flip_frames", "delete_frames", "truncate_frames",
                                    "flip_state", "flip_both_states", "delete_states", "delete_folder",
-                                   "zero_length_chunk"])
+                                   "zero_length_frames"])
 def test_damaged_trajectory_is_reported_and_repaired_bitwise(refs, tmp_path, capsys, fault):
-    """Fault: one file of finished trajectory 1 flipped, deleted, truncated or emptied."""
+    """Fault: one file of finished trajectory 1 (its consolidated frames.h5 or a state) flipped,
+    deleted, truncated or emptied."""
     folder = copy(refs, "otf", tmp_path)
     t1 = folder / "trajectories" / "000001"
-    {"flip_middle_chunk": lambda: flip(t1 / "frames_0002.h5", "actions"),
-     "delete_middle_chunk": lambda: os.unlink(t1 / "frames_0002.h5"),
-     "truncate_last_chunk": lambda: os.truncate(t1 / "frames_0005.h5", os.path.getsize(t1 / "frames_0005.h5") // 2),
+    assert sorted(os.listdir(t1)) == ["frames.h5", "state.h5", "state_previous.h5"]  # no warnings caught: no warnings.json
+    {"flip_frames": lambda: flip(t1 / "frames.h5", "actions"),
+     "delete_frames": lambda: os.unlink(t1 / "frames.h5"),
+     "truncate_frames": lambda: os.truncate(t1 / "frames.h5", os.path.getsize(t1 / "frames.h5") // 2),
      "flip_state": lambda: alter_dataset(t1 / "state.h5"),
      "flip_both_states": lambda: (alter_dataset(t1 / "state.h5"), alter_dataset(t1 / "state_previous.h5", "p")),
      "delete_states": lambda: (os.unlink(t1 / "state.h5"), os.unlink(t1 / "state_previous.h5")),
      "delete_folder": lambda: shutil.rmtree(t1),
-     "zero_length_chunk": lambda: os.truncate(t1 / "frames_0001.h5", 0)}[fault]()
+     "zero_length_frames": lambda: os.truncate(t1 / "frames.h5", 0)}[fault]()
     st = status_of(folder)
     assert st[0][0] == st[2][0] == "finished"
     if fault in ("delete_states", "delete_folder"):
@@ -135,7 +138,9 @@ def test_damaged_trajectory_is_reported_and_repaired_bitwise(refs, tmp_path, cap
     assert main(["analyze", str(folder)]) == 3
     summary = (folder / "report" / "summary.md").read_text()
     assert "Missing or damaged data" in summary and "trajectory 1:" in summary
-    full = fault == "flip_middle_chunk"  # the report round trip once; the repair in every case
+    if "frames" in fault:  # named like a damaged chunk
+        assert any("frames.h5" in p for p in st[1][1]), st[1]
+    full = fault == "flip_frames"  # the report round trip once; the repair in every case
     if full:
         assert main(["analyze", str(folder), "--allow-incomplete"]) == 0
     assert main(["resume", str(folder), *QUIET, *([] if full else ["--no-analysis"])]) == 0
@@ -146,13 +151,15 @@ def test_damaged_trajectory_is_reported_and_repaired_bitwise(refs, tmp_path, cap
 
 
 def test_damaged_unfinished_state_falls_back(refs, tmp_path):
-    """Fault: state.h5 of trajectory 0 damaged; the previous generation is intact and used."""
+    """Fault: state.h5 of finished trajectory 0 damaged; state_previous.h5 (after consolidation a
+    second copy of the final state) is intact and used, and resume rewrites state.h5 from it."""
     folder = copy(refs, "otf", tmp_path)
     t0 = folder / "trajectories" / "000000"
     alter_dataset(t0 / "state.h5")
     meta, problems = TrajectoryStore(t0).verified_meta()
-    assert meta["step"] < 60 and problems and "checksum" in problems[0]
+    assert meta["step"] == 60 and problems and "checksum" in problems[0]
     assert main(["resume", str(folder), *QUIET, "--no-analysis"]) == 0
+    assert TrajectoryStore(t0).verified_meta() == (meta, [])
     assert_bitwise(otf_results(folder), otf_results(refs["otf"]))
 
 

@@ -129,6 +129,6 @@ def test_checkpoint_datasets_carry_units(gap_study):
 
     folder, _ = gap_study
     store = TrajectoryStore(Study(str(folder)).trajectory_folder(0))
-    with h5py.File(store.chunk_path(0)) as h5:
+    with h5py.File(f"{store.folder}/frames.h5") as h5:  # a finished trajectory: consolidated
         assert h5["positions_bohr"].attrs["units"] == "bohr" and h5["energies_Eh"].attrs["units"] == "Eh"
         assert h5["time_au"].attrs["units"].startswith("a.u. of time")

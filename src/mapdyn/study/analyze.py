@@ -200,10 +200,10 @@ def load_trajectory_set(study: Study, only: Sequence[int] | None = None):
     rows_C: list = []
     for i in range(study.ntraj) if only is None else sorted(int(k) for k in only if 0 <= int(k) < study.ntraj):
         store = TrajectoryStore(study.trajectory_folder(i))
-        point_chunks = store.restart_point().chunks
-        if point_chunks == 0:
+        point = store.restart_point()
+        if point.chunks == 0:
             continue
-        fr = store.read_frames(point_chunks)
+        fr = store.read_frames(point.chunks, point.meta)
         if not fr:
             continue
         pos = np.searchsorted(grid_steps, fr["step"])

@@ -24,6 +24,16 @@ Trajectory folder (``trajectories/000042/``)
   the state that covers it; a chunk with an index ≥ the state's ``chunks`` (written just before a
   crash) is ignored on resume and replaced when the trajectory continues.  So I/O per checkpoint
   is one small state plus K frames, linear in trajectory length.
+* ``frames.h5`` — when the trajectory has finished (:meth:`TrajectoryStore.consolidate`), all its
+  chunks concatenated into one file (meta ``chunk_nframes``: frames per original chunk).  The state
+  meta then says ``consolidated_chunks`` = n (chunks 0 … n−1 live in ``frames_file``), with the file's
+  digest in ``frames_sha256``; chunks ≥ n (after ``extend``) stay separate files until the trajectory
+  finishes again.  Order: write the new consolidated file, rewrite ``state.h5`` and then
+  ``state_previous.h5`` (both become the same final state naming it), only then delete the chunks.
+  A kill at any point leaves states that each name intact files; files no readable state names are
+  leftovers, removed on the next open.  When ``frames.h5`` itself is being replaced (consolidating
+  again after ``extend``) the new file is first written as ``frames_merged.h5`` and copied back in a
+  second round, so the name a state records is never overwritten.
 
 Resume rule (:meth:`TrajectoryStore.restart_point`): use the newest state file that reads back
 intact and whose covered chunks all read back intact with the digests it recorded; otherwise the
@@ -48,11 +58,19 @@ from mapdyn.study.objects import ObjectFormatError, decode_object, encode_object
 
 __all__ = ["CheckpointError", "write_h5", "read_h5", "file_digest",
            "frames_to_arrays", "TrajectoryStore", "RestartPoint", "STATE_FILE", "PREVIOUS_STATE_FILE",
-           "FORMAT_VERSION"]
+           "FORMAT_VERSION", "FRAMES_FILE", "consolidation_meta"]
 
 FORMAT_VERSION = 1
 STATE_FILE = "state.h5"
 PREVIOUS_STATE_FILE = "state_previous.h5"
+FRAMES_FILE = "frames.h5"
+MERGE_FILE = "frames_merged.h5"  # intermediate name while frames.h5 itself is replaced
+_CONSOLIDATION_KEYS = ("consolidated_chunks", "frames_file", "frames_sha256")
+
+
+def consolidation_meta(meta: Mapping[str, Any]) -> dict:
+    """The consolidation entries of a state meta (empty for a chunks-only folder), to carry into the next state."""
+    return {k: meta[k] for k in _CONSOLIDATION_KEYS if k in meta}
 
 
 class CheckpointError(RuntimeError):
@@ -300,11 +318,27 @@ class TrajectoryStore:
                 problems.append(f"{os.path.basename(err.path)}: {err.reason}")
         return None, problems
 
+    def frames_file_path(self, meta: Mapping[str, Any]) -> str | None:
+        """Path of the consolidated frames file ``meta`` names, or None (chunks only)."""
+        if not int(meta.get("consolidated_chunks", 0)):
+            return None
+        return os.path.join(self.folder, os.path.basename(str(meta.get("frames_file", FRAMES_FILE))))
+
     def _check_chunks(self, meta: dict, path: str, digests: bool = True, read: bool = True) -> None:
         n = int(meta.get("chunks", 0))
         check = digests
         digests = meta.get("chunk_sha256", [])
-        for c in range(n):
+        m = min(int(meta.get("consolidated_chunks", 0)), n)
+        fp = self.frames_file_path(meta)
+        if m and fp is not None:
+            what = f"consolidated frames (chunks 0-{m - 1}) named by {os.path.basename(path)}"
+            if not os.path.isfile(fp):
+                raise CheckpointError(fp, f"{what} {'is not a file' if os.path.exists(fp) else 'is missing'}")
+            if check and file_digest(fp) != meta.get("frames_sha256"):
+                raise CheckpointError(fp, f"{what} differ from the digest recorded there")
+            if read:
+                read_h5(fp)
+        for c in range(m, n):
             cp = self.chunk_path(c)
             if not os.path.isfile(cp):
                 what = "is not a file" if os.path.exists(cp) else "is missing"
@@ -341,16 +375,114 @@ class TrajectoryStore:
                 problems.append(str(err))
         return RestartPoint(None, 0, {}, problems, None)
 
-    def read_frames(self, chunks: int | None = None) -> dict[str, np.ndarray]:
-        """Frames of chunks 0 … chunks−1 (default: those covered by the usable state), concatenated."""
+    def read_frames(self, chunks: int | None = None, meta: Mapping[str, Any] | None = None) -> dict[str, np.ndarray]:
+        """Frames of chunks 0 … chunks−1 (default: those covered by the usable state), concatenated.
+
+        ``meta``: the state meta that says which chunks live in the consolidated file (default: the
+        usable state's).  Both layouts give the same arrays bit for bit."""
+        if meta is None:
+            if chunks is not None and not any(os.path.exists(os.path.join(self.folder, f)) for f in (FRAMES_FILE, MERGE_FILE)):
+                meta = {}  # chunks-only folder: no state needed
+            else:
+                point = self.restart_point()
+                meta = point.meta
+                chunks = point.chunks if chunks is None else chunks
         if chunks is None:
-            chunks = self.restart_point().chunks
-        parts = [read_h5(self.chunk_path(c))[0] for c in range(chunks)]
-        parts = [p for p in parts if p]
-        if not parts:
-            return {}
-        keys = [k for k in parts[0] if all(k in p for p in parts)]
-        return {k: np.concatenate([p[k] for p in parts]) for k in keys}
+            chunks = int(meta.get("chunks", 0))
+        parts, _ = self._frame_parts(chunks, meta)
+        return _concatenate(parts)
+
+    def _frame_parts(self, chunks: int, meta: Mapping[str, Any]) -> tuple[list[dict], list[int]]:
+        """(non-empty frame parts in order, frames per chunk) for chunks 0 … chunks−1."""
+        parts: list[dict] = []
+        counts: list[int] = []
+        m = min(int(meta.get("consolidated_chunks", 0)), chunks)
+        fp = self.frames_file_path(meta)
+        if m and fp is not None:
+            arrays, fmeta = read_h5(fp)
+            counts = [int(k) for k in fmeta.get("chunk_nframes", [])][:m]
+            if len(counts) != m:
+                raise CheckpointError(fp, f"holds {len(counts)} chunks, the state names {m}")
+            nf = sum(counts)
+            parts.append({k: v[:nf] for k, v in arrays.items()} if nf < len(arrays.get("step", ())) else arrays)
+        for c in range(m, chunks):
+            p = read_h5(self.chunk_path(c))[0]
+            counts.append(int(len(p["step"])) if "step" in p else 0)
+            parts.append(p)
+        return [p for p in parts if p], counts
+
+    def consolidate(self, point: RestartPoint | None = None) -> bool:
+        """Merge the frame chunks of a finished trajectory into ``frames.h5`` (module docstring, crash-safe
+        order), then delete the chunks.  Idempotent: also completes an interrupted consolidation and
+        removes its leftovers.  ``point``: the folder's restart point if already found (saves a
+        verification).  Returns True when the folder ends consolidated; merged chunks' digests stay
+        in ``chunk_sha256`` but are no longer checked."""
+        for _ in range(3):  # at most two rounds (frames.h5 → frames_merged.h5 → frames.h5) plus the check
+            point = point if point is not None else self.restart_point()
+            if point.state is None:
+                return False
+            meta = point.meta
+            n = int(meta.get("chunks", 0))
+            current = os.path.basename(str(meta.get("frames_file", ""))) if meta.get("consolidated_chunks") else ""
+            if int(meta.get("consolidated_chunks", 0)) == n and current == FRAMES_FILE:
+                if point.source != self.state_path or not _same_meta(self.previous_state_path, meta):
+                    self._write_final_state(point.source or self.state_path, dict(meta))
+                self.remove_leftovers()
+                return True
+            target = MERGE_FILE if current == FRAMES_FILE else FRAMES_FILE
+            tpath = os.path.join(self.folder, target)
+            try:
+                previous_names = self.frames_file_path(read_h5(self.previous_state_path, [])[1])
+            except CheckpointError:
+                previous_names = None
+            if previous_names == tpath and point.source == self.state_path:  # never overwrite a file a state names
+                write_h5(self.previous_state_path, read_h5(self.state_path)[0], meta)
+            parts, counts = self._frame_parts(n, meta)
+            frames = _concatenate(parts)
+            steps = frames.get("step", np.zeros(0, dtype=np.int64))
+            write_h5(tpath, frames, {"consolidated_chunks": n, "chunk_nframes": counts, "nframes": int(sum(counts)),
+                                     "first_step": int(steps[0]) if len(steps) else None,
+                                     "last_step": int(steps[-1]) if len(steps) else None})
+            new_meta = dict(meta)
+            new_meta.update({"consolidated_chunks": n, "frames_file": target, "frames_sha256": file_digest(tpath)})
+            self._write_final_state(point.source or self.state_path, new_meta)
+            self.remove_leftovers()
+            point = None
+        return False
+
+    def _write_final_state(self, source: str, meta: dict) -> None:
+        """Rewrite the state read from ``source`` with ``meta`` as ``state.h5``, then the same as ``state_previous.h5``."""
+        arrays, _ = read_h5(source)
+        write_h5(self.state_path, arrays, meta)
+        write_h5(self.previous_state_path, arrays, meta)
+
+    def remove_leftovers(self) -> None:
+        """Delete frame files that no readable state names: chunks merged into the consolidated file
+        by every readable state, and consolidated files no readable state names."""
+        if not os.path.isdir(self.folder):
+            return
+        metas = []
+        for path in (self.state_path, self.previous_state_path):
+            try:
+                metas.append(read_h5(path, [])[1])
+            except CheckpointError:
+                continue
+        if not metas:
+            return
+        merged = min(int(m.get("consolidated_chunks", 0)) for m in metas)
+        named = {os.path.basename(p) for p in (self.frames_file_path(m) for m in metas) if p}
+        for name in os.listdir(self.folder):
+            path = os.path.join(self.folder, name)
+            if name in (FRAMES_FILE, MERGE_FILE):
+                if name not in named:
+                    _remove(path)
+            elif name.startswith("frames_") and name.endswith(".h5"):
+                try:
+                    idx = int(name[7:-3])
+                except ValueError:
+                    continue
+                if idx < merged:
+                    _remove(path)
 
     def adopt(self, point: RestartPoint) -> None:
         """Make the files agree with ``point`` before continuing: the state used becomes
@@ -362,6 +494,7 @@ class TrajectoryStore:
         elif point.source == self.previous_state_path:
             os.replace(self.previous_state_path, self.state_path)
         self.discard_after(point.chunks)
+        self.remove_leftovers()
 
     def discard_after(self, chunks: int) -> None:
         """Delete chunk files with index >= ``chunks`` (not covered by the state in use)."""
@@ -375,6 +508,21 @@ class TrajectoryStore:
                     continue
                 if idx >= chunks:
                     _remove(os.path.join(self.folder, name))
+
+
+def _concatenate(parts: Sequence[Mapping[str, np.ndarray]]) -> dict[str, np.ndarray]:
+    """Frame parts joined along the frame axis; keys present in every part."""
+    if not parts:
+        return {}
+    keys = [k for k in parts[0] if all(k in p for p in parts)]
+    return {k: np.concatenate([p[k] for p in parts]) if len(parts) > 1 else parts[0][k] for k in keys}
+
+
+def _same_meta(path: str, meta: Mapping[str, Any]) -> bool:
+    try:
+        return read_h5(path, [])[1] == dict(meta)
+    except CheckpointError:
+        return False
 
 
 def _remove(path: str) -> None:

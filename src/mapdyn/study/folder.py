@@ -11,7 +11,7 @@ Layout::
       initial_conditions.h5   molecules: reference geometry, Hessian, modes, sampled rows
       trajectories/000042/    per-trajectory checkpoints (:mod:`mapdyn.study.checkpoint`); folders
                               named traj_000042/ by older versions are still read
-          state.h5, state_previous.h5, frames_0000.h5, ...,  running.json, failure.json, warnings.json
+          state.h5, state_previous.h5, frames_0000.h5, ... (frames.h5 once finished),  running.json, failure.json, warnings.json
       mapdyn.log              study log of command-line runs
       chunks/chunk_0003_seg00.h5  batched model studies: one file per chunk of trajectories
                               (and per time segment after an ``extend`` to a later end time)

@@ -38,7 +38,7 @@ import numpy as np
 
 from mapdyn.files import write_json
 from mapdyn.study.backend_factory import make_backend, make_model, model_initial_ensemble
-from mapdyn.study.checkpoint import TrajectoryStore, write_h5
+from mapdyn.study.checkpoint import TrajectoryStore, consolidation_meta, write_h5
 from mapdyn.study.cluster import dask_worker_leaving
 from mapdyn.study.diagnostics import WARNINGS_FILE, read_warnings, record_warnings
 from mapdyn.study.folder import CHUNKS, Study, write_marker
@@ -231,6 +231,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
         meta = point.meta
         if point.state is not None and (point.state.stopped or point.state.step >= target):
             failed = point.state.stopped and not point.state.end_event
+            store.consolidate(point)  # completes a consolidation a kill interrupted (no-op when done)
             return TaskResult("trajectory", index, "failed" if failed else "skipped",
                               reason=point.state.stop_reason or "")
         write_marker(marker)
@@ -249,6 +250,7 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
             else:
                 dyn = _restored_driver(study, point.state)
                 chunks, digests = point.chunks, list(meta.get("chunk_sha256", []))
+            merged = consolidation_meta(meta)  # chunks already in frames.h5 (an extended finished trajectory)
             while dyn.state.step < target and not dyn.state.stopped:
                 if _stop_requested(study):
                     return TaskResult("trajectory", index, "interrupted", steps_done, time.perf_counter() - t0)
@@ -257,13 +259,15 @@ def trajectory_task(study_dir: str, index: int) -> TaskResult:
                 if _orphaned():  # the runner died: leave the files to the next resume
                     os._exit(3)
                 steps_done += dyn.state.step - before
-                chunks, digests = store.commit(dyn.state, dyn.frames, chunks, _state_meta(study, dyn), digests)
+                chunks, digests = store.commit(dyn.state, dyn.frames, chunks, {**_state_meta(study, dyn), **merged}, digests)
                 dyn.frames.clear()
                 step_now = dyn.state.step
                 flush_warnings()
             step_now = dyn.state.step
             flush_warnings()
         st = dyn.state
+        if st.stopped or st.step >= target:  # finished: its chunks become one file
+            store.consolidate()
         if st.stopped and not st.end_event:
             return TaskResult("trajectory", index, "failed", steps_done, time.perf_counter() - t0, st.stop_reason or "")
         if st.stopped:  # ended in a channel (e.g. reached the S1/S0 region): an outcome, not a failure
